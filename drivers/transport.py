@@ -1,0 +1,59 @@
+"""The tiny transport interface and the one place that picks an implementation.
+
+The rest of nightbench talks to `Transport` only. Which class serves a resource string is
+decided here, so pointing a plan at a simulator or a real instrument changes only a string.
+"""
+
+from __future__ import annotations
+
+from typing import Protocol
+
+
+class Transport(Protocol):
+    """A message-based link to one instrument: text out, one line of text back."""
+
+    resource: str
+
+    def write(self, message: str) -> None: ...
+
+    def query(self, message: str) -> str: ...
+
+    def flush_input(self) -> None:
+        """Throw away anything already received (a late reply after a timeout)."""
+
+    def close(self) -> None: ...
+
+
+VISA_PREFIXES = ("TCPIP", "ASRL", "GPIB", "USB")
+
+
+def check_resource(resource: str) -> str | None:
+    """Why `resource` cannot be a resource string, or None if it looks usable.
+
+    Checked at plan time without opening anything, so a typo fails `check`, not the night.
+    """
+    from pyvisa import rname
+
+    text = resource.strip()
+    if not text:
+        return "the resource string is empty"
+    if not text.upper().startswith(VISA_PREFIXES):
+        return (
+            f"'{resource}' is not a VISA resource string "
+            "(expected e.g. TCPIP::127.0.0.1::5025::SOCKET or ASRL/dev/ttyUSB0::INSTR)"
+        )
+    try:
+        parsed = rname.parse_resource_name(text)
+    except rname.InvalidResourceName as exc:
+        return f"'{resource}' is not a valid VISA resource string ({exc})"
+    port = getattr(parsed, "port", None)
+    if port is not None and not (port.isdigit() and 0 < int(port) < 65536):
+        return f"'{resource}' names port {port}, which is not a TCP port (1-65535)"
+    return None
+
+
+def open_transport(resource: str, *, timeout_s: float = 2.0, visa_library: str = "@py") -> Transport:
+    """Open the transport that serves `resource` and return it, connected."""
+    from drivers.visa import VisaTransport
+
+    return VisaTransport.open(resource, timeout_s=timeout_s, visa_library=visa_library)

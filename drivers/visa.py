@@ -1,0 +1,113 @@
+"""VISA transport through pyvisa (default backend `@py`, pyvisa-py).
+
+Holds the traps measured in FIELD-NOTES: terminations must be set, opening a socket never
+fails by itself, a closed peer looks like a timeout, a late reply lands on the next query, and
+ASRL faults leak pyserial/OS exceptions. All of it is mapped to `ConnectionLost` here.
+"""
+
+from __future__ import annotations
+
+import os
+from typing import Any
+
+from drivers.errors import ConnectionLost, InstrumentError
+
+_managers: dict[str, Any] = {}
+
+
+def resource_manager(visa_library: str = "@py") -> Any:
+    """One ResourceManager per VISA library, created on first use (pyvisa import is slow)."""
+    if visa_library not in _managers:
+        import pyvisa
+
+        try:
+            _managers[visa_library] = pyvisa.ResourceManager(visa_library)
+        except (OSError, ValueError, pyvisa.errors.Error) as exc:
+            raise InstrumentError(f"cannot load the VISA library '{visa_library}': {exc}") from exc
+    return _managers[visa_library]
+
+
+def _link_errors() -> tuple[type[BaseException], ...]:
+    import pyvisa
+
+    errors: list[type[BaseException]] = [pyvisa.errors.VisaIOError, pyvisa.errors.Error, OSError, EOFError]
+    try:
+        import serial
+
+        errors.append(serial.SerialException)
+    except ImportError:  # pragma: no cover - pyserial is a dependency
+        pass
+    return tuple(errors)
+
+
+class VisaTransport:
+    """One open pyvisa resource with terminations, a short timeout and TCP_NODELAY."""
+
+    def __init__(self, resource: str, inst: Any) -> None:
+        self.resource = resource
+        self._inst = inst
+        self._errors = _link_errors()
+
+    @classmethod
+    def open(cls, resource: str, *, timeout_s: float, visa_library: str = "@py") -> "VisaTransport":
+        rm = resource_manager(visa_library)
+        errors = _link_errors()
+        try:
+            inst = rm.open_resource(resource, open_timeout=int(timeout_s * 1000))
+            inst.timeout = int(timeout_s * 1000)
+            inst.read_termination = "\n"
+            inst.write_termination = "\n"
+            if resource.upper().startswith("TCPIP") and resource.upper().endswith("SOCKET"):
+                _set_nodelay(inst)
+        except errors as exc:
+            raise ConnectionLost(f"cannot open: {exc}", resource=resource) from exc
+        return cls(resource, inst)
+
+    def write(self, message: str) -> None:
+        try:
+            self._inst.write(message)
+        except self._errors as exc:
+            raise ConnectionLost(_describe(exc), resource=self.resource, command=message) from exc
+
+    def query(self, message: str) -> str:
+        try:
+            reply = self._inst.query(message)
+        except self._errors as exc:
+            raise ConnectionLost(_describe(exc), resource=self.resource, command=message) from exc
+        return reply.strip()
+
+    def flush_input(self) -> None:
+        try:
+            self._inst.clear()
+        except self._errors:
+            pass
+
+    def close(self) -> None:
+        try:
+            self._inst.close()
+        except Exception:  # closing a dead link must never mask the real error
+            pass
+
+
+def _set_nodelay(inst: Any) -> None:
+    """Avoid the Nagle + delayed-ACK stall on small back-to-back writes (FIELD-NOTES trap 10)."""
+    from pyvisa import constants
+
+    try:
+        inst.set_visa_attribute(constants.VI_ATTR_TCPIP_NODELAY, constants.VI_TRUE)
+    except Exception:  # not every backend exposes it; the joined-message path still works
+        pass
+
+
+def _describe(exc: BaseException) -> str:
+    import pyvisa
+
+    if isinstance(exc, pyvisa.errors.VisaIOError) and exc.error_code == pyvisa.constants.StatusCode.error_timeout:
+        return "no reply before the timeout (instrument silent or disconnected)"
+    if isinstance(exc, ConnectionRefusedError):
+        return "connection refused (nothing is listening there)"
+    if isinstance(exc, BrokenPipeError | ConnectionResetError):
+        return "connection closed by the instrument"
+    name = type(exc).__name__
+    text = str(exc) or os.strerror(getattr(exc, "errno", 0) or 0)
+    return f"link error ({name}: {text})"
