@@ -1,0 +1,196 @@
+"""The `nightbench` command line: a thin layer over the library.
+
+Heavy modules (pyvisa, numpy, pydantic) are imported inside the commands that need them, so
+`--help`, `runs` and `check` stay quick. Every NightbenchError becomes one plain message on
+stderr and its exit code (2 for bad input); no traceback reaches a user for bad input or an
+unreachable instrument.
+"""
+
+from __future__ import annotations
+
+import functools
+import json
+import sys
+from typing import Any, Callable
+
+import click
+
+from drivers.errors import NightbenchError
+
+DB_HELP = "database file (default: $NIGHTBENCH_DB, else ./nightbench.db)"
+
+
+def _fail(message: str, code: int) -> None:
+    click.echo(f"nightbench: {message}", err=True)
+    sys.exit(code)
+
+
+def friendly(fn: Callable[..., Any]) -> Callable[..., Any]:
+    """Map project errors to a message and exit code."""
+    @functools.wraps(fn)
+    def wrapper(*args: Any, **kwargs: Any) -> Any:
+        try:
+            return fn(*args, **kwargs)
+        except NightbenchError as exc:
+            _fail(str(exc), exc.exit_code)
+    return wrapper
+
+
+def _db(path: str | None) -> str:
+    from runner.store import default_db_path
+
+    return path or default_db_path()
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(package_name="nightbench")
+def main() -> None:
+    """Characterise power detectors unattended: plan -> bench -> SQLite -> report."""
+
+
+@main.command()
+@click.argument("plan", type=click.Path(dir_okay=True))
+@friendly
+def check(plan: str) -> None:
+    """Validate PLAN; touches no instrument and writes nothing."""
+    from runner.plan import load_plan
+    from runner.sweep import expand
+
+    loaded = load_plan(plan)
+    p = loaded.plan
+    points = expand(p)
+    freqs = p.sweep.axis_values("frequency_hz")
+    click.echo(f"{plan}: valid plan '{p.name}', {len(points)} points over {len(freqs)} frequencies")
+    for f in freqs:
+        loss = p.path.loss(f)
+        levels = p.sweep.axis_values("power_dbm")
+        click.echo(f"  {f / 1e6:10.3f} MHz  path loss {loss:6.2f} dB  source {min(levels) + loss:7.2f} .. "
+                   f"{max(levels) + loss:7.2f} dBm")
+
+
+def _execute(loaded: Any, db: str, run_id: int | None) -> None:
+    """Run (or resume) and exit with the contract's code."""
+    from runner.runs import execute, new_run
+    from runner.signals import EXIT_CODES, StopFlag
+    from runner.store import Store
+
+    store = Store(db)
+    if run_id is None:
+        run_id = new_run(store, loaded)
+    stop = StopFlag().install()
+    state, error = execute(loaded, store, run_id, stop)
+    done = len(store.done_indices(run_id))
+    total = store.run(run_id)["points_total"]
+    click.echo(f"run {run_id} {state}: {done} of {total} points in {db}")
+    if state == "completed":
+        return
+    click.echo(f"nightbench: run {run_id} {state}: {error}", err=True)
+    sys.exit(EXIT_CODES.get(stop.reason or "", 1) if state == "interrupted" else 1)
+
+
+@main.command()
+@click.argument("plan", type=click.Path(dir_okay=True))
+@click.option("--db", help=DB_HELP)
+@friendly
+def run(plan: str, db: str | None) -> None:
+    """Run PLAN now, in the foreground."""
+    from runner.plan import load_plan
+
+    loaded = load_plan(plan)  # bad input stops here: nothing written, nothing contacted
+    _execute(loaded, _db(db), None)
+
+
+@main.command()
+@click.argument("run_id", type=int)
+@click.option("--db", help=DB_HELP)
+@friendly
+def resume(run_id: int, db: str | None) -> None:
+    """Continue RUN from its first missing point (after an interruption or a fault)."""
+    from drivers.errors import InputError
+    from runner.plan import parse_plan
+    from runner.store import Store
+
+    store = Store(_db(db), create=False)
+    row = store.run(run_id)
+    if row["state"] == "completed":
+        raise InputError(f"run {run_id} is already completed")
+    loaded = parse_plan(row["plan_text"], f"run {run_id} plan snapshot")
+    store.close()
+    _execute(loaded, _db(db), run_id)
+
+
+@main.command()
+@click.option("--db", help=DB_HELP)
+@click.option("--json", "as_json", is_flag=True, help="machine-readable list")
+@friendly
+def runs(db: str | None, as_json: bool) -> None:
+    """List runs."""
+    from runner.store import Store
+
+    rows = Store(_db(db)).runs()
+    if as_json:
+        click.echo(json.dumps(rows, indent=1))
+        return
+    if not rows:
+        click.echo("no runs yet")
+    for r in rows:
+        click.echo(f"{r['id']:5d}  {r['name']:<28} {r['state']:<12} {r['points_done']:>6}/{r['points_total']:<6} "
+                   f"{r['started_at'] or '-':<24} {r['finished_at'] or '-'}")
+
+
+@main.command()
+@click.argument("run_id", type=int)
+@click.option("--db", help=DB_HELP)
+@click.option("--json", "as_json", is_flag=True, help="machine-readable results")
+@friendly
+def report(run_id: int, db: str | None, as_json: bool) -> None:
+    """Characterisation results of RUN: slope, intercept, conformance, dynamic range."""
+    from runner.report import build_report, render_table
+    from runner.store import Store
+
+    result = build_report(Store(_db(db), create=False), run_id)
+    click.echo(json.dumps(result, indent=1) if as_json else render_table(result))
+
+
+@main.command()
+@click.argument("run_id", type=int)
+@click.option("--format", "fmt", type=click.Choice(["csv", "json"]), default="csv", show_default=True)
+@click.option("--db", help=DB_HELP)
+@click.option("-o", "--output", type=click.Path(dir_okay=False), help="file to write (default: stdout)")
+@friendly
+def export(run_id: int, fmt: str, db: str | None, output: str | None) -> None:
+    """One row per point of RUN, as CSV or JSON."""
+    from runner.export import write_export
+    from runner.store import Store
+
+    store = Store(_db(db), create=False)
+    if output:
+        with open(output, "w", encoding="utf-8", newline="") as fh:
+            write_export(store, run_id, fmt, fh)
+    else:
+        write_export(store, run_id, fmt, sys.stdout)
+
+
+@main.command()
+@click.option("--source-port", type=int, default=0, show_default=True, help="TCP port of the source (0 = any free)")
+@click.option("--meter-port", type=int, default=0, show_default=True, help="TCP port of the meter (0 = any free)")
+@click.option("--config", type=click.Path(exists=True, dir_okay=False), help="simulator config (TOML)")
+@click.option("--log", type=click.Path(dir_okay=False), help="append every source state change here (JSON lines)")
+def sim(source_port: int, meter_port: int, config: str | None, log: str | None) -> None:
+    """Serve the simulated bench until SIGTERM/SIGINT; prints one JSON line of resources."""
+    from simulators.server import serve
+
+    try:
+        sys.exit(serve(source_port=source_port, meter_port=meter_port, config_path=config, log_path=log))
+    except (OSError, ValueError) as exc:
+        _fail(f"cannot start the simulated bench: {exc}", 2)
+
+
+@main.command()
+@click.option("--db", help=DB_HELP)
+@friendly
+def demo(db: str | None) -> None:
+    """Start the simulated bench, run the demo plan on it, print the report."""
+    from runner.demo import run_demo
+
+    sys.exit(run_demo(_db(db)))

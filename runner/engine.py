@@ -1,0 +1,200 @@
+"""The sweep engine: visits points in order, never above the DUT ceiling, and stores each one.
+
+It knows roles (a source, a meter), never a transport; it knows the store, never SQL.
+"""
+
+from __future__ import annotations
+
+import math
+import statistics
+import time
+from dataclasses import dataclass
+from typing import Callable
+
+from drivers.errors import NightbenchError, SafetyError
+from drivers.meter import ScpiDmm
+from drivers.scpi import ScpiSession
+from drivers.source import RfSource
+from drivers.transport import open_transport
+from runner.plan import LoadedPlan, Plan
+from runner.settle import SettleDetector
+from runner.signals import StopFlag
+from runner.store import PointResult, Store
+from runner.sweep import Point, expand
+
+OVERLOAD_READINGS = 3  # consecutive overrange readings that end a point as overloaded
+CEILING_SLACK_DB = 1e-6
+
+
+class Interrupted(Exception):
+    """The stop flag was seen; the run ends as `interrupted` and can be resumed."""
+
+
+@dataclass
+class Bench:
+    source: RfSource
+    meter: ScpiDmm
+
+    def close(self) -> None:
+        for role in (self.source, self.meter):
+            role.session.transport.close()
+
+
+def open_source(plan: Plan) -> RfSource:
+    """Open the source and make it safe before anything else (RF off, invariant 2)."""
+    spec = plan.instruments.source
+    session = ScpiSession(open_transport(spec.resource, timeout_s=spec.timeout_s), "source")
+    session.identify()
+    source = RfSource(session, min_dbm=spec.min_dbm, max_dbm=spec.max_dbm)
+    source.configure()
+    return source
+
+
+def open_bench(plan: Plan) -> Bench:
+    source = open_source(plan)
+    try:
+        spec = plan.instruments.meter
+        session = ScpiSession(open_transport(spec.resource, timeout_s=spec.timeout_s), "meter")
+        session.identify()
+        meter = ScpiDmm(session, nplc=spec.nplc)
+        meter.configure()
+    except BaseException:
+        source.session.transport.close()
+        raise
+    return Bench(source, meter)
+
+
+Progress = Callable[[Point, PointResult, int, int], None]
+
+
+class Engine:
+    def __init__(self, loaded: LoadedPlan, store: Store, run_id: int, stop: StopFlag,
+                 progress: Progress | None = None) -> None:
+        self.plan = loaded.plan
+        self.store = store
+        self.run_id = run_id
+        self.stop = stop
+        self.progress = progress
+        self.bench: Bench | None = None
+
+    # -- safety ---------------------------------------------------------------------------
+    def _check_ceiling(self, level_dbm: float, frequency_hz: float) -> None:
+        dut = level_dbm - self.plan.path.loss(frequency_hz)
+        if dut > self.plan.limits.dut_max_dbm + CEILING_SLACK_DB:
+            raise SafetyError(
+                f"refusing to set {level_dbm:.2f} dBm at {frequency_hz:g} Hz: {dut:.2f} dBm at the DUT "
+                f"exceeds limits.dut_max_dbm = {self.plan.limits.dut_max_dbm:g} dBm")
+
+    def move_to(self, point: Point) -> None:
+        """Set the source for a point without the DUT ever seeing more than the ceiling.
+
+        On a frequency change the level is first lowered to what is safe at both the old and
+        the new frequency, so a smaller path loss at the new frequency cannot raise the DUT level.
+        """
+        assert self.bench is not None
+        source = self.bench.source
+        self._check_ceiling(point.source_dbm, point.frequency_hz)
+        if source.frequency_hz != point.frequency_hz:
+            if source.level_dbm is not None and source.output_on:
+                interim = min(source.level_dbm, point.source_dbm)
+                self._check_ceiling(interim, point.frequency_hz)
+                if interim < source.level_dbm:
+                    source.set(level_dbm=interim)
+            source.set(frequency_hz=point.frequency_hz)
+        if source.level_dbm != point.source_dbm:
+            source.set(level_dbm=point.source_dbm)
+        if not source.output_on:
+            source.set(output=True)
+
+    # -- one point ------------------------------------------------------------------------
+    def measure(self, point: Point) -> PointResult:
+        assert self.bench is not None
+        meter = self.bench.meter
+        settle = self.plan.settle
+        detector = SettleDetector(settle.tolerance_v, min_wait_s=settle.min_wait_s)
+        readings: list[tuple[float, float | None, str]] = []
+        t0 = time.monotonic()
+        settled, overloads = False, 0
+        while True:
+            value = meter.read()
+            t = time.monotonic() - t0
+            if self.stop.is_set():
+                raise Interrupted(self.stop.reason)
+            if math.isinf(value):
+                readings.append((t, None, "settle"))
+                overloads += 1
+                if overloads >= OVERLOAD_READINGS:
+                    return PointResult(None, None, 0, t, len(readings), False, True, readings)
+            else:
+                overloads = 0
+                readings.append((t, value, "settle"))
+                if detector.feed(t, value):
+                    settled = True
+                    break
+            if t >= settle.timeout_s:
+                break
+        settle_s, settle_count = readings[-1][0], len(readings)
+        samples = []
+        for _ in range(self.plan.measure.samples):
+            value = meter.read()
+            if self.stop.is_set():
+                raise Interrupted(self.stop.reason)
+            t = time.monotonic() - t0
+            readings.append((t, None if math.isinf(value) else value, "measure"))
+            if math.isinf(value):
+                return PointResult(None, None, 0, settle_s, settle_count, settled, True, readings)
+            samples.append(value)
+        mean = statistics.fmean(samples)
+        stdev = statistics.stdev(samples) if len(samples) > 1 else None
+        return PointResult(mean, stdev, len(samples), settle_s, settle_count, settled, False, readings)
+
+    # -- the run --------------------------------------------------------------------------
+    def run(self) -> tuple[str, str | None]:
+        """Run the missing points; return (final state, error message)."""
+        store, run_id = self.store, self.run_id
+        points = expand(self.plan)
+        done = store.done_indices(run_id)
+        todo = [p for p in points if p.index not in done]
+        store.mark_running(run_id)
+        state, error = "completed", None
+        try:
+            if self.stop.is_set():
+                raise Interrupted(self.stop.reason)
+            self.bench = open_bench(self.plan)
+            store.set_identities(run_id, self.bench.source.session.idn, self.bench.meter.session.idn)
+            for point in todo:
+                if self.stop.is_set():
+                    raise Interrupted(self.stop.reason)
+                self.move_to(point)
+                result = self.measure(point)
+                store.add_point(run_id, point, result)
+                done.add(point.index)
+                if self.progress:
+                    self.progress(point, result, len(done), len(points))
+        except Interrupted as exc:
+            state, error = "interrupted", f"stopped by {exc}"
+        except NightbenchError as exc:
+            state, error = "failed", str(exc)
+        finally:
+            rf_error = self._make_safe()
+            if rf_error and state == "completed":
+                state, error = "failed", rf_error
+            elif rf_error:
+                error = f"{error}; {rf_error}"
+            store.finish_run(run_id, state, error)
+            store.event(run_id, state, error or f"{len(done)} of {len(points)} points")
+        return state, error
+
+    def _make_safe(self) -> str | None:
+        """RF off on every way out; a failure to do so is reported, never swallowed."""
+        if self.bench is None:
+            return None
+        source = self.bench.source
+        try:
+            source.session.transport.flush_input()
+            source.rf_off()
+            return None
+        except NightbenchError as exc:
+            return f"could not switch RF off: {exc}"
+        finally:
+            self.bench.close()

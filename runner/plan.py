@@ -1,0 +1,324 @@
+"""Plan format v1: the validated model, loading from a file, and messages that point at the text.
+
+Every key of DESIGN.md's plan format is accepted as written; unknown keys are errors, because a
+typo must not silently change a night's work. Numbers may be written `70e6` (see yamlfile).
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+from typing import Annotated, Any, Literal
+
+from pydantic import AfterValidator, BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+from drivers.errors import InputError
+from runner.yamlfile import KeyPath, load_yaml_text, read_text
+
+MAX_POINTS = 200_000
+Finite = Annotated[float, Field(allow_inf_nan=False)]
+Positive = Annotated[float, Field(gt=0, allow_inf_nan=False)]
+NonNegative = Annotated[float, Field(ge=0, allow_inf_nan=False)]
+
+
+def _valid_resource(value: str) -> str:
+    """Resource strings are checked at plan time, without opening anything."""
+    from drivers.transport import check_resource
+
+    problem = check_resource(value)
+    if problem:
+        raise ValueError(problem)
+    return value.strip()
+
+
+Resource = Annotated[str, AfterValidator(_valid_resource)]
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", allow_inf_nan=False, frozen=True)
+
+
+class Dut(_Strict):
+    id: str | None = None
+    notes: str | None = None
+
+
+class SourceSpec(_Strict):
+    driver: Literal["scpi-source"]
+    resource: str
+    timeout_s: Positive = 2.0
+    min_dbm: Finite = -130.0          # the source's own level limits; plans beyond them are refused
+    max_dbm: Finite = 20.0
+
+    @field_validator("resource")
+    @classmethod
+    def _resource(cls, value: str) -> str:
+        from drivers.transport import check_resource
+
+        problem = check_resource(value)
+        if problem:
+            raise ValueError(problem)
+        return value.strip()
+
+    @model_validator(mode="after")
+    def _limits(self) -> "SourceSpec":
+        if self.min_dbm >= self.max_dbm:
+            raise ValueError("min_dbm must be below max_dbm")
+        return self
+
+
+class MeterSpec(_Strict):
+    driver: Literal["scpi-dmm"]
+    resource: Resource
+    timeout_s: Positive = 2.0
+    nplc: Annotated[float, Field(gt=0, le=100, allow_inf_nan=False)] | None = None
+
+
+class Instruments(_Strict):
+    source: SourceSpec
+    meter: MeterSpec
+
+
+class PathSpec(_Strict):
+    """Loss from the source port to the DUT input (positive = loss): a constant or a table."""
+
+    loss_db: Finite | None = None
+    table: list[tuple[Positive, Finite]] | None = None
+
+    @model_validator(mode="after")
+    def _one_form(self) -> "PathSpec":
+        given = [k for k in ("loss_db", "table") if getattr(self, k) is not None]
+        if len(given) != 1:
+            raise ValueError("give exactly one of loss_db or table")
+        if self.table is not None:
+            if len(self.table) < 1:
+                raise ValueError("table needs at least one [frequency_hz, loss_db] row")
+            freqs = [f for f, _ in self.table]
+            if any(b <= a for a, b in zip(freqs, freqs[1:])):
+                raise ValueError("table frequencies must be strictly increasing")
+        return self
+
+    def loss(self, frequency_hz: float) -> float:
+        """Loss at a frequency; a table is interpolated linearly and never extrapolated."""
+        if self.loss_db is not None:
+            return self.loss_db
+        assert self.table is not None
+        freqs = [f for f, _ in self.table]
+        losses = [l for _, l in self.table]
+        if len(freqs) == 1:
+            if not math.isclose(frequency_hz, freqs[0], rel_tol=1e-9):
+                raise ValueError(f"{frequency_hz:g} Hz is not covered by a one-row path table")
+            return losses[0]
+        if not (freqs[0] <= frequency_hz <= freqs[-1]):
+            raise ValueError(f"{frequency_hz:g} Hz lies outside the path table ({freqs[0]:g} to {freqs[-1]:g} Hz)")
+        for (f0, l0), (f1, l1) in zip(self.table, self.table[1:]):
+            if f0 <= frequency_hz <= f1:
+                return l0 + (l1 - l0) * (frequency_hz - f0) / (f1 - f0)
+        raise AssertionError("unreachable")
+
+
+class Limits(_Strict):
+    dut_max_dbm: Finite
+
+
+class Span(_Strict):
+    start: Finite
+    stop: Finite
+    step: Finite | None = None
+    points: Annotated[int, Field(ge=1, le=MAX_POINTS)] | None = None
+
+    @model_validator(mode="after")
+    def _one_of(self) -> "Span":
+        if (self.step is None) == (self.points is None):
+            raise ValueError("give exactly one of step or points")
+        if self.step is not None:
+            if self.step == 0:
+                raise ValueError("step must not be zero")
+            if (self.stop - self.start) * self.step < 0:
+                raise ValueError("step points away from stop")
+            n = (self.stop - self.start) / self.step
+            if n > MAX_POINTS:
+                raise ValueError(f"{n:.0f} steps is more than the {MAX_POINTS} allowed")
+            if abs(n - round(n)) > 1e-6:
+                raise ValueError("stop is not start plus a whole number of steps (endpoints are inclusive)")
+        if self.points == 1 and self.start != self.stop:
+            raise ValueError("one point needs start equal to stop")
+        return self
+
+    def values(self) -> list[float]:
+        if self.step is not None:
+            n = round((self.stop - self.start) / self.step)
+            return [round(self.start + i * self.step, 9) for i in range(n + 1)]
+        assert self.points is not None
+        if self.points == 1:
+            return [self.start]
+        width = (self.stop - self.start) / (self.points - 1)
+        return [round(self.start + i * width, 9) for i in range(self.points)]
+
+
+Axis = list[Finite] | Span
+AXES = ("frequency_hz", "power_dbm")
+
+
+class Sweep(_Strict):
+    """Axes, outermost first: the order of the keys in the file is the nesting order."""
+
+    frequency_hz: Axis
+    power_dbm: Axis
+    order: tuple[str, ...] = AXES
+
+    @model_validator(mode="before")
+    @classmethod
+    def _record_order(cls, data: Any) -> Any:
+        if isinstance(data, dict):
+            data = dict(data)
+            data["order"] = tuple(k for k in data if k in AXES)
+        return data
+
+    @field_validator("frequency_hz")
+    @classmethod
+    def _positive_freq(cls, value: Axis) -> Axis:
+        values = value.values() if isinstance(value, Span) else value
+        if not values:
+            raise ValueError("needs at least one frequency")
+        if any(v <= 0 for v in values):
+            raise ValueError("frequencies must be positive")
+        return value
+
+    @field_validator("power_dbm")
+    @classmethod
+    def _nonempty(cls, value: Axis) -> Axis:
+        if isinstance(value, list) and not value:
+            raise ValueError("needs at least one level")
+        return value
+
+    def axis_values(self, name: str) -> list[float]:
+        axis = getattr(self, name)
+        return axis.values() if isinstance(axis, Span) else list(axis)
+
+
+class Settle(_Strict):
+    tolerance_v: Positive
+    timeout_s: Positive
+    min_wait_s: NonNegative = 0.0
+
+
+class Measure(_Strict):
+    samples: Annotated[int, Field(ge=1, le=10_000)] = 4
+
+
+class Analysis(_Strict):
+    fit_dbm: tuple[Finite, Finite]
+    error_limit_db: Positive = 1.0
+
+    @field_validator("fit_dbm")
+    @classmethod
+    def _ordered(cls, value: tuple[float, float]) -> tuple[float, float]:
+        if value[0] >= value[1]:
+            raise ValueError("fit_dbm must be [low, high] with low < high")
+        return value
+
+
+class Plan(_Strict):
+    name: Annotated[str, Field(min_length=1, max_length=80, pattern=r"^[A-Za-z0-9][A-Za-z0-9_.-]*$")]
+    description: str | None = None
+    dut: Dut = Dut()
+    instruments: Instruments
+    path: PathSpec
+    limits: Limits
+    sweep: Sweep
+    settle: Settle
+    measure: Measure = Measure()
+    analysis: Analysis
+
+
+class LoadedPlan:
+    """A validated plan with its source text (the snapshot stored with a run)."""
+
+    def __init__(self, plan: Plan, text: str, file: str) -> None:
+        self.plan = plan
+        self.text = text
+        self.file = file
+
+
+def _key_path(loc: tuple[Any, ...]) -> tuple[Any, ...]:
+    """Drop pydantic's union-branch labels ('list[...]', 'Span', ...) from an error location."""
+    return tuple(p for p in loc if isinstance(p, int) or (isinstance(p, str) and "[" not in p and p[:1].islower()))
+
+
+def _line_for(path: tuple[Any, ...], lines: dict[KeyPath, int]) -> int | None:
+    for n in range(len(path), -1, -1):
+        if path[:n] in lines:
+            return lines[path[:n]]
+    return None
+
+
+def _friendly(err: dict[str, Any]) -> str:
+    kind, msg = err.get("type", ""), err.get("msg", "")
+    if kind == "extra_forbidden":
+        return "unknown key (check the spelling; unknown keys are refused)"
+    if kind == "missing":
+        return "required key is missing"
+    if kind in ("finite_number",):
+        return "must be a finite number (NaN and infinity are refused)"
+    return msg.removeprefix("Value error, ")
+
+
+def parse_plan(text: str, file: str) -> LoadedPlan:
+    """Validate plan text; raise InputError naming file, line and key path of the first problem."""
+    data, lines = load_yaml_text(text, file)
+    if not isinstance(data, dict):
+        raise InputError("a plan is a mapping of keys (name, instruments, sweep, ...)", file=file, line=1)
+    try:
+        plan = Plan.model_validate(data)
+    except ValidationError as exc:
+        errors = exc.errors()
+        problems = []
+        for err in errors:
+            path = _key_path(tuple(err["loc"]))
+            problems.append((path, _friendly(err)))
+        # the same location may be reported once per union branch: keep the first of each
+        seen: dict[tuple[Any, ...], str] = {}
+        for path, message in problems:
+            seen.setdefault(path, message)
+        first_path, first_msg = next(iter(seen.items()))
+        also = []
+        for path, msg in list(seen.items())[1:6]:
+            line = _line_for(path, lines)
+            where = f"line {line}, " if line else ""
+            also.append(f"\n  also {where}key '{'.'.join(map(str, path)) or '(top)'}': {msg}")
+        raise InputError(first_msg + "".join(also), file=file, line=_line_for(first_path, lines),
+                         key=".".join(map(str, first_path)) or None) from None
+    check_consistency(plan, file, lines)
+    return LoadedPlan(plan, text, file)
+
+
+def check_consistency(plan: Plan, file: str, lines: dict[KeyPath, int]) -> None:
+    """Checks across sections: point count, the DUT ceiling, path coverage, source limits."""
+    def fail(message: str, *key: Any) -> None:
+        raise InputError(message, file=file, line=_line_for(tuple(key), lines), key=".".join(map(str, key)))
+
+    freqs = plan.sweep.axis_values("frequency_hz")
+    levels = plan.sweep.axis_values("power_dbm")
+    if len(freqs) * len(levels) > MAX_POINTS:
+        fail(f"the sweep has {len(freqs) * len(levels)} points; at most {MAX_POINTS} are allowed", "sweep")
+    ceiling = plan.limits.dut_max_dbm
+    top = max(levels)
+    if top > ceiling:
+        fail(f"level {top:g} dBm exceeds the DUT ceiling limits.dut_max_dbm = {ceiling:g} dBm",
+             "sweep", "power_dbm")
+    src = plan.instruments.source
+    for f in freqs:
+        try:
+            loss = plan.path.loss(f)
+        except ValueError as exc:
+            fail(str(exc), "path")
+        lo, hi = min(levels) + loss, top + loss
+        if lo < src.min_dbm or hi > src.max_dbm:
+            fail(f"at {f:g} Hz the source would need {lo:.2f} to {hi:.2f} dBm, outside its limits "
+                 f"[{src.min_dbm:g}, {src.max_dbm:g}] dBm", "sweep", "power_dbm")
+
+
+def load_plan(path: str | Path) -> LoadedPlan:
+    p = Path(path)
+    return parse_plan(read_text(p), str(p))

@@ -1,0 +1,197 @@
+"""The SQLite store: runs, points, raw readings. One file, WAL, every point durable on return.
+
+Written with the standard sqlite3 module on the hot path (one transaction per point, raw
+readings included, `synchronous=FULL` so a committed point survives power loss too); the same
+file is meant to be read with sqlite3 or the `sqlite-utils` command line.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import socket
+import sqlite3
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from drivers.errors import InputError
+
+SCHEMA_VERSION = 1
+STATES = ("queued", "running", "completed", "interrupted", "failed")
+
+SCHEMA = """
+CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS runs (
+    id INTEGER PRIMARY KEY,
+    name TEXT NOT NULL,
+    state TEXT NOT NULL CHECK (state IN ('queued','running','completed','interrupted','failed')),
+    plan_file TEXT,
+    plan_text TEXT NOT NULL,
+    plan_json TEXT NOT NULL,
+    dut_id TEXT,
+    points_total INTEGER NOT NULL,
+    created_at TEXT NOT NULL,
+    started_at TEXT,
+    finished_at TEXT,
+    error TEXT,
+    pid INTEGER,
+    host TEXT,
+    heartbeat_at TEXT,
+    source_idn TEXT,
+    meter_idn TEXT
+);
+CREATE TABLE IF NOT EXISTS points (
+    run_id INTEGER NOT NULL REFERENCES runs(id),
+    idx INTEGER NOT NULL,
+    frequency_hz REAL NOT NULL,
+    power_dbm REAL NOT NULL,
+    source_dbm REAL NOT NULL,
+    value_v REAL,
+    stdev_v REAL,
+    samples INTEGER NOT NULL,
+    settle_s REAL NOT NULL,
+    settle_readings INTEGER NOT NULL,
+    settled INTEGER NOT NULL,
+    overload INTEGER NOT NULL DEFAULT 0,
+    measured_at TEXT NOT NULL,
+    PRIMARY KEY (run_id, idx)
+) WITHOUT ROWID;
+CREATE TABLE IF NOT EXISTS readings (
+    run_id INTEGER NOT NULL,
+    idx INTEGER NOT NULL,
+    seq INTEGER NOT NULL,
+    t_s REAL NOT NULL,
+    value_v REAL,
+    phase TEXT NOT NULL CHECK (phase IN ('settle','measure')),
+    PRIMARY KEY (run_id, idx, seq)
+) WITHOUT ROWID;
+CREATE TABLE IF NOT EXISTS events (
+    id INTEGER PRIMARY KEY,
+    run_id INTEGER,
+    at TEXT NOT NULL,
+    kind TEXT NOT NULL,
+    message TEXT NOT NULL
+);
+"""
+
+
+def now_iso() -> str:
+    return time.strftime("%Y-%m-%dT%H:%M:%S", time.localtime()) + f".{int(time.time() * 1000) % 1000:03d}"
+
+
+def default_db_path() -> str:
+    return os.environ.get("NIGHTBENCH_DB") or "nightbench.db"
+
+
+@dataclass
+class PointResult:
+    value_v: float | None
+    stdev_v: float | None
+    samples: int
+    settle_s: float
+    settle_readings: int
+    settled: bool
+    overload: bool
+    readings: list[tuple[float, float | None, str]]   # (t since change, value, phase)
+
+
+class Store:
+    """One open database file."""
+
+    def __init__(self, path: str | Path, *, create: bool = True) -> None:
+        self.path = str(path)
+        if not create and not Path(self.path).exists():
+            raise InputError("no such database", file=self.path)
+        try:
+            self.conn = sqlite3.connect(self.path, timeout=10.0, isolation_level=None)
+            self.conn.row_factory = sqlite3.Row
+            self.conn.execute("PRAGMA journal_mode=WAL")
+            self.conn.execute("PRAGMA synchronous=FULL")
+            self.conn.execute("PRAGMA foreign_keys=ON")
+            if create:
+                self.conn.executescript(SCHEMA)
+                self.conn.execute("INSERT OR IGNORE INTO meta VALUES ('schema_version', ?)", (str(SCHEMA_VERSION),))
+        except sqlite3.DatabaseError as exc:
+            raise InputError(f"cannot use as a nightbench database: {exc}", file=self.path) from exc
+
+    def close(self) -> None:
+        self.conn.close()
+
+    # -- runs -----------------------------------------------------------------------------
+    def create_run(self, *, name: str, plan_file: str | None, plan_text: str, plan_json: dict[str, Any],
+                   dut_id: str | None, points_total: int, state: str = "queued") -> int:
+        cur = self.conn.execute(
+            "INSERT INTO runs (name, state, plan_file, plan_text, plan_json, dut_id, points_total, created_at)"
+            " VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+            (name, state, plan_file, plan_text, json.dumps(plan_json), dut_id, points_total, now_iso()))
+        return int(cur.lastrowid)
+
+    def mark_running(self, run_id: int) -> None:
+        self.conn.execute(
+            "UPDATE runs SET state='running', started_at=COALESCE(started_at, ?), finished_at=NULL, error=NULL,"
+            " pid=?, host=?, heartbeat_at=? WHERE id=?",
+            (now_iso(), os.getpid(), socket.gethostname(), now_iso(), run_id))
+
+    def set_identities(self, run_id: int, source_idn: str, meter_idn: str) -> None:
+        self.conn.execute("UPDATE runs SET source_idn=?, meter_idn=? WHERE id=?", (source_idn, meter_idn, run_id))
+
+    def finish_run(self, run_id: int, state: str, error: str | None = None) -> None:
+        assert state in STATES
+        self.conn.execute("UPDATE runs SET state=?, finished_at=?, error=? WHERE id=?",
+                          (state, now_iso(), error, run_id))
+
+    def event(self, run_id: int | None, kind: str, message: str) -> None:
+        self.conn.execute("INSERT INTO events (run_id, at, kind, message) VALUES (?, ?, ?, ?)",
+                          (run_id, now_iso(), kind, message))
+
+    def run(self, run_id: int) -> sqlite3.Row:
+        row = self.conn.execute("SELECT * FROM runs WHERE id=?", (run_id,)).fetchone()
+        if row is None:
+            raise InputError(f"there is no run {run_id}", file=self.path)
+        return row
+
+    def runs(self) -> list[dict[str, Any]]:
+        rows = self.conn.execute(
+            "SELECT r.id, r.name, r.state, r.points_total, r.started_at, r.finished_at,"
+            " (SELECT COUNT(*) FROM points p WHERE p.run_id = r.id) AS points_done"
+            " FROM runs r ORDER BY r.id").fetchall()
+        return [{"id": r["id"], "name": r["name"], "state": r["state"], "points_done": r["points_done"],
+                 "points_total": r["points_total"], "started_at": r["started_at"],
+                 "finished_at": r["finished_at"]} for r in rows]
+
+    # -- points ---------------------------------------------------------------------------
+    def done_indices(self, run_id: int) -> set[int]:
+        return {r[0] for r in self.conn.execute("SELECT idx FROM points WHERE run_id=?", (run_id,))}
+
+    def add_point(self, run_id: int, point: Any, result: PointResult) -> None:
+        """Store a point and its raw readings in one transaction; durable when this returns."""
+        with self._transaction():
+            self.conn.execute(
+                "INSERT INTO points (run_id, idx, frequency_hz, power_dbm, source_dbm, value_v, stdev_v, samples,"
+                " settle_s, settle_readings, settled, overload, measured_at) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?)",
+                (run_id, point.index, point.frequency_hz, point.power_dbm, point.source_dbm, result.value_v,
+                 result.stdev_v, result.samples, result.settle_s, result.settle_readings, int(result.settled),
+                 int(result.overload), now_iso()))
+            self.conn.executemany(
+                "INSERT INTO readings (run_id, idx, seq, t_s, value_v, phase) VALUES (?,?,?,?,?,?)",
+                [(run_id, point.index, seq, t, v, phase) for seq, (t, v, phase) in enumerate(result.readings)])
+            self.conn.execute("UPDATE runs SET heartbeat_at=? WHERE id=?", (now_iso(), run_id))
+
+    def points(self, run_id: int) -> list[sqlite3.Row]:
+        return self.conn.execute("SELECT * FROM points WHERE run_id=? ORDER BY idx", (run_id,)).fetchall()
+
+    def _transaction(self) -> "_Tx":
+        return _Tx(self.conn)
+
+
+class _Tx:
+    def __init__(self, conn: sqlite3.Connection) -> None:
+        self.conn = conn
+
+    def __enter__(self) -> None:
+        self.conn.execute("BEGIN IMMEDIATE")
+
+    def __exit__(self, exc_type: Any, exc: Any, tb: Any) -> None:
+        self.conn.execute("COMMIT" if exc_type is None else "ROLLBACK")
