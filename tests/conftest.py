@@ -1,0 +1,78 @@
+"""Shared fixtures: a simulated bench in its own process, plan files, a database path, the CLI."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+from typing import Any
+
+import pytest
+import yaml
+
+from runner.simproc import SimProcess
+
+DATA = Path(__file__).parent / "data"
+
+
+class RunningBench:
+    def __init__(self, proc: SimProcess, log: Path) -> None:
+        self.proc = proc
+        self.resources = proc.resources
+        self.log = log
+
+    def events(self) -> list[dict[str, Any]]:
+        """The simulator's log of source state changes (one JSON object per change)."""
+        return [json.loads(line) for line in self.log.read_text().splitlines() if line.strip()]
+
+
+@pytest.fixture
+def bench(tmp_path: Path):
+    """A fresh simulated bench (default physics) in a separate process, with an instrument log."""
+    log = tmp_path / "source-log.jsonl"
+    with SimProcess("--log", str(log)) as proc:
+        yield RunningBench(proc, log)
+
+
+def plan_dict(resources: dict[str, str], **overrides: Any) -> dict[str, Any]:
+    """A small valid plan for the simulated bench; top-level sections replaced by overrides."""
+    plan: dict[str, Any] = {
+        "name": "test-plan",
+        "dut": {"id": "T-1"},
+        "instruments": {
+            "source": {"driver": "scpi-source", "resource": resources["source"], "timeout_s": 2},
+            "meter": {"driver": "scpi-dmm", "resource": resources["meter"], "nplc": 0.1},
+        },
+        "path": {"loss_db": 6.08},
+        "limits": {"dut_max_dbm": 0},
+        "sweep": {"frequency_hz": [100e6], "power_dbm": {"start": -70, "stop": -10, "step": 5}},
+        "settle": {"tolerance_v": 0.0005, "timeout_s": 2},
+        "measure": {"samples": 4},
+        "analysis": {"fit_dbm": [-60, -20], "error_limit_db": 1.0},
+    }
+    plan.update(overrides)
+    return plan
+
+
+OFFLINE = {"source": "TCPIP::127.0.0.1::1::SOCKET", "meter": "TCPIP::127.0.0.1::2::SOCKET"}
+
+
+@pytest.fixture
+def write_plan(tmp_path: Path):
+    def write(plan: dict[str, Any] | str, name: str = "plan.yaml") -> Path:
+        path = tmp_path / name
+        path.write_text(plan if isinstance(plan, str) else yaml.safe_dump(plan, sort_keys=False))
+        return path
+    return write
+
+
+@pytest.fixture
+def db(tmp_path: Path) -> Path:
+    return tmp_path / "test.db"
+
+
+def cli(*args: str, timeout: float = 120, **kwargs: Any) -> subprocess.CompletedProcess[str]:
+    """Run the real command line in a child process."""
+    return subprocess.run([sys.executable, "-m", "runner", *args], capture_output=True, text=True,
+                          timeout=timeout, **kwargs)

@@ -1,0 +1,144 @@
+"""Plan format v1: loading, validation messages, expansion (DESIGN.md, "Plan format")."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+
+from drivers.errors import InputError
+from runner.plan import load_plan, parse_plan
+from runner.sweep import expand
+from tests.conftest import OFFLINE, cli, plan_dict
+
+REPO = Path(__file__).resolve().parent.parent
+
+
+def test_demo_plan_is_valid():
+    loaded = load_plan(REPO / "plans" / "demo.yaml")
+    assert loaded.plan.name == "demo-rssi-b7"
+    assert len(expand(loaded.plan)) == 3 * 101
+
+
+def test_every_documented_key_is_accepted(write_plan):
+    text = """
+name: rx-rssi-70mhz
+description: free text
+dut: {id: RXB-0042, notes: "..."}
+instruments:
+  source:
+    driver: scpi-source
+    resource: "TCPIP::127.0.0.1::5025::SOCKET"
+    timeout_s: 2
+  meter:
+    driver: scpi-dmm
+    resource: "ASRL/dev/ttyUSB0::INSTR"
+    nplc: 0.1
+path:
+  loss_db: 6.5
+limits:
+  dut_max_dbm: 10
+sweep:
+  frequency_hz: [50e6, 70e6, 90e6]
+  power_dbm: {start: -95, stop: 5, step: 1}
+settle:
+  tolerance_v: 0.0005
+  timeout_s: 5
+measure:
+  samples: 4
+analysis:
+  fit_dbm: [-70, -10]
+  error_limit_db: 1.0
+"""
+    plan = load_plan(write_plan(text)).plan
+    # PyYAML alone reads 70e6 as a string (YAML 1.1); the plan loader must read a number.
+    assert plan.sweep.axis_values("frequency_hz") == [50e6, 70e6, 90e6]
+    assert plan.path.loss(70e6) == 6.5
+
+
+def test_numbers_in_exponent_form_everywhere(write_plan):
+    plan = plan_dict(OFFLINE)
+    text = write_plan(plan).read_text().replace("loss_db: 6.08", "table: [[50e6, 6], [1.5e+8, 7]]")
+    text = text.replace("tolerance_v: 0.0005", "tolerance_v: 5e-4")
+    loaded = parse_plan(text, "p.yaml")
+    assert loaded.plan.path.loss(100e6) == pytest.approx(6.5)
+    assert loaded.plan.settle.tolerance_v == 5e-4
+
+
+def test_endpoints_inclusive_and_outer_axis_first():
+    plan = parse_plan(_yaml(plan_dict(OFFLINE, sweep={
+        "power_dbm": {"start": -10, "stop": -20, "step": -5},
+        "frequency_hz": {"start": 1e6, "stop": 3e6, "points": 3},
+    })), "p.yaml").plan
+    points = expand(plan)
+    assert [(p.power_dbm, p.frequency_hz) for p in points[:4]] == [(-10, 1e6), (-10, 2e6), (-10, 3e6), (-15, 1e6)]
+    assert points[-1].power_dbm == -20 and len(points) == 9
+    assert points[0].source_dbm == pytest.approx(-10 + 6.08)
+
+
+def test_unknown_key_names_file_line_and_key(write_plan):
+    plan = plan_dict(OFFLINE)
+    text = _yaml(plan).replace("samples: 4", "sampels: 4")
+    path = write_plan(text)
+    with pytest.raises(InputError) as info:
+        load_plan(path)
+    err = info.value
+    assert err.key == "measure.sampels"
+    assert err.line == text.splitlines().index("  sampels: 4") + 1
+    assert str(path) in str(err)
+
+
+@pytest.mark.parametrize("edit, key", [
+    (lambda p: p["limits"].update(dut_max_dbm=-30), "sweep.power_dbm"),
+    (lambda p: p["sweep"].update(power_dbm={"start": -70, "stop": -10, "step": 7}), "sweep.power_dbm"),
+    (lambda p: p["settle"].update(timeout_s=-1), "settle.timeout_s"),
+    (lambda p: p["instruments"]["source"].update(resource="127.0.0.1:5025"), "instruments.source.resource"),
+    (lambda p: p["instruments"]["meter"].update(driver="volt-o-matic"), "instruments.meter.driver"),
+    (lambda p: p["analysis"].update(fit_dbm=[-10, -60]), "analysis.fit_dbm"),
+])
+def test_bad_values_are_refused_with_their_key(edit, key):
+    plan = plan_dict(OFFLINE)
+    edit(plan)
+    with pytest.raises(InputError) as info:
+        parse_plan(_yaml(plan), "p.yaml")
+    assert info.value.key == key
+
+
+def test_nan_is_refused():
+    text = _yaml(plan_dict(OFFLINE)).replace("tolerance_v: 0.0005", "tolerance_v: .nan")
+    with pytest.raises(InputError) as info:
+        parse_plan(text, "p.yaml")
+    assert info.value.key == "settle.tolerance_v"
+
+
+def test_yaml_objects_are_never_constructed():
+    text = "!!python/object/apply:os.system ['echo pwned']\n"
+    with pytest.raises(InputError):
+        parse_plan(text, "p.yaml")
+
+
+def test_check_cli_exit_codes(write_plan, db):
+    good = write_plan(plan_dict(OFFLINE), "good.yaml")
+    ok = cli("check", str(good))
+    assert ok.returncode == 0, ok.stderr
+    bad = write_plan(_yaml(plan_dict(OFFLINE)).replace("name:", "nmae:"), "bad.yaml")
+    res = cli("check", str(bad))
+    assert res.returncode == 2
+    assert "bad.yaml, line 1" in res.stderr and "nmae" in res.stderr
+    assert "Traceback" not in res.stderr
+    res = cli("run", str(bad), "--db", str(db))
+    assert res.returncode == 2 and "Traceback" not in res.stderr
+    assert not db.exists(), "bad input must not create a database"
+
+
+def test_unreachable_instrument_is_a_clear_failure(write_plan, db):
+    res = cli("run", str(write_plan(plan_dict(OFFLINE))), "--db", str(db), timeout=60)
+    assert res.returncode == 1
+    assert "Traceback" not in res.stderr
+    assert "TCPIP::127.0.0.1::1::SOCKET" in res.stderr and "refused" in res.stderr
+
+
+def _yaml(plan):
+    import yaml
+
+    return yaml.safe_dump(plan, sort_keys=False)
