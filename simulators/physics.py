@@ -1,7 +1,7 @@
 """The physical bench the simulator pretends to be: source -> path -> detector -> meter.
 
 All of it is deterministic given the config and a seed, so a test can ask for the truth the
-simulator used (`BenchModel.dut_dbm`, `BenchModel.steady_output_v`) and compare measurements.
+simulator used (`BenchModel.dut_dbm`, `BenchModel.truth_v`) and compare measurements with it.
 Time is passed in explicitly (seconds, any monotonic origin) so the model is testable without
 sleeping; the servers pass `time.monotonic()`.
 """
@@ -14,6 +14,27 @@ import threading
 from dataclasses import dataclass, field, fields
 
 GHZ = 1e9
+BOLTZMANN = 1.380649e-23      # J/K, exact in the 2019 SI
+T0_K = 290.0                  # IEEE standard reference temperature for noise
+REF_OHM = 50.0
+
+
+def dbm_to_w(dbm: float) -> float:
+    return 1e-3 * 10.0 ** (dbm / 10.0)
+
+
+def w_to_dbm(watts: float) -> float:
+    return 10.0 * math.log10(watts / 1e-3)
+
+
+def vrms_to_dbm(volts: float, ohms: float = REF_OHM) -> float:
+    """Power of a sine of `volts` rms into `ohms`, in dBm (0.2236 V in 50 ohm is 0 dBm)."""
+    return w_to_dbm(volts * volts / ohms)
+
+
+def thermal_noise_dbm_per_hz(kelvin: float = T0_K) -> float:
+    """Available thermal noise power density kT, in dBm/Hz."""
+    return w_to_dbm(BOLTZMANN * kelvin)
 
 
 @dataclass
@@ -22,17 +43,20 @@ class SourceConfig:
     max_hz: float = 6e9
     min_dbm: float = -130.0
     max_dbm: float = 20.0
+    level_offset_db: float = 0.0        # level accuracy: actual minus set, at 0 Hz
+    flatness_db_per_ghz: float = 0.0    # and its change with frequency
+    level_settle_s: float = 0.0002      # the output reaches a new level this long after a change
 
 
 @dataclass
 class PathConfig:
-    """Cable + pad between the source port and the DUT input."""
+    """A fixed pad plus a cable whose loss grows as sqrt(f) (skin effect)."""
 
-    loss_db: float = 6.0            # at 0 Hz
-    loss_db_per_ghz: float = 0.8    # cable loss grows with frequency
+    pad_db: float = 6.0
+    cable_db_at_1ghz: float = 0.9
 
     def loss(self, frequency_hz: float) -> float:
-        return self.loss_db + self.loss_db_per_ghz * frequency_hz / GHZ
+        return self.pad_db + self.cable_db_at_1ghz * math.sqrt(max(frequency_hz, 0.0) / GHZ)
 
 
 @dataclass
@@ -40,42 +64,81 @@ class DetectorConfig:
     """A log detector: V = slope * (P_eff - intercept), P_eff with a soft floor and soft top."""
 
     slope_v_per_db: float = 0.0200
-    slope_tc_per_ghz: float = -0.03     # relative slope change per GHz
+    slope_change_per_ghz: float = -0.03   # relative slope change per GHz
     intercept_dbm: float = -92.0
     intercept_db_per_ghz: float = 2.0
-    floor_dbm: float = -82.0            # input-referred noise power (adds to the signal)
-    saturation_dbm: float = 4.0         # soft compression toward this input level
-    ripple_db: float = 0.0              # log-conformance ripple amplitude
-    ripple_period_db: float = 10.0
+    noise_bandwidth_hz: float = 10e6      # input-referred noise: kT * B * F adds to the signal
+    noise_figure_db: float = 22.0
+    saturation_dbm: float = 4.0           # soft compression toward this input level
+    ripple_db: float = 0.15               # log-conformance ripple of successive-detection stages,
+    ripple_period_db: float = 10.0        # with a period equal to the stage gain
     tau_rise_s: float = 0.002
     tau_fall_s: float = 0.006
-    output_noise_v: float = 0.0001      # rms at a 20 ms integration window
+    output_noise_v: float = 0.0001        # rms at a 20 ms integration window, strong signal
+    floor_noise_v: float = 0.0004         # extra rms (20 ms window) as the input nears the floor
+    slope_tc_per_c: float = -2e-4         # relative slope change per degree from 25 C
+    intercept_tc_db_per_c: float = 0.01   # intercept shift per degree from 25 C
 
-    def slope(self, frequency_hz: float) -> float:
-        return self.slope_v_per_db * (1.0 + self.slope_tc_per_ghz * frequency_hz / GHZ)
+    @property
+    def floor_dbm(self) -> float:
+        return thermal_noise_dbm_per_hz() + 10 * math.log10(self.noise_bandwidth_hz) + self.noise_figure_db
 
-    def intercept(self, frequency_hz: float) -> float:
-        return self.intercept_dbm + self.intercept_db_per_ghz * frequency_hz / GHZ
+    def slope(self, frequency_hz: float, temperature_c: float = 25.0) -> float:
+        return (self.slope_v_per_db * (1.0 + self.slope_change_per_ghz * frequency_hz / GHZ)
+                * (1.0 + self.slope_tc_per_c * (temperature_c - 25.0)))
+
+    def intercept(self, frequency_hz: float, temperature_c: float = 25.0) -> float:
+        return (self.intercept_dbm + self.intercept_db_per_ghz * frequency_hz / GHZ
+                + self.intercept_tc_db_per_c * (temperature_c - 25.0))
+
+    def noise_share(self, dut_dbm: float) -> float:
+        """N / (S + N) at the input: 0 for a strong signal, 1 with no signal."""
+        noise = dbm_to_w(self.floor_dbm)
+        signal = 0.0 if dut_dbm == -math.inf else dbm_to_w(dut_dbm)
+        return noise / (signal + noise)
 
     def effective_dbm(self, dut_dbm: float) -> float:
         """Input level the log law sees: power sum with the floor, harmonic sum with saturation."""
-        signal_mw = 0.0 if dut_dbm == -math.inf else 10.0 ** (dut_dbm / 10.0)
-        with_floor = 10.0 * math.log10(signal_mw + 10.0 ** (self.floor_dbm / 10.0))
+        signal_w = 0.0 if dut_dbm == -math.inf else dbm_to_w(dut_dbm)
+        with_floor = w_to_dbm(signal_w + dbm_to_w(self.floor_dbm))
         compressed = -10.0 * math.log10(10.0 ** (-with_floor / 10.0) + 10.0 ** (-self.saturation_dbm / 10.0))
         if self.ripple_db:
             compressed += self.ripple_db * math.sin(2 * math.pi * compressed / self.ripple_period_db)
         return compressed
 
-    def steady_v(self, dut_dbm: float, frequency_hz: float) -> float:
-        return self.slope(frequency_hz) * (self.effective_dbm(dut_dbm) - self.intercept(frequency_hz))
+    def steady_v(self, dut_dbm: float, frequency_hz: float, temperature_c: float = 25.0) -> float:
+        return self.slope(frequency_hz, temperature_c) * (
+            self.effective_dbm(dut_dbm) - self.intercept(frequency_hz, temperature_c))
+
+    def noise_v(self, dut_dbm: float, window_s: float) -> float:
+        """Output noise rms seen by a meter integrating over `window_s` (white noise: 1/sqrt(T))."""
+        at_20ms = self.output_noise_v + self.floor_noise_v * self.noise_share(dut_dbm)
+        return at_20ms * math.sqrt(0.02 / max(window_s, 1e-5))
 
 
 @dataclass
 class MeterConfig:
     line_hz: float = 50.0
     default_nplc: float = 0.1
-    range_v: float = 10.0
-    resolution_v: float = 1e-6
+    noise_v: float = 2e-6                 # the meter's own rms noise at 1 NPLC
+    ranges_v: tuple[float, ...] = (0.1, 1.0, 10.0, 100.0)
+    default_range_v: float = 10.0
+    overrange: float = 1.2                # readings beyond range * overrange are overloads
+    resolution_ppm: float = 1.0           # of range
+
+
+@dataclass
+class AdcConfig:
+    """A serial ADC board: bipolar input, counts out."""
+
+    full_scale_v: float = 5.0
+    bits: int = 24
+    conversion_s: float = 0.005
+    offset_counts: int = 37               # a small zero offset the plan's offset key removes
+
+    @property
+    def lsb_v(self) -> float:
+        return 2 * self.full_scale_v / 2 ** self.bits
 
 
 @dataclass
@@ -84,56 +147,88 @@ class BenchConfig:
     path: PathConfig = field(default_factory=PathConfig)
     detector: DetectorConfig = field(default_factory=DetectorConfig)
     meter: MeterConfig = field(default_factory=MeterConfig)
+    adc: AdcConfig = field(default_factory=AdcConfig)
+    temperature_c: float = 25.0
     seed: int = 1
+    faults: list[dict] = field(default_factory=list)
 
     @classmethod
     def from_dict(cls, data: dict) -> "BenchConfig":
         """Build from a nested dict (a TOML file); unknown keys are errors."""
         config = cls()
         for section, values in data.items():
-            if section == "seed":
-                config.seed = int(values)
+            if section in ("seed", "temperature_c"):
+                setattr(config, section, type(getattr(config, section))(values))
+                continue
+            if section == "fault":
+                config.faults = list(values)
                 continue
             part = getattr(config, section, None)
-            if part is None or not isinstance(values, dict):
+            if part is None or not isinstance(values, dict) or section == "faults":
                 raise ValueError(f"unknown simulator config section '{section}'")
-            names = {f.name for f in fields(part)}
+            kinds = {f.name: f for f in fields(part)}
             for key, value in values.items():
-                if key not in names:
+                if key not in kinds:
                     raise ValueError(f"unknown simulator config key '{section}.{key}'")
-                setattr(part, key, float(value))
+                current = getattr(part, key)
+                setattr(part, key, tuple(float(v) for v in value) if isinstance(current, tuple)
+                        else type(current)(value))
         return config
 
 
+@dataclass
+class _Segment:
+    t0: float
+    start_v: float
+    target_v: float
+    tau: float
+
+
 class FirstOrderOutput:
-    """A first-order approach to a target with different rise and fall time constants."""
+    """A first-order approach to a target, with different rise and fall time constants.
+
+    Kept as segments so a change scheduled slightly in the future (the source's own level
+    settling) and an integrating reading across a change are both exact.
+    """
 
     def __init__(self, value: float, t: float) -> None:
-        self.start_v = value
-        self.target_v = value
-        self.t0 = t
-        self.tau = 1.0
+        self.segments = [_Segment(t, value, value, 1.0)]
+
+    def _at(self, seg: _Segment, t: float) -> float:
+        return seg.target_v + (seg.start_v - seg.target_v) * math.exp(-max(0.0, t - seg.t0) / seg.tau)
 
     def value(self, t: float) -> float:
-        dt = max(0.0, t - self.t0)
-        return self.target_v + (self.start_v - self.target_v) * math.exp(-dt / self.tau)
+        seg = self.segments[0]
+        for s in self.segments:
+            if s.t0 <= t:
+                seg = s
+        return self._at(seg, t)
 
     def mean(self, t_a: float, t_b: float) -> float:
         """Exact mean of the output over [t_a, t_b] (what an integrating meter sees)."""
         if t_b <= t_a:
             return self.value(t_a)
-        a, b = max(0.0, t_a - self.t0), max(0.0, t_b - self.t0)
-        if b <= 0.0:
-            return self.start_v
-        gap = self.start_v - self.target_v
-        integral = self.target_v * (b - a) + gap * self.tau * (math.exp(-a / self.tau) - math.exp(-b / self.tau))
-        return integral / (b - a)
+        total = 0.0
+        for i, seg in enumerate(self.segments):
+            end = self.segments[i + 1].t0 if i + 1 < len(self.segments) else math.inf
+            lo, hi = max(t_a, seg.t0 if i else -math.inf), min(t_b, end)
+            if hi <= lo:
+                continue
+            a, b = max(0.0, lo - seg.t0), max(0.0, hi - seg.t0)
+            gap = seg.start_v - seg.target_v
+            flat = max(0.0, min(hi, seg.t0) - lo)            # before the first segment's start
+            total += seg.start_v * flat
+            total += seg.target_v * (b - a) + gap * seg.tau * (math.exp(-a / seg.tau) - math.exp(-b / seg.tau))
+        return total / (t_b - t_a)
 
     def retarget(self, target: float, t: float, tau_rise: float, tau_fall: float) -> None:
+        """From time t on, approach `target` (t may lie slightly in the future)."""
         current = self.value(t)
-        self.start_v, self.t0 = current, t
-        self.tau = tau_rise if target >= current else tau_fall
-        self.target_v = target
+        self.segments = [s for s in self.segments if s.t0 < t]
+        tau = tau_rise if target >= current else tau_fall
+        self.segments.append(_Segment(t, current, target, tau))
+        while len(self.segments) > 2 and self.segments[1].t0 < t - 10.0:
+            self.segments.pop(0)
 
 
 class BenchModel:
@@ -147,22 +242,27 @@ class BenchModel:
         self.level_dbm = self.config.source.min_dbm
         self.output_on = False
         self.output = FirstOrderOutput(self.steady_output_v(), t)
+        self._input_dbm = self.dut_dbm()
 
     # -- truth --------------------------------------------------------------------------
+    def source_error_db(self, frequency_hz: float) -> float:
+        s = self.config.source
+        return s.level_offset_db + s.flatness_db_per_ghz * frequency_hz / GHZ
+
     def dut_dbm(self, frequency_hz: float | None = None, level_dbm: float | None = None,
                 output_on: bool | None = None) -> float:
-        """DUT-plane level for a source state (the current one by default)."""
+        """True DUT-plane level for a source state (the current one by default)."""
         f = self.frequency_hz if frequency_hz is None else frequency_hz
         level = self.level_dbm if level_dbm is None else level_dbm
         on = self.output_on if output_on is None else output_on
-        return level - self.config.path.loss(f) if on else -math.inf
+        return level + self.source_error_db(f) - self.config.path.loss(f) if on else -math.inf
 
     def steady_output_v(self) -> float:
-        return self.config.detector.steady_v(self.dut_dbm(), self.frequency_hz)
+        return self.truth_v(self.dut_dbm(), self.frequency_hz)
 
     def truth_v(self, dut_dbm: float, frequency_hz: float) -> float:
-        """Noiseless settled detector output for a DUT-plane level: what a test compares to."""
-        return self.config.detector.steady_v(dut_dbm, frequency_hz)
+        """Noiseless settled detector output for a true DUT-plane level: what tests compare to."""
+        return self.config.detector.steady_v(dut_dbm, frequency_hz, self.config.temperature_c)
 
     # -- source side --------------------------------------------------------------------
     def set_source(self, t: float, *, frequency_hz: float | None = None, level_dbm: float | None = None,
@@ -175,18 +275,23 @@ class BenchModel:
             if output_on is not None:
                 self.output_on = output_on
             det = self.config.detector
-            self.output.retarget(self.steady_output_v(), t, det.tau_rise_s, det.tau_fall_s)
+            self._input_dbm = self.dut_dbm()
+            self.output.retarget(self.steady_output_v(), t + self.config.source.level_settle_s,
+                                 det.tau_rise_s, det.tau_fall_s)
 
     # -- meter side ---------------------------------------------------------------------
     def integration_s(self, nplc: float) -> float:
+        """An integrating DMM's aperture: NPLC power-line cycles."""
         return nplc / self.config.meter.line_hz
 
     def reading(self, t_start: float, t_end: float) -> float:
-        """A meter reading integrated over [t_start, t_end]: the mean output plus noise."""
+        """Detector output integrated over [t_start, t_end]: the exact mean plus noise."""
         with self.lock:
             mean = self.output.mean(t_start, t_end)
             window = max(t_end - t_start, 1e-5)
-            sigma = self.config.detector.output_noise_v * math.sqrt(0.02 / window)
-            value = mean + self.rng.gauss(0.0, sigma)
-        resolution = self.config.meter.resolution_v
-        return round(value / resolution) * resolution
+            sigma = self.config.detector.noise_v(self._input_dbm, window)
+            return mean + self.rng.gauss(0.0, sigma)
+
+    def meter_noise(self, nplc: float) -> float:
+        with self.lock:
+            return self.rng.gauss(0.0, self.config.meter.noise_v / math.sqrt(max(nplc, 1e-3)))
