@@ -171,19 +171,18 @@ def export(run_id: int, fmt: str, db: str | None, output: str | None) -> None:
         write_export(store, run_id, fmt, sys.stdout)
 
 
-@main.command()
-@click.option("--source-port", type=int, default=0, show_default=True, help="TCP port of the source (0 = any free)")
-@click.option("--meter-port", type=int, default=0, show_default=True, help="TCP port of the meter (0 = any free)")
-@click.option("--config", type=click.Path(exists=True, dir_okay=False), help="simulator config (TOML)")
-@click.option("--log", type=click.Path(dir_okay=False), help="append every source state change here (JSON lines)")
-def sim(source_port: int, meter_port: int, config: str | None, log: str | None) -> None:
-    """Serve the simulated bench until SIGTERM/SIGINT; prints one JSON line of resources."""
-    from simulators.server import serve
+@main.command(context_settings={"ignore_unknown_options": True, "allow_extra_args": True,
+                               "help_option_names": []})
+@click.pass_context
+def sim(ctx: click.Context) -> None:
+    """Serve the simulated bench until SIGTERM/SIGINT; prints one JSON line of resources.
 
-    try:
-        sys.exit(serve(source_port=source_port, meter_port=meter_port, config_path=config, log_path=log))
-    except (OSError, ValueError) as exc:
-        _fail(f"cannot start the simulated bench: {exc}", 2)
+    Options: --source-port N, --meter-port N (0 = any free), --config FILE (TOML), --log FILE,
+    --fault KIND@INSTRUMENT[:key=value,...] (repeatable), --seed N; `nightbench sim --help` for more.
+    """
+    from simulators.server import main as sim_main
+
+    sys.exit(sim_main(ctx.args, prog="nightbench sim"))
 
 
 @main.command()

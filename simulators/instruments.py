@@ -1,4 +1,4 @@
-"""Simulated instruments: an RF source and a DC voltmeter, sharing one BenchModel."""
+"""Simulated instruments sharing one BenchModel: an RF source, a DC voltmeter, an ADC board."""
 
 from __future__ import annotations
 
@@ -7,10 +7,12 @@ import math
 import time
 from typing import Callable, TextIO
 
-from simulators.physics import BenchModel
+from simulators.faults import FaultInjector
+from simulators.physics import BenchModel, vrms_to_dbm
 from simulators.scpi import ScpiCommandError, ScpiInstrument, one_arg, parse_bool, parse_number
 
 Clock = Callable[[], float]
+OVERRANGE = "+9.90000000E+37"   # SCPI-1999 vol. 1, 7.2.1: the value returned for overrange
 
 
 class SimSource(ScpiInstrument):
@@ -18,23 +20,26 @@ class SimSource(ScpiInstrument):
 
     idn = "NIGHTBENCH-SIM,NS-RF100 Virtual Signal Source,SIM0001,1.0"
 
-    def __init__(self, model: BenchModel, clock: Clock = time.monotonic, log: TextIO | None = None) -> None:
+    def __init__(self, model: BenchModel, clock: Clock = time.monotonic, log: TextIO | None = None,
+                 faults: FaultInjector | None = None) -> None:
         super().__init__()
         self.model = model
         self.clock = clock
         self.log = log
-        cfg = model.config.source
+        self.faults = faults or FaultInjector([])
+        self._limits = model.config.source
         self.add("[SOURce]:FREQuency[:CW]", self._set_freq)
         self.add("[SOURce]:FREQuency[:CW]?", lambda a: f"{self.model.frequency_hz:.6f}")
         self.add("[SOURce]:POWer[:LEVel][:IMMediate][:AMPLitude]", self._set_level)
         self.add("[SOURce]:POWer[:LEVel][:IMMediate][:AMPLitude]?", lambda a: f"{self.model.level_dbm:.3f}")
         self.add("OUTPut[:STATe]", self._set_output)
         self.add("OUTPut[:STATe]?", lambda a: "1" if self.model.output_on else "0")
-        self._limits = cfg
         self._write_log("start")
 
     def reset(self) -> None:
-        self.model.set_source(self.clock(), level_dbm=self._limits.min_dbm, output_on=False)
+        """*RST: output off first, then the lowest level (IEEE 488.2 10.32: a safe known state)."""
+        self.model.set_source(self.clock(), output_on=False)
+        self.model.set_source(self.clock(), level_dbm=self._limits.min_dbm)
         self._write_log("*RST")
 
     def _set_freq(self, args: list[str]) -> None:
@@ -44,7 +49,21 @@ class SimSource(ScpiInstrument):
         self._write_log("frequency")
 
     def _set_level(self, args: list[str]) -> None:
-        value = parse_number(one_arg(args), ("DBM",), minimum=self._limits.min_dbm, maximum=self._limits.max_dbm)
+        """Level in dBm, or as an rms voltage into 50 ohm with a V/MV/UV suffix."""
+        text = one_arg(args).strip()
+        upper = text.upper()
+        if upper.endswith(("MV", "UV", "V")) and not upper.endswith("DBM"):
+            volts = parse_number(text, ("V", "MV", "UV"), minimum=0.0)
+            if volts <= 0:
+                raise ScpiCommandError(-222, "a level in volts must be positive")
+            value = vrms_to_dbm(volts)
+            if not (self._limits.min_dbm <= value <= self._limits.max_dbm):
+                raise ScpiCommandError(-222, f"{value:.2f} dBm outside the source's range")
+        else:
+            value = parse_number(text, ("DBM",), minimum=self._limits.min_dbm, maximum=self._limits.max_dbm)
+        refusal = self.faults.refuses_level(value)
+        if refusal is not None:
+            raise ScpiCommandError(refusal.code or -222, f"level {value:.2f} dBm refused")
         self.model.set_source(self.clock(), level_dbm=value)
         self._write_log("level")
 
@@ -53,7 +72,7 @@ class SimSource(ScpiInstrument):
         self._write_log("output")
 
     def _write_log(self, what: str) -> None:
-        """One JSON line per state change: the instrument log safety tests read."""
+        """One JSON line per state change: the instrument log that safety tests read."""
         if self.log is None:
             return
         m = self.model
@@ -70,31 +89,100 @@ class SimMeter(ScpiInstrument):
 
     idn = "NIGHTBENCH-SIM,NS-DV200 Virtual DC Meter,SIM0002,1.0"
 
-    def __init__(self, model: BenchModel, clock: Clock = time.monotonic, sleep: Callable[[float], None] = time.sleep) -> None:
+    def __init__(self, model: BenchModel, clock: Clock = time.monotonic, sleep: Callable[[float], None] = time.sleep,
+                 faults: FaultInjector | None = None) -> None:
         super().__init__()
         self.model = model
         self.clock = clock
         self.sleep = sleep
-        self.nplc = model.config.meter.default_nplc
-        self.add("CONFigure[:VOLTage][:DC]", lambda a: None)
+        self.faults = faults or FaultInjector([])
+        self.reset()
+        self.add("CONFigure[:VOLTage][:DC]", self._configure)
         self.add("[SENSe]:VOLTage[:DC]:NPLCycles", self._set_nplc)
         self.add("[SENSe]:VOLTage[:DC]:NPLCycles?", lambda a: f"{self.nplc:g}")
+        self.add("[SENSe]:VOLTage[:DC]:RANGe[:UPPer]", self._set_range)
+        self.add("[SENSe]:VOLTage[:DC]:RANGe[:UPPer]?", lambda a: f"{self.range_v:g}")
         self.add("READ?", self._read)
         self.add("MEASure[:VOLTage][:DC]?", self._read)
 
     def reset(self) -> None:
-        self.nplc = self.model.config.meter.default_nplc
+        cfg = self.model.config.meter
+        self.nplc = cfg.default_nplc
+        self.range_v = cfg.default_range_v
+
+    def _configure(self, args: list[str]) -> None:
+        if args and args[0].upper() not in ("DEF", "AUTO"):
+            self._set_range(args[:1])
 
     def _set_nplc(self, args: list[str]) -> None:
         self.nplc = parse_number(one_arg(args), minimum=0.001, maximum=100.0)
 
-    def _read(self, args: list[str]) -> str:
-        if args:
-            raise ScpiCommandError(-108)
+    def _set_range(self, args: list[str]) -> None:
+        wanted = parse_number(one_arg(args), ("V", "MV"), minimum=0.0,
+                              maximum=max(self.model.config.meter.ranges_v))
+        self.range_v = min(r for r in self.model.config.meter.ranges_v if r >= wanted)
+
+    def read_volts(self) -> float | None:
+        """Integrate one reading (takes NPLC/line frequency of real time); None on overload."""
+        cfg = self.model.config.meter
         window = self.model.integration_s(self.nplc)
         start = self.clock()
         self.sleep(window)
-        value = self.model.reading(start, start + window)
-        if abs(value) > self.model.config.meter.range_v:
-            return "+9.90000000E+37"
-        return f"{value:+.8E}"
+        value = self.model.reading(start, start + window) + self.model.meter_noise(self.nplc)
+        if self.faults.overload("meter") or abs(value) > self.range_v * cfg.overrange:
+            return None
+        step = self.range_v * cfg.resolution_ppm * 1e-6
+        return round(value / step) * step
+
+    def _read(self, args: list[str]) -> str:
+        if args:
+            raise ScpiCommandError(-108)
+        value = self.read_volts()
+        return OVERRANGE if value is None else f"{value:+.8E}"
+
+
+class SimAdc:
+    """An invented serial ADC board with a terse line protocol (not SCPI): counts, not volts.
+
+    `V` -> identity; `R` -> `R=+00012345` (one conversion, or the mean of `A n` conversions),
+    `R=OVER` when clipped; `A n` -> `OK` (average n conversions); anything else -> `ERR 1`.
+    """
+
+    idn = "NS-ADC24 virtual ADC board v1.2 SIM0003"
+
+    def __init__(self, model: BenchModel, clock: Clock = time.monotonic, sleep: Callable[[float], None] = time.sleep,
+                 faults: FaultInjector | None = None) -> None:
+        self.model = model
+        self.clock = clock
+        self.sleep = sleep
+        self.faults = faults or FaultInjector([])
+        self.average = 1
+
+    def push_error(self, code: int, detail: str = "") -> None:
+        """The line protocol has no error queue: malformed input just gets `ERR 1` or nothing."""
+
+    def execute(self, message: str) -> str | None:
+        words = message.strip().split()
+        if not words:
+            return None
+        cmd = words[0].upper()
+        if cmd == "V" and len(words) == 1:
+            return self.idn
+        if cmd == "A" and len(words) == 2 and words[1].isdigit() and 1 <= int(words[1]) <= 256:
+            self.average = int(words[1])
+            return "OK"
+        if cmd == "R" and len(words) == 1:
+            return self._read()
+        return "ERR 1"
+
+    def _read(self) -> str:
+        cfg = self.model.config.adc
+        window = cfg.conversion_s * self.average
+        start = self.clock()
+        self.sleep(window)
+        volts = self.model.reading(start, start + window)
+        counts = round(volts / cfg.lsb_v) + cfg.offset_counts
+        limit = 2 ** (cfg.bits - 1)
+        if self.faults.overload("adc") or not (-limit <= counts < limit):
+            return "R=OVER"
+        return f"R={counts:+09d}"

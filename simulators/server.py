@@ -1,117 +1,145 @@
-"""Serve the simulated bench: one loopback TCP port per instrument, in its own process.
+"""Serve the simulated bench in its own process: TCP ports and pseudo-terminals.
 
 `python -m simulators.server` (or `nightbench sim`) prints one JSON line with the VISA resource
-strings, then serves until SIGTERM or SIGINT.
+strings, then serves until SIGTERM or SIGINT:
+
+    {"source": "TCPIP::127.0.0.1::P::SOCKET", "meter": "TCPIP::127.0.0.1::Q::SOCKET",
+     "meter_serial": "ASRL/dev/pts/N::INSTR", "adc_serial": "ASRL/dev/pts/M::INSTR"}
+
+The meter is one instrument reachable two ways (LAN and serial), as real meters are.
 """
 
 from __future__ import annotations
 
 import argparse
 import json
+import os
+import pty
 import signal
 import socket
-import socketserver
 import sys
 import threading
 import tomllib
-from pathlib import Path
-from typing import TextIO
+import tty
+from typing import Any, TextIO
 
-from simulators.instruments import SimMeter, SimSource
+from simulators.faults import FaultInjector, parse_fault_flag
+from simulators.instruments import SimAdc, SimMeter, SimSource
+from simulators.links import PtyStream, SocketStream, serve_stream
 from simulators.physics import BenchConfig, BenchModel
-from simulators.scpi import ScpiInstrument
 
 
-class _Handler(socketserver.StreamRequestHandler):
-    """One client connection: newline-terminated program messages in, responses out."""
+class TcpPort:
+    """One listening loopback port for one instrument; a thread per client."""
 
-    def setup(self) -> None:
-        super().setup()
-        self.connection.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
-
-    def handle(self) -> None:
-        server: InstrumentServer = self.server  # type: ignore[assignment]
-        while True:
-            try:
-                raw = self.rfile.readline()
-            except OSError:
-                return
-            if not raw:
-                return
-            message = raw.decode("ascii", errors="replace").rstrip("\r\n")
-            with server.lock:
-                reply = server.instrument.execute(message)
-            if reply is not None:
-                try:
-                    self.wfile.write(reply.encode("ascii") + b"\n")
-                except OSError:
-                    return
-
-
-class InstrumentServer(socketserver.ThreadingTCPServer):
-    daemon_threads = True
-    allow_reuse_address = True
-
-    def __init__(self, port: int, instrument: ScpiInstrument) -> None:
-        super().__init__(("127.0.0.1", port), _Handler)
-        self.instrument = instrument
-        self.lock = threading.Lock()
-
-    @property
-    def port(self) -> int:
-        return self.server_address[1]
+    def __init__(self, port: int, instrument: Any, name: str, bench: "Bench") -> None:
+        self.sock = socket.create_server(("127.0.0.1", port), reuse_port=False)
+        self.sock.settimeout(0.1)
+        self.instrument, self.name, self.bench = instrument, name, bench
 
     @property
     def resource(self) -> str:
-        return f"TCPIP::127.0.0.1::{self.port}::SOCKET"
+        return f"TCPIP::127.0.0.1::{self.sock.getsockname()[1]}::SOCKET"
+
+    def serve(self) -> None:
+        while not self.bench.stop_event.is_set():
+            try:
+                conn, _ = self.sock.accept()
+            except TimeoutError:
+                continue
+            except OSError:
+                return
+            if self.bench.faults.away(self.name) == "drop":
+                conn.close()   # rebooting: accepts, then hangs up
+                continue
+            threading.Thread(target=serve_stream, daemon=True, args=(
+                SocketStream(conn), self.instrument, self.name, self.bench.faults,
+                self.bench.locks[self.name], self.bench.stop_event)).start()
+
+    def close(self) -> None:
+        self.sock.close()
+
+
+class PtyPort:
+    """A pseudo-terminal for one instrument; the path is what a client opens as ASRL<path>::INSTR."""
+
+    def __init__(self, instrument: Any, name: str, bench: "Bench") -> None:
+        self.master, self.slave = pty.openpty()
+        tty.setraw(self.slave)
+        self.path = os.ttyname(self.slave)
+        self.instrument, self.name, self.bench = instrument, name, bench
+
+    @property
+    def resource(self) -> str:
+        return f"ASRL{self.path}::INSTR"
+
+    def serve(self) -> None:
+        serve_stream(PtyStream(self.master), self.instrument, self.name, self.bench.faults,
+                     self.bench.locks[self.name], self.bench.stop_event, can_drop=False)
+
+    def close(self) -> None:
+        for fd in (self.master, self.slave):
+            try:
+                os.close(fd)
+            except OSError:
+                pass
 
 
 class Bench:
-    """The whole simulated bench: model, instruments and their servers."""
+    """The whole simulated bench: model, instruments, faults and the ports serving them."""
 
     def __init__(self, config: BenchConfig | None = None, *, source_port: int = 0, meter_port: int = 0,
-                 log: TextIO | None = None) -> None:
-        self.model = BenchModel(config)
-        self.source = SimSource(self.model, log=log)
-        self.meter = SimMeter(self.model)
-        self.servers = [InstrumentServer(source_port, self.source), InstrumentServer(meter_port, self.meter)]
-        self._threads: list[threading.Thread] = []
+                 log: TextIO | None = None, serial: bool = True) -> None:
+        self.config = config or BenchConfig()
+        self.model = BenchModel(self.config)
+        self.faults = FaultInjector(self.config.faults, seed=self.config.seed)
+        self.stop_event = threading.Event()
+        self.locks = {name: threading.Lock() for name in ("source", "meter", "adc")}
+        self.source = SimSource(self.model, log=log, faults=self.faults)
+        self.meter = SimMeter(self.model, faults=self.faults)
+        self.adc = SimAdc(self.model, faults=self.faults)
+        self.ports: list[Any] = [TcpPort(source_port, self.source, "source", self),
+                                 TcpPort(meter_port, self.meter, "meter", self)]
+        if serial:
+            self.ports += [PtyPort(self.meter, "meter", self), PtyPort(self.adc, "adc", self)]
 
     def resources(self) -> dict[str, str | None]:
-        return {"source": self.servers[0].resource, "meter": self.servers[1].resource, "meter_serial": None}
+        serial = len(self.ports) > 2
+        return {"source": self.ports[0].resource, "meter": self.ports[1].resource,
+                "meter_serial": self.ports[2].resource if serial else None,
+                "adc_serial": self.ports[3].resource if serial else None}
 
     def start(self) -> None:
-        for server in self.servers:
-            t = threading.Thread(target=server.serve_forever, kwargs={"poll_interval": 0.05}, daemon=True)
-            t.start()
-            self._threads.append(t)
+        for port in self.ports:
+            threading.Thread(target=port.serve, daemon=True).start()
 
     def stop(self) -> None:
-        for server in self.servers:
-            server.shutdown()
-            server.server_close()
+        self.stop_event.set()
+        for port in self.ports:
+            port.close()
 
 
-def load_config(path: str | None) -> BenchConfig:
-    if not path:
-        return BenchConfig()
-    with open(path, "rb") as fh:
-        return BenchConfig.from_dict(tomllib.load(fh))
+def load_config(path: str | None, fault_flags: list[str] = (), seed: int | None = None) -> BenchConfig:
+    data: dict[str, Any] = {}
+    if path:
+        with open(path, "rb") as fh:
+            data = tomllib.load(fh)
+    config = BenchConfig.from_dict(data)
+    config.faults = config.faults + [parse_fault_flag(f) for f in fault_flags]
+    if seed is not None:
+        config.seed = seed
+    return config
 
 
 def serve(*, source_port: int = 0, meter_port: int = 0, config_path: str | None = None,
-          log_path: str | None = None) -> int:
+          log_path: str | None = None, faults: list[str] = (), seed: int | None = None) -> int:
     """Run the bench in this process until SIGTERM/SIGINT; print the resource line first."""
-    config = load_config(config_path)
+    config = load_config(config_path, faults, seed)
     log = open(log_path, "a", encoding="utf-8") if log_path else None
     bench = Bench(config, source_port=source_port, meter_port=meter_port, log=log)
     stop = threading.Event()
-
-    def _stop(signum: int, frame: object) -> None:
-        stop.set()
-
-    signal.signal(signal.SIGTERM, _stop)
-    signal.signal(signal.SIGINT, _stop)
+    signal.signal(signal.SIGTERM, lambda *_: stop.set())
+    signal.signal(signal.SIGINT, lambda *_: stop.set())
     bench.start()
     print(json.dumps(bench.resources()), flush=True)
     try:
@@ -124,15 +152,27 @@ def serve(*, source_port: int = 0, meter_port: int = 0, config_path: str | None 
     return 0
 
 
-def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="simulators.server", description=__doc__)
-    parser.add_argument("--source-port", type=int, default=0)
-    parser.add_argument("--meter-port", type=int, default=0)
-    parser.add_argument("--config", help="simulator config file (TOML)")
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--source-port", type=int, default=0, help="TCP port of the source (0 = any free)")
+    parser.add_argument("--meter-port", type=int, default=0, help="TCP port of the meter (0 = any free)")
+    parser.add_argument("--config", help="simulator config file (TOML: [source] [path] [detector] [meter] "
+                                         "[adc] sections, [[fault]] tables)")
     parser.add_argument("--log", help="append one JSON line per source state change to this file")
+    parser.add_argument("--fault", action="append", default=[],
+                        help="inject a fault: KIND@INSTRUMENT[:key=value,...], e.g. drop@meter:after=20")
+    parser.add_argument("--seed", type=int, help="seed for noise and faults (default: the config's, 1)")
+
+
+def main(argv: list[str] | None = None, prog: str = "simulators.server") -> int:
+    parser = argparse.ArgumentParser(prog=prog, description="Serve the simulated bench.")
+    add_arguments(parser)
     args = parser.parse_args(argv)
-    return serve(source_port=args.source_port, meter_port=args.meter_port, config_path=args.config,
-                 log_path=args.log)
+    try:
+        return serve(source_port=args.source_port, meter_port=args.meter_port, config_path=args.config,
+                     log_path=args.log, faults=args.fault, seed=args.seed)
+    except (OSError, ValueError, tomllib.TOMLDecodeError) as exc:
+        print(f"simulators.server: cannot start the simulated bench: {exc}", file=sys.stderr)
+        return 2
 
 
 if __name__ == "__main__":
