@@ -44,7 +44,7 @@ def plan_dict(resources: dict[str, str], **overrides: Any) -> dict[str, Any]:
             "source": {"driver": "scpi-source", "resource": resources["source"], "timeout_s": 2},
             "meter": {"driver": "scpi-dmm", "resource": resources["meter"], "nplc": 0.1},
         },
-        "path": {"loss_db": 6.08},
+        "path": {"loss_db": 6.28},
         "limits": {"dut_max_dbm": 0},
         "sweep": {"frequency_hz": [100e6], "power_dbm": {"start": -70, "stop": -10, "step": 5}},
         "settle": {"tolerance_v": 0.0005, "timeout_s": 2},
@@ -76,3 +76,31 @@ def cli(*args: str, timeout: float = 120, **kwargs: Any) -> subprocess.Completed
     """Run the real command line in a child process."""
     return subprocess.run([sys.executable, "-m", "runner", *args], capture_output=True, text=True,
                           timeout=timeout, **kwargs)
+
+
+@pytest.fixture
+def inproc_bench():
+    """Factory: a simulated bench served from threads of this process (for simulator tests that
+    need its internals); every bench made is stopped at the end of the test."""
+    from simulators.physics import BenchConfig
+    from simulators.server import Bench
+
+    made = []
+
+    def make(config: "BenchConfig | None" = None, **kwargs: Any) -> "Bench":
+        b = Bench(config or BenchConfig(), **kwargs)
+        b.start()
+        made.append(b)
+        return b
+
+    yield make
+    for b in made:
+        b.stop()
+
+
+def session(resource: str, timeout_s: float = 2.0, name: str = "instrument"):
+    """A real pyvisa-py session to a simulated instrument."""
+    from drivers.scpi import ScpiSession
+    from drivers.transport import open_transport
+
+    return ScpiSession(open_transport(resource, timeout_s=timeout_s), name)

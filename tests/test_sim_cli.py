@@ -19,13 +19,41 @@ def test_sim_prints_resources_serves_and_stops_cleanly(sig):
     try:
         line = proc.stdout.readline()
         resources = json.loads(line)
-        assert set(resources) == {"source", "meter", "meter_serial"}
+        # DESIGN.md sim line: source, meter, meter_serial (adc_serial is this simulator's extra)
+        assert {"source", "meter", "meter_serial"} <= set(resources)
         assert resources["source"].startswith("TCPIP::127.0.0.1::") and resources["source"].endswith("::SOCKET")
-        session = ScpiSession(open_transport(resources["meter"]), "meter")
-        assert session.identify().startswith("NIGHTBENCH-SIM,")
-        session.transport.close()
+        assert resources["meter_serial"].startswith("ASRL/dev/") and resources["meter_serial"].endswith("::INSTR")
+        for key in ("meter", "meter_serial"):
+            session = ScpiSession(open_transport(resources[key]), "meter")
+            assert session.identify().startswith("NIGHTBENCH-SIM,")
+            session.transport.close()
         proc.send_signal(sig)
         assert proc.wait(10) == 0
         assert proc.stdout.read() == "", "exactly one line on stdout"
     finally:
         proc.kill()
+
+
+@pytest.mark.parametrize("args, words", [
+    (["--fault", "explode@meter"], "unknown fault kind"),
+    (["--config", "CONFIG"], "unknown simulator config key 'detector.slpoe_v_per_db'"),
+])
+def test_sim_refuses_bad_config_plainly(tmp_path, args, words):
+    config = tmp_path / "bad.toml"
+    config.write_text("[detector]\nslpoe_v_per_db = 0.02\n")
+    args = [str(config) if a == "CONFIG" else a for a in args]
+    res = subprocess.run([sys.executable, "-m", "runner", "sim", *args], capture_output=True, text=True, timeout=20)
+    assert res.returncode == 2
+    assert words in res.stderr and "Traceback" not in res.stderr
+    assert res.stdout == ""
+
+
+def test_sim_config_file_sets_the_physics(tmp_path):
+    config = tmp_path / "sim.toml"
+    config.write_text("seed = 5\n[detector]\ntau_rise_s = 0.05\n[meter]\nline_hz = 60\n"
+                      "[[fault]]\nkind = 'delay'\ninstrument = 'meter'\nafter = 1\n")
+    from simulators.server import load_config
+
+    cfg = load_config(str(config))
+    assert cfg.seed == 5 and cfg.detector.tau_rise_s == 0.05 and cfg.meter.line_hz == 60
+    assert cfg.faults == [{"kind": "delay", "instrument": "meter", "after": 1}]
