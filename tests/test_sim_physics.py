@@ -157,3 +157,22 @@ def test_meter_range_overload_and_resolution(inproc_bench):
     step = 10 * bench.config.meter.resolution_ppm * 1e-6
     assert all(abs(v / step - round(v / step)) < 1e-6 for v in values)
     assert statistics.pstdev(values) > 0, "noise is present"
+
+
+def test_source_level_accuracy_and_own_settling_time():
+    config = BenchConfig()
+    config.source.level_offset_db, config.source.flatness_db_per_ghz = 0.2, -0.5
+    config.source.level_settle_s = 0.001
+    model = BenchModel(config, t=0.0)
+    model.set_source(0.0, frequency_hz=2e9, level_dbm=-30.0, output_on=True)
+    assert model.dut_dbm() == pytest.approx(-30.0 + 0.2 - 1.0 - config.path.loss(2e9))
+    before = model.output.value(0.0)
+    assert model.output.value(0.0009) == before, "nothing moves before the source has settled"
+    assert model.output.value(0.0011) != before
+
+
+def test_cable_loss_grows_as_root_frequency():
+    # Common practice: coaxial cable loss is dominated by skin effect, proportional to sqrt(f).
+    path = BenchConfig().path
+    cable = [path.loss(f) - path.pad_db for f in (0.25e9, 1e9, 4e9)]
+    assert cable[1] / cable[0] == pytest.approx(2.0) and cable[2] / cable[1] == pytest.approx(2.0)
