@@ -1,52 +1,83 @@
-"""The RF source role: frequency, level, output. SCPI-1999 SOURce/OUTPut subsystems."""
+"""The RF source role: frequency, level, output (SCPI-1999 SOURce/OUTPut by default)."""
 
 from __future__ import annotations
 
-from drivers.errors import SafetyError
+import math
+
+from drivers.dialect import SOURCE_COMMANDS
+from drivers.errors import InstrumentError, SafetyError
 from drivers.scpi import ScpiSession
+
+LEVEL_READBACK_DB = 0.01
+FREQ_READBACK_REL = 1e-9
 
 
 class RfSource:
-    """An RF signal generator. Refuses levels outside its configured limits before sending."""
+    """An RF signal generator. Refuses levels outside its configured limits before sending, and
+    reads every setting back in the same message, so what is stored is what the source has."""
 
-    def __init__(self, session: ScpiSession, *, min_dbm: float = -140.0, max_dbm: float = 20.0) -> None:
+    def __init__(self, session: ScpiSession, *, min_dbm: float = -140.0, max_dbm: float = 20.0,
+                 commands: dict[str, str] | None = None) -> None:
         self.session = session
         self.min_dbm = min_dbm
         self.max_dbm = max_dbm
+        self.commands = commands or dict(SOURCE_COMMANDS)
+        self.forget()
+
+    def forget(self) -> None:
+        """State unknown (after a reconnect): nothing is assumed about the instrument."""
         self.frequency_hz: float | None = None
         self.level_dbm: float | None = None
         self.output_on: bool | None = None
 
     def configure(self) -> None:
-        """Start from a known state: output off, error queue empty."""
+        """Start from a known state: error queue empty, output off."""
         self.session.drain_errors()
         self.set(output=False)
 
     def set(self, *, frequency_hz: float | None = None, level_dbm: float | None = None,
             output: bool | None = None) -> None:
-        """Apply any of the three in one synchronised, error-checked message, in the given order:
-        level before frequency, so a caller that lowers the level for a frequency change gets it
-        applied first."""
-        commands = []
+        """Apply any of the three in one synchronised, error-checked, read-back message, level
+        first: a caller that lowers the level for a frequency change gets it applied first."""
+        c = self.commands
+        commands, readbacks = [], []
         if level_dbm is not None:
             if not (self.min_dbm <= level_dbm <= self.max_dbm):
                 raise SafetyError(
                     f"source level {level_dbm:.2f} dBm is outside the source's limits "
                     f"[{self.min_dbm}, {self.max_dbm}] dBm", resource=self.session.resource)
-            commands.append(f"SOURce:POWer:LEVel {level_dbm:.3f} DBM")
+            commands.append(c["set_level"].format(level_dbm=level_dbm))
+            readbacks.append(c["query_level"])
         if frequency_hz is not None:
-            commands.append(f"SOURce:FREQuency:CW {frequency_hz:.3f} HZ")
+            commands.append(c["set_frequency"].format(frequency_hz=frequency_hz))
+            readbacks.append(c["query_frequency"])
         if output is not None:
-            commands.append(f"OUTPut:STATe {'ON' if output else 'OFF'}")
+            commands.append(c["output_on"] if output else c["output_off"])
+            readbacks.append(c["query_output"])
         if not commands:
             return
-        self.session.apply(commands)
+        values = iter(self.session.apply(commands, readbacks))
         if level_dbm is not None:
+            self._check("level", level_dbm, next(values), abs_tol=LEVEL_READBACK_DB)
             self.level_dbm = level_dbm
         if frequency_hz is not None:
+            self._check("frequency", frequency_hz, next(values), rel_tol=FREQ_READBACK_REL)
             self.frequency_hz = frequency_hz
         if output is not None:
+            got = next(values).strip().upper()
+            if got not in (("1", "ON") if output else ("0", "OFF")):
+                raise InstrumentError(f"source output reads back {got!r}, not {'ON' if output else 'OFF'}",
+                                      resource=self.session.resource)
             self.output_on = output
+
+    def _check(self, what: str, wanted: float, reply: str, *, abs_tol: float = 0.0, rel_tol: float = 0.0) -> None:
+        try:
+            got = float(reply)
+        except ValueError as exc:
+            raise InstrumentError(f"source {what} reads back {reply!r}", resource=self.session.resource) from exc
+        if not math.isclose(got, wanted, abs_tol=abs_tol, rel_tol=rel_tol):
+            raise InstrumentError(f"source {what} reads back {got:g}, not the {wanted:g} that was set",
+                                  resource=self.session.resource)
 
     def rf_off(self) -> None:
         self.set(output=False)

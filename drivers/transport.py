@@ -1,4 +1,5 @@
-"""The tiny transport interface and the one place that picks an implementation.
+"""The tiny transport interface and the one place that picks an implementation by resource string:
+VISA strings (TCPIP, ASRL, GPIB, USB) go to pyvisa; `serial:<port>` goes to plain pyserial.
 
 The rest of nightbench talks to `Transport` only. Which class serves a resource string is
 decided here, so pointing a plan at a simulator or a real instrument changes only a string.
@@ -34,13 +35,17 @@ def check_resource(resource: str) -> str | None:
     """
     from pyvisa import rname
 
+    from drivers.serial_port import PREFIX as SERIAL
+
     text = resource.strip()
     if not text:
         return "the resource string is empty"
+    if text.startswith(SERIAL):
+        return None if len(text) > len(SERIAL) else "'serial:' needs a port, e.g. serial:/dev/ttyUSB0"
     if not text.upper().startswith(VISA_PREFIXES):
         return (
-            f"'{resource}' is not a VISA resource string "
-            "(expected e.g. TCPIP::127.0.0.1::5025::SOCKET or ASRL/dev/ttyUSB0::INSTR)"
+            f"'{resource}' is not a resource string "
+            "(expected e.g. TCPIP::127.0.0.1::5025::SOCKET, ASRL/dev/ttyUSB0::INSTR or serial:/dev/ttyUSB0)"
         )
     try:
         parsed = rname.parse_resource_name(text)
@@ -52,8 +57,15 @@ def check_resource(resource: str) -> str | None:
     return None
 
 
-def open_transport(resource: str, *, timeout_s: float = 2.0, visa_library: str = "@py") -> Transport:
-    """Open the transport that serves `resource` and return it, connected."""
+def open_transport(resource: str, *, timeout_s: float = 2.0, visa_library: str = "@py",
+                   baud_rate: int | None = None) -> Transport:
+    """Open the transport that serves `resource` and return it, opened (not yet proven alive)."""
+    from drivers.serial_port import PREFIX as SERIAL
+
+    if resource.startswith(SERIAL):
+        from drivers.serial_port import SerialTransport
+
+        return SerialTransport.open(resource, timeout_s=timeout_s, baud_rate=baud_rate or 9600)
     from drivers.visa import VisaTransport
 
-    return VisaTransport.open(resource, timeout_s=timeout_s, visa_library=visa_library)
+    return VisaTransport.open(resource, timeout_s=timeout_s, visa_library=visa_library, baud_rate=baud_rate)

@@ -49,7 +49,8 @@ class VisaTransport:
         self._errors = _link_errors()
 
     @classmethod
-    def open(cls, resource: str, *, timeout_s: float, visa_library: str = "@py") -> "VisaTransport":
+    def open(cls, resource: str, *, timeout_s: float, visa_library: str = "@py",
+             baud_rate: int | None = None) -> "VisaTransport":
         rm = resource_manager(visa_library)
         errors = _link_errors()
         try:
@@ -59,6 +60,8 @@ class VisaTransport:
             inst.write_termination = "\n"
             if resource.upper().startswith("TCPIP") and resource.upper().endswith("SOCKET"):
                 _set_nodelay(inst)
+            if baud_rate and resource.upper().startswith("ASRL"):
+                inst.baud_rate = baud_rate
         except errors as exc:
             raise ConnectionLost(f"cannot open: {exc}", resource=resource) from exc
         return cls(resource, inst)
@@ -72,15 +75,45 @@ class VisaTransport:
     def query(self, message: str) -> str:
         try:
             reply = self._inst.query(message)
+        except UnicodeDecodeError as exc:
+            raise InstrumentError("garbled reply (not text)", resource=self.resource, command=message) from exc
         except self._errors as exc:
             raise ConnectionLost(_describe(exc), resource=self.resource, command=message) from exc
         return reply.strip()
 
     def flush_input(self) -> None:
+        """Discard bytes already received (a late reply). pyvisa's clear() can block for good on a
+        socket whose peer has gone, so with pyvisa-py the session's own buffers are emptied."""
         try:
-            self._inst.clear()
-        except self._errors:
+            session = self._inst.visalib.sessions[self._inst.session]
+        except (AttributeError, KeyError):
+            session = None
+        link = getattr(session, "interface", None)
+        if session is None or link is None:
+            try:
+                self._inst.clear()
+            except self._errors:
+                pass
+            return
+        if hasattr(session, "_pending_buffer"):
+            session._pending_buffer.clear()
+        if hasattr(link, "reset_input_buffer"):        # pyserial port behind ASRL
+            try:
+                link.reset_input_buffer()
+            except Exception:
+                pass
+            return
+        try:
+            link.setblocking(False)
+            while link.recv(65536):
+                pass
+        except (BlockingIOError, OSError):
             pass
+        finally:
+            try:
+                link.setblocking(True)
+            except OSError:
+                pass
 
     def close(self) -> None:
         try:
