@@ -11,12 +11,9 @@ import time
 from dataclasses import dataclass
 from typing import Callable
 
-from drivers.errors import NightbenchError, SafetyError
-from drivers.meter import ScpiDmm
-from drivers.scpi import ScpiSession
-from drivers.source import RfSource
-from drivers.transport import open_transport
-from runner.plan import LoadedPlan, Plan
+from drivers.errors import ConnectionLost, InstrumentError, NightbenchError, SafetyError
+from runner.instruments import Bench
+from runner.plan import LoadedPlan
 from runner.settle import SettleDetector
 from runner.signals import StopFlag
 from runner.store import PointResult, Store
@@ -24,44 +21,11 @@ from runner.sweep import Point, expand
 
 OVERLOAD_READINGS = 3  # consecutive overrange readings that end a point as overloaded
 CEILING_SLACK_DB = 1e-6
+POINT_ATTEMPTS = 4     # a point is tried this often across instrument faults before the run fails
 
 
 class Interrupted(Exception):
     """The stop flag was seen; the run ends as `interrupted` and can be resumed."""
-
-
-@dataclass
-class Bench:
-    source: RfSource
-    meter: ScpiDmm
-
-    def close(self) -> None:
-        for role in (self.source, self.meter):
-            role.session.transport.close()
-
-
-def open_source(plan: Plan) -> RfSource:
-    """Open the source and make it safe before anything else (RF off, invariant 2)."""
-    spec = plan.instruments.source
-    session = ScpiSession(open_transport(spec.resource, timeout_s=spec.timeout_s), "source")
-    session.identify()
-    source = RfSource(session, min_dbm=spec.min_dbm, max_dbm=spec.max_dbm)
-    source.configure()
-    return source
-
-
-def open_bench(plan: Plan) -> Bench:
-    source = open_source(plan)
-    try:
-        spec = plan.instruments.meter
-        session = ScpiSession(open_transport(spec.resource, timeout_s=spec.timeout_s), "meter")
-        session.identify()
-        meter = ScpiDmm(session, nplc=spec.nplc)
-        meter.configure()
-    except BaseException:
-        source.session.transport.close()
-        raise
-    return Bench(source, meter)
 
 
 Progress = Callable[[Point, PointResult, int, int], None]
@@ -135,8 +99,8 @@ class Engine:
                 break
         settle_s, settle_count = readings[-1][0], len(readings)
         samples = []
-        for _ in range(self.plan.measure.samples):
-            value = meter.read()
+        for i in range(self.plan.measure.samples):
+            value = meter.read(checked=i == self.plan.measure.samples - 1)
             if self.stop.is_set():
                 raise Interrupted(self.stop.reason)
             t = time.monotonic() - t0
@@ -157,16 +121,16 @@ class Engine:
         todo = [p for p in points if p.index not in done]
         store.mark_running(run_id)
         state, error = "completed", None
+        self.doing = "opening the instruments"
         try:
             if self.stop.is_set():
                 raise Interrupted(self.stop.reason)
-            self.bench = open_bench(self.plan)
+            self.bench = Bench.open(self.plan)
             store.set_identities(run_id, self.bench.source.session.idn, self.bench.meter.session.idn)
             for point in todo:
-                if self.stop.is_set():
-                    raise Interrupted(self.stop.reason)
-                self.move_to(point)
-                result = self.measure(point)
+                self.doing = (f"measuring point {point.index} ({point.frequency_hz / 1e6:g} MHz, "
+                              f"{point.power_dbm:g} dBm at the DUT)")
+                result = self._point_with_recovery(point)
                 store.add_point(run_id, point, result)
                 done.add(point.index)
                 if self.progress:
@@ -174,7 +138,7 @@ class Engine:
         except Interrupted as exc:
             state, error = "interrupted", f"stopped by {exc}"
         except NightbenchError as exc:
-            state, error = "failed", str(exc)
+            state, error = "failed", f"{exc}, while {self.doing}"
         finally:
             rf_error = self._make_safe()
             if rf_error and state == "completed":
@@ -185,6 +149,35 @@ class Engine:
             store.event(run_id, state, error or f"{len(done)} of {len(points)} points")
         return state, error
 
+    def _point_with_recovery(self, point: Point) -> PointResult:
+        """Set and measure one point; on an instrument fault, recover and redo the whole point,
+        so a point that is stored is one that happened from start to end (invariant 4)."""
+        assert self.bench is not None
+        for attempt in range(1, POINT_ATTEMPTS + 1):
+            if self.stop.is_set():
+                raise Interrupted(self.stop.reason)
+            try:
+                self.move_to(point)
+                return self.measure(point)
+            except SafetyError:
+                raise
+            except InstrumentError as exc:
+                if attempt == POINT_ATTEMPTS:
+                    raise
+                self.store.event(self.run_id, "fault", f"point {point.index}, attempt {attempt}: {exc}")
+                self._recover(exc)
+        raise AssertionError("unreachable")
+
+    def _recover(self, exc: InstrumentError) -> None:
+        """A NEW link to the instrument that failed (a lost link, a stale or garbled reply, a
+        refused setting all leave its state in doubt); the source is made safe first."""
+        assert self.bench is not None
+        role = self.bench.role_of(exc)
+        names = [role] if role else ["source", "meter"]
+        for name in sorted(names, key=lambda n: n != "source"):
+            self.store.event(self.run_id, "reconnect", f"reconnecting the {name}")
+            self.bench.reconnect(name, self.stop.is_set)
+
     def _make_safe(self) -> str | None:
         """RF off on every way out; a failure to do so is reported, never swallowed."""
         if self.bench is None:
@@ -194,6 +187,12 @@ class Engine:
             source.session.transport.flush_input()
             source.rf_off()
             return None
+        except ConnectionLost:
+            try:
+                self.bench.reconnect("source", lambda: False)   # configure() switches RF off
+                return None
+            except NightbenchError as exc:
+                return f"could not switch RF off: {exc}"
         except NightbenchError as exc:
             return f"could not switch RF off: {exc}"
         finally:

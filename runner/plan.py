@@ -43,22 +43,41 @@ class Dut(_Strict):
     notes: str | None = None
 
 
-class SourceSpec(_Strict):
-    driver: Literal["scpi-source"]
-    resource: str
+class _Link(_Strict):
+    """How to reach an instrument: any VISA resource string, or serial:<port> for plain pyserial."""
+
+    resource: Resource
     timeout_s: Positive = 2.0
+    visa_library: str = "@py"          # another VISA library for sites that have one
+    baud_rate: Annotated[int, Field(gt=0, le=10_000_000)] | None = None
+
+
+def _templates(defaults: dict[str, str]):
+    def check(value: dict[str, str] | None) -> dict[str, str] | None:
+        from drivers.dialect import merged
+
+        merged(defaults, value)
+        return value
+    return check
+
+
+def _source_commands(value: dict[str, str] | None) -> dict[str, str] | None:
+    from drivers.dialect import SOURCE_COMMANDS
+
+    return _templates(SOURCE_COMMANDS)(value)
+
+
+def _meter_commands(value: dict[str, str] | None) -> dict[str, str] | None:
+    from drivers.dialect import METER_COMMANDS
+
+    return _templates(METER_COMMANDS)(value)
+
+
+class SourceSpec(_Link):
+    driver: Literal["scpi-source"]
     min_dbm: Finite = -130.0          # the source's own level limits; plans beyond them are refused
     max_dbm: Finite = 20.0
-
-    @field_validator("resource")
-    @classmethod
-    def _resource(cls, value: str) -> str:
-        from drivers.transport import check_resource
-
-        problem = check_resource(value)
-        if problem:
-            raise ValueError(problem)
-        return value.strip()
+    commands: Annotated[dict[str, str] | None, AfterValidator(_source_commands)] = None
 
     @model_validator(mode="after")
     def _limits(self) -> "SourceSpec":
@@ -67,11 +86,46 @@ class SourceSpec(_Strict):
         return self
 
 
-class MeterSpec(_Strict):
+class DmmSpec(_Link):
     driver: Literal["scpi-dmm"]
-    resource: Resource
-    timeout_s: Positive = 2.0
     nplc: Annotated[float, Field(gt=0, le=100, allow_inf_nan=False)] | None = None
+    range_v: Positive | None = None
+    commands: Annotated[dict[str, str] | None, AfterValidator(_meter_commands)] = None
+
+
+def _regex(value: str) -> str:
+    import re
+
+    try:
+        compiled = re.compile(value)
+    except re.error as exc:
+        raise ValueError(f"not a valid regular expression: {exc}") from None
+    if compiled.groups > 1:
+        raise ValueError("the pattern may have at most one group (the number)")
+    return value
+
+
+class AdcSpec(_Link):
+    """A serial ADC board: volts = counts * scale + offset, counts pulled out by `pattern`."""
+
+    driver: Literal["serial-adc"]
+    query: Annotated[str, Field(min_length=1)]
+    pattern: Annotated[str, AfterValidator(_regex)]
+    scale: Annotated[float, Field(allow_inf_nan=False)]
+    offset: Finite = 0.0
+    identify: str | None = None        # a query whose reply names the board
+    setup: list[str] = []              # queries sent once after opening
+    overload: str | None = None        # a reply containing this is an overrange reading
+
+    @field_validator("scale")
+    @classmethod
+    def _nonzero(cls, value: float) -> float:
+        if value == 0:
+            raise ValueError("scale must not be zero")
+        return value
+
+
+MeterSpec = Annotated[DmmSpec | AdcSpec, Field(discriminator="driver")]
 
 
 class Instruments(_Strict):
@@ -255,6 +309,8 @@ def _line_for(path: tuple[Any, ...], lines: dict[KeyPath, int]) -> int | None:
 
 def _friendly(err: dict[str, Any]) -> str:
     kind, msg = err.get("type", ""), err.get("msg", "")
+    if kind == "union_tag_invalid":
+        return f"unknown driver {err.get('input', {}).get('driver')!r} (expected {err['ctx']['expected_tags']})"
     if kind == "extra_forbidden":
         return "unknown key (check the spelling; unknown keys are refused)"
     if kind == "missing":
@@ -276,6 +332,8 @@ def parse_plan(text: str, file: str) -> LoadedPlan:
         problems = []
         for err in errors:
             path = _key_path(tuple(err["loc"]))
+            if err.get("type") in ("union_tag_invalid", "union_tag_not_found"):
+                path += ("driver",)
             problems.append((path, _friendly(err)))
         # the same location may be reported once per union branch: keep the first of each
         seen: dict[tuple[Any, ...], str] = {}

@@ -14,6 +14,22 @@ from simulators.scpi import ScpiCommandError, ScpiInstrument, one_arg, parse_boo
 Clock = Callable[[], float]
 OVERRANGE = "+9.90000000E+37"   # SCPI-1999 vol. 1, 7.2.1: the value returned for overrange
 
+# Command headers per dialect: "scpi" is SCPI-1999; "alt" is an invented older command set
+# (as some instruments have), for testing a plan's command-template overrides.
+DIALECTS = ("scpi", "alt")
+SOURCE_HEADERS = {
+    "scpi": {"error": "SYSTem:ERRor[:NEXT]?", "freq": "[SOURce]:FREQuency[:CW]",
+             "level": "[SOURce]:POWer[:LEVel][:IMMediate][:AMPLitude]", "output": "OUTPut[:STATe]"},
+    "alt": {"error": "ERRor?", "freq": "CFRQ", "level": "RFLVl", "output": "RFOUTput"},
+}
+METER_HEADERS = {
+    "scpi": {"error": "SYSTem:ERRor[:NEXT]?", "configure": "CONFigure[:VOLTage][:DC]",
+             "nplc": "[SENSe]:VOLTage[:DC]:NPLCycles", "range": "[SENSe]:VOLTage[:DC]:RANGe[:UPPer]",
+             "trigger": "TRIGger:SOURce", "read": ("READ?", "MEASure[:VOLTage][:DC]?")},
+    "alt": {"error": "ERRor?", "configure": "CONFigure:DCV", "nplc": "DCV:INTegration", "range": "DCV:RANGe",
+            "trigger": "TRIGger:MODE", "read": ("DCV?",)},
+}
+
 
 class SimSource(ScpiInstrument):
     """An invented RF signal generator (SCPI SOURce / OUTPut subsystems)."""
@@ -21,19 +37,20 @@ class SimSource(ScpiInstrument):
     idn = "NIGHTBENCH-SIM,NS-RF100 Virtual Signal Source,SIM0001,1.0"
 
     def __init__(self, model: BenchModel, clock: Clock = time.monotonic, log: TextIO | None = None,
-                 faults: FaultInjector | None = None) -> None:
-        super().__init__()
+                 faults: FaultInjector | None = None, dialect: str = "scpi") -> None:
+        h = SOURCE_HEADERS[dialect]
+        super().__init__(error_header=h["error"])
         self.model = model
         self.clock = clock
         self.log = log
         self.faults = faults or FaultInjector([])
         self._limits = model.config.source
-        self.add("[SOURce]:FREQuency[:CW]", self._set_freq)
-        self.add("[SOURce]:FREQuency[:CW]?", lambda a: f"{self.model.frequency_hz:.6f}")
-        self.add("[SOURce]:POWer[:LEVel][:IMMediate][:AMPLitude]", self._set_level)
-        self.add("[SOURce]:POWer[:LEVel][:IMMediate][:AMPLitude]?", lambda a: f"{self.model.level_dbm:.3f}")
-        self.add("OUTPut[:STATe]", self._set_output)
-        self.add("OUTPut[:STATe]?", lambda a: "1" if self.model.output_on else "0")
+        self.add(h["freq"], self._set_freq)
+        self.add(h["freq"] + "?", lambda a: f"{self.model.frequency_hz:.6f}")
+        self.add(h["level"], self._set_level)
+        self.add(h["level"] + "?", lambda a: f"{self.model.level_dbm:.3f}")
+        self.add(h["output"], self._set_output)
+        self.add(h["output"] + "?", lambda a: "1" if self.model.output_on else "0")
         self._write_log("start")
 
     def reset(self) -> None:
@@ -90,20 +107,22 @@ class SimMeter(ScpiInstrument):
     idn = "NIGHTBENCH-SIM,NS-DV200 Virtual DC Meter,SIM0002,1.0"
 
     def __init__(self, model: BenchModel, clock: Clock = time.monotonic, sleep: Callable[[float], None] = time.sleep,
-                 faults: FaultInjector | None = None) -> None:
-        super().__init__()
+                 faults: FaultInjector | None = None, dialect: str = "scpi") -> None:
+        h = METER_HEADERS[dialect]
+        super().__init__(error_header=h["error"])
         self.model = model
         self.clock = clock
         self.sleep = sleep
         self.faults = faults or FaultInjector([])
         self.reset()
-        self.add("CONFigure[:VOLTage][:DC]", self._configure)
-        self.add("[SENSe]:VOLTage[:DC]:NPLCycles", self._set_nplc)
-        self.add("[SENSe]:VOLTage[:DC]:NPLCycles?", lambda a: f"{self.nplc:g}")
-        self.add("[SENSe]:VOLTage[:DC]:RANGe[:UPPer]", self._set_range)
-        self.add("[SENSe]:VOLTage[:DC]:RANGe[:UPPer]?", lambda a: f"{self.range_v:g}")
-        self.add("READ?", self._read)
-        self.add("MEASure[:VOLTage][:DC]?", self._read)
+        self.add(h["configure"], self._configure)
+        self.add(h["nplc"], self._set_nplc)
+        self.add(h["nplc"] + "?", lambda a: f"{self.nplc:g}")
+        self.add(h["range"], self._set_range)
+        self.add(h["range"] + "?", lambda a: f"{self.range_v:g}")
+        self.add(h["trigger"], self._set_trigger)
+        for header in h["read"]:
+            self.add(header, self._read)
 
     def reset(self) -> None:
         cfg = self.model.config.meter
@@ -113,6 +132,10 @@ class SimMeter(ScpiInstrument):
     def _configure(self, args: list[str]) -> None:
         if args and args[0].upper() not in ("DEF", "AUTO"):
             self._set_range(args[:1])
+
+    def _set_trigger(self, args: list[str]) -> None:
+        if one_arg(args).upper() not in ("IMM", "IMMEDIATE"):
+            raise ScpiCommandError(-224, "only IMMediate triggering is simulated")
 
     def _set_nplc(self, args: list[str]) -> None:
         self.nplc = parse_number(one_arg(args), minimum=0.001, maximum=100.0)

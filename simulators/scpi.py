@@ -143,7 +143,7 @@ class ScpiInstrument:
 
     idn = "NIGHTBENCH-SIM,GENERIC,0,0.1"
 
-    def __init__(self) -> None:
+    def __init__(self, error_header: str = "SYSTem:ERRor[:NEXT]?") -> None:
         self._commands: list[tuple[list[_Node], bool, Handler]] = []
         self.errors: deque[tuple[int, str]] = deque()
         self.esr = 0
@@ -154,7 +154,7 @@ class ScpiInstrument:
         self.add("*OPC", lambda a: None)
         self.add("*WAI", lambda a: None)
         self.add("*ESR?", lambda a: self._read_esr())
-        self.add("SYSTem:ERRor[:NEXT]?", lambda a: self.next_error())
+        self.add(error_header, lambda a: self.next_error())
         self.add("SYSTem:ERRor:COUNt?", lambda a: str(len(self.errors)))
 
     # -- registration ---------------------------------------------------------------------

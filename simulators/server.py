@@ -24,7 +24,7 @@ import tty
 from typing import Any, TextIO
 
 from simulators.faults import FaultInjector, parse_fault_flag
-from simulators.instruments import SimAdc, SimMeter, SimSource
+from simulators.instruments import DIALECTS, SimAdc, SimMeter, SimSource
 from simulators.links import PtyStream, SocketStream, serve_stream
 from simulators.physics import BenchConfig, BenchModel
 
@@ -89,14 +89,14 @@ class Bench:
     """The whole simulated bench: model, instruments, faults and the ports serving them."""
 
     def __init__(self, config: BenchConfig | None = None, *, source_port: int = 0, meter_port: int = 0,
-                 log: TextIO | None = None, serial: bool = True) -> None:
+                 log: TextIO | None = None, serial: bool = True, dialect: str = "scpi") -> None:
         self.config = config or BenchConfig()
         self.model = BenchModel(self.config)
         self.faults = FaultInjector(self.config.faults, seed=self.config.seed)
         self.stop_event = threading.Event()
         self.locks = {name: threading.Lock() for name in ("source", "meter", "adc")}
-        self.source = SimSource(self.model, log=log, faults=self.faults)
-        self.meter = SimMeter(self.model, faults=self.faults)
+        self.source = SimSource(self.model, log=log, faults=self.faults, dialect=dialect)
+        self.meter = SimMeter(self.model, faults=self.faults, dialect=dialect)
         self.adc = SimAdc(self.model, faults=self.faults)
         self.ports: list[Any] = [TcpPort(source_port, self.source, "source", self),
                                  TcpPort(meter_port, self.meter, "meter", self)]
@@ -132,11 +132,12 @@ def load_config(path: str | None, fault_flags: list[str] = (), seed: int | None 
 
 
 def serve(*, source_port: int = 0, meter_port: int = 0, config_path: str | None = None,
-          log_path: str | None = None, faults: list[str] = (), seed: int | None = None) -> int:
+          log_path: str | None = None, faults: list[str] = (), seed: int | None = None,
+          dialect: str = "scpi") -> int:
     """Run the bench in this process until SIGTERM/SIGINT; print the resource line first."""
     config = load_config(config_path, faults, seed)
     log = open(log_path, "a", encoding="utf-8") if log_path else None
-    bench = Bench(config, source_port=source_port, meter_port=meter_port, log=log)
+    bench = Bench(config, source_port=source_port, meter_port=meter_port, log=log, dialect=dialect)
     stop = threading.Event()
     signal.signal(signal.SIGTERM, lambda *_: stop.set())
     signal.signal(signal.SIGINT, lambda *_: stop.set())
@@ -161,6 +162,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--fault", action="append", default=[],
                         help="inject a fault: KIND@INSTRUMENT[:key=value,...], e.g. drop@meter:after=20")
     parser.add_argument("--seed", type=int, help="seed for noise and faults (default: the config's, 1)")
+    parser.add_argument("--dialect", choices=DIALECTS, default="scpi",
+                        help="command set: scpi (SCPI-1999) or alt (an older, non-standard set)")
 
 
 def main(argv: list[str] | None = None, prog: str = "simulators.server") -> int:
@@ -169,7 +172,7 @@ def main(argv: list[str] | None = None, prog: str = "simulators.server") -> int:
     args = parser.parse_args(argv)
     try:
         return serve(source_port=args.source_port, meter_port=args.meter_port, config_path=args.config,
-                     log_path=args.log, faults=args.fault, seed=args.seed)
+                     log_path=args.log, faults=args.fault, seed=args.seed, dialect=args.dialect)
     except (OSError, ValueError, tomllib.TOMLDecodeError) as exc:
         print(f"simulators.server: cannot start the simulated bench: {exc}", file=sys.stderr)
         return 2
