@@ -1,0 +1,226 @@
+"""Drivers against the simulated bench in its own process: every injected fault ends in a
+completed run (after a reconnect) or a failed run with a clear error and RF off, and never in
+a stored point that did not happen. Plus the serial ADC, pyserial, dialects and resource checks.
+"""
+
+from __future__ import annotations
+
+import sqlite3
+from pathlib import Path
+
+import pytest
+import yaml
+
+from drivers.scpi import join_program, split_response
+from drivers.transport import check_resource
+from runner.plan import parse_plan
+from runner.runs import execute, new_run
+from runner.signals import StopFlag
+from runner.simproc import SimProcess
+from runner.store import Store
+from simulators.physics import BenchConfig, BenchModel
+from tests.conftest import cli, plan_dict
+
+TRUTH = BenchModel(BenchConfig())
+LEVELS = [-60, -50, -40, -30, -20, -10]
+
+
+def run_plan(tmp_path: Path, resources: dict, **overrides):
+    plan = plan_dict(resources, sweep={"frequency_hz": [100e6], "power_dbm": LEVELS}, **overrides)
+    plan["path"] = {"loss_db": TRUTH.config.path.loss(100e6)}
+    for role in ("source", "meter"):
+        plan["instruments"][role]["timeout_s"] = 0.5
+    loaded = parse_plan(yaml.safe_dump(plan, sort_keys=False), "plan.yaml")
+    store = Store(tmp_path / "faults.db")
+    run_id = new_run(store, loaded)
+    state, error = execute(loaded, store, run_id, StopFlag())
+    rows = [dict(r) for r in store.points(run_id)]
+    events = [dict(r) for r in store.conn.execute("SELECT kind, message FROM events WHERE run_id=?", (run_id,))]
+    return state, error, rows, events
+
+
+def sim_with(tmp_path: Path, *faults: str) -> SimProcess:
+    args = ["--log", str(tmp_path / "source.jsonl")]
+    for fault in faults:
+        args += ["--fault", fault]
+    return SimProcess(*args)
+
+
+def last_output(tmp_path: Path) -> bool:
+    import json
+
+    events = [json.loads(l) for l in (tmp_path / "source.jsonl").read_text().splitlines()]
+    return events[-1]["output"]
+
+
+def assert_points_are_real(rows):
+    """Every stored point is a measurement of what was set: within tolerance of the law."""
+    for r in rows:
+        if r["overload"]:
+            assert r["value_v"] is None
+            continue
+        expected = TRUTH.truth_v(r["power_dbm"], r["frequency_hz"])
+        assert abs(r["value_v"] - expected) < 0.0005 + 3 * (r["stdev_v"] or 0), r
+
+
+METER_FAULTS = [
+    "drop@meter:after=12",                    # the link drops, the meter comes back
+    "silence@meter:after=12,duration_s=0.8",  # stops answering for a while
+    "delay@meter:after=12,delay_s=0.9",       # one reply later than the timeout: stale-reply trap
+    "garbage@meter:after=12",                 # junk instead of a reading
+    "spurious_error@meter:after=12",          # an error-queue entry out of nowhere
+]
+
+
+# A serial line cannot drop a connection (the pty stays), so drop runs on TCP only.
+@pytest.mark.parametrize("fault, meter_key", [(f, "meter") for f in METER_FAULTS]
+                         + [(f, "meter_serial") for f in METER_FAULTS if not f.startswith("drop")])
+def test_meter_faults_recover_and_store_only_real_points(tmp_path, fault, meter_key):
+    with sim_with(tmp_path, fault) as sim:
+        resources = dict(sim.resources, meter=sim.resources[meter_key])
+        state, error, rows, events = run_plan(tmp_path, resources)
+    assert state == "completed", error
+    assert [r["power_dbm"] for r in rows] == LEVELS, "every point exactly once"
+    assert_points_are_real(rows)
+    assert any(e["kind"] == "fault" for e in events), "the fault is recorded"
+    assert last_output(tmp_path) is False
+
+
+@pytest.mark.parametrize("fault", [
+    "drop@source:after=6",
+    "silence@source:after=6,duration_s=0.8",
+    "garbage@source:after=6",
+    "spurious_error@source:after=6",
+    "refuse_level@source:level_dbm=-30",      # refused once, accepted on the retry
+])
+def test_source_faults_recover(tmp_path, fault):
+    with sim_with(tmp_path, fault) as sim:
+        state, error, rows, events = run_plan(tmp_path, sim.resources)
+    assert state == "completed", error
+    assert [r["power_dbm"] for r in rows] == LEVELS
+    assert_points_are_real(rows)
+    assert any(e["kind"] == "reconnect" for e in events)
+    assert last_output(tmp_path) is False
+
+
+@pytest.mark.parametrize("fault, words", [
+    ("drop@meter:after=12,duration_s=-1", "meter"),
+    ("silence@meter:after=12", "no reply"),
+    ("refuse_level@source:level_dbm=-30,count=0", "-222"),
+])
+def test_permanent_faults_fail_clearly_with_rf_off(tmp_path, fault, words):
+    with sim_with(tmp_path, fault) as sim:
+        state, error, rows, _ = run_plan(tmp_path, sim.resources)
+    assert state == "failed"
+    assert words in error and "while measuring point" in error
+    assert all(r["power_dbm"] < -30 for r in rows) or "meter" in fault
+    assert_points_are_real(rows)
+    assert last_output(tmp_path) is False, "RF off is the last thing the source hears"
+
+
+def test_meter_overload_is_stored_flagged_not_as_a_value(tmp_path):
+    with sim_with(tmp_path, "overload@meter:after=40,count=0") as sim:
+        state, error, rows, _ = run_plan(tmp_path, sim.resources)
+    assert state == "completed", error
+    assert any(r["overload"] for r in rows) and not all(r["overload"] for r in rows)
+    assert_points_are_real(rows)
+
+
+def test_serial_adc_board_plan_completes(tmp_path):
+    adc = TRUTH.config.adc
+    with sim_with(tmp_path) as sim:
+        meter = {"driver": "serial-adc", "resource": sim.resources["adc_serial"], "identify": "V",
+                 "setup": ["A 2"], "query": "R", "pattern": r"R=([+-]\d+)", "overload": "OVER",
+                 "scale": adc.lsb_v, "offset": -adc.offset_counts * adc.lsb_v, "baud_rate": 115200}
+        instruments = {"source": {"driver": "scpi-source", "resource": sim.resources["source"]}, "meter": meter}
+        state, error, rows, _ = run_plan(tmp_path, sim.resources, instruments=instruments)
+    assert state == "completed", error
+    assert len(rows) == len(LEVELS)
+    assert_points_are_real(rows)
+
+
+def test_plain_pyserial_transport_plan_completes(tmp_path):
+    with sim_with(tmp_path) as sim:
+        port = sim.resources["meter_serial"].removeprefix("ASRL").removesuffix("::INSTR")
+        state, error, rows, _ = run_plan(tmp_path, dict(sim.resources, meter=f"serial:{port}"))
+    assert state == "completed", error
+    assert_points_are_real(rows)
+
+
+ALT_SOURCE = {"set_frequency": "CFRQ {frequency_hz:.0f}", "set_level": "RFLVL {level_dbm:.2f}",
+              "output_on": "RFOUT ON", "output_off": "RFOUT OFF", "query_frequency": "CFRQ?",
+              "query_level": "RFLVL?", "query_output": "RFOUT?", "error_query": "ERR?"}
+ALT_METER = {"configure": "CONF:DCV", "set_nplc": "DCV:INT {nplc:g}", "set_range": "DCV:RANG {range_v:g}",
+             "set_trigger": "TRIG:MODE IMM", "read": "DCV?", "error_query": "ERR?"}
+
+
+def test_dialect_override_completes_against_a_simulator_in_that_dialect(tmp_path):
+    with SimProcess("--dialect", "alt", "--log", str(tmp_path / "source.jsonl")) as sim:
+        plain = run_plan(tmp_path, sim.resources)
+        # standard SCPI gets no answer from this dialect: a clear failure naming the command
+        assert plain[0] == "failed" and "SYSTem:ERRor?" in plain[1] and "opening the instruments" in plain[1]
+        instruments = {
+            "source": {"driver": "scpi-source", "resource": sim.resources["source"], "commands": ALT_SOURCE},
+            "meter": {"driver": "scpi-dmm", "resource": sim.resources["meter"], "nplc": 0.1, "commands": ALT_METER},
+        }
+        state, error, rows, _ = run_plan(tmp_path, sim.resources, instruments=instruments)
+    assert state == "completed", error
+    assert_points_are_real(rows)
+    assert last_output(tmp_path) is False
+
+
+def test_bad_command_templates_are_refused_at_check(write_plan, db):
+    from tests.conftest import OFFLINE
+
+    plan = plan_dict(OFFLINE)
+    plan["instruments"]["source"]["commands"] = {"set_levle": "LVL {level_dbm}"}
+    res = cli("check", str(write_plan(plan)))
+    assert res.returncode == 2 and "unknown command name 'set_levle'" in res.stderr
+    plan["instruments"]["source"]["commands"] = {"set_level": "LVL {level}"}
+    res = cli("check", str(write_plan(plan)))
+    assert res.returncode == 2 and "does not format" in res.stderr
+
+
+@pytest.mark.parametrize("resource, ok", [
+    ("TCPIP::192.0.2.7::5025::SOCKET", True),
+    ("TCPIP0::192.0.2.7::inst0::INSTR", True),
+    ("GPIB0::22::INSTR", True),
+    ("USB0::0x1234::0x5678::SN001::INSTR", True),
+    ("ASRL/dev/ttyUSB0::INSTR", True),
+    ("serial:/dev/ttyUSB0", True),
+    ("serial:loop://", True),
+    ("ASRL::/dev/ttyUSB0::INSTR", False),     # FIELD-NOTES: rejected by pyvisa
+    ("TCPIP::192.0.2.7::SOCKET", False),      # no port
+    ("TCPIP::192.0.2.7::70000::SOCKET", False),
+    ("/dev/ttyUSB0", False),
+    ("serial:", False),
+    ("", False),
+])
+def test_resource_strings_are_checked_without_opening(resource, ok):
+    # VISA resource syntax per the VISA specification as pyvisa parses it (reference library).
+    assert (check_resource(resource) is None) == ok
+
+
+def test_program_and_response_messages():
+    # IEEE 488.2 7.3.4 (program message units joined by ';') and 8.4 (response units joined by
+    # ';', strings quoted), from memory.
+    assert join_program(["FREQ 1", ":POW -3", "*OPC?"]) == ":FREQ 1;:POW -3;*OPC?"
+    assert split_response('1;-222,"Data out of range; 99 > 20";+4.5E-1') == ['1', '-222,"Data out of range; 99 > 20"', '+4.5E-1']
+
+
+def test_unreachable_source_is_named_and_nothing_stored(tmp_path):
+    from tests.conftest import OFFLINE
+
+    state, error, rows, _ = run_plan(tmp_path, OFFLINE)
+    assert state == "failed" and "TCPIP::127.0.0.1::1::SOCKET" in error and "opening the instruments" in error
+    assert rows == []
+
+
+def test_points_and_readings_stay_consistent_after_faults(tmp_path):
+    with sim_with(tmp_path, "garbage@meter:after=9", "drop@meter:after=20") as sim:
+        state, error, rows, _ = run_plan(tmp_path, sim.resources)
+    assert state == "completed", error
+    conn = sqlite3.connect(tmp_path / "faults.db")
+    orphans = conn.execute("SELECT COUNT(*) FROM readings r LEFT JOIN points p ON p.run_id=r.run_id AND p.idx=r.idx "
+                           "WHERE p.idx IS NULL").fetchone()[0]
+    assert orphans == 0, "no raw readings of a point that was not stored"
