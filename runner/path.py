@@ -18,6 +18,7 @@ import math
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Protocol
 
+from drivers.errors import InputError
 from runner.planfiles import PlanFiles, PlanProblem
 
 if TYPE_CHECKING:
@@ -145,8 +146,12 @@ def _element(spec: "PathElementSpec", files: PlanFiles, key: Key, default_label:
     from runner.touchstone import parse_touchstone
 
     text, name = files.read(spec.touchstone, key + ("touchstone",))
-    data = parse_touchstone(text, name)
-    losses = tuple(data.loss_db())
+    try:
+        data = parse_touchstone(text, name)
+        losses = tuple(data.loss_db())
+    except InputError as exc:   # the file's own line, and the plan key that named the file
+        exc.key = ".".join(map(str, key + ("touchstone",)))
+        raise
     ref = "/".join(f"{r:g}" for r in dict.fromkeys(data.reference_ohm))
     return Interpolated(spec.name or spec.touchstone, data.frequency_hz, losses, spec.extrapolate,
                         key + ("touchstone",), f"Touchstone {data.version}, |S21| at {ref} ohm")

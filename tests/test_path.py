@@ -229,6 +229,15 @@ def test_missing_touchstone_file_names_plan_line_and_key(write_plan):
     assert "no such file" in info.value.message
 
 
+def test_bad_touchstone_in_a_plan_is_exit_2_naming_file_line_and_plan_key(write_plan, tmp_path, db):
+    (tmp_path / "cable.s2p").write_text("! cable\n# MHz S DB\n100 -30 0 -1 0 -1 0 -30 0\n200 -30 0 -1\n")
+    plan = write_plan(plan_dict(OFFLINE, path={"elements": [{"loss_db": 1}, {"touchstone": "cable.s2p"}]}))
+    res = cli("run", str(plan), "--db", str(db))
+    assert res.returncode == 2 and "Traceback" not in res.stderr
+    assert f"{tmp_path / 'cable.s2p'}, line 4, key 'path.elements.1.touchstone'" in res.stderr
+    assert not db.exists(), "bad input must not create a database"
+
+
 # -- check --------------------------------------------------------------------------------------
 
 def test_check_shows_loss_and_source_range_per_frequency_and_refuses_beyond_the_source(write_plan, tmp_path):
