@@ -60,12 +60,17 @@ def check(plan: str) -> None:
     p = loaded.plan
     points = expand(p)
     freqs = p.sweep.axis_values("frequency_hz")
+    levels = p.sweep.axis_values("power_dbm")
+    model = p.path.loss_model()
     click.echo(f"{plan}: valid plan '{p.name}', {len(points)} points over {len(freqs)} frequencies")
+    for line in model.describe():
+        click.echo(f"  path {line}")
     for f in freqs:
         loss = p.path.loss(f)
-        levels = p.sweep.axis_values("power_dbm")
-        click.echo(f"  {f / 1e6:10.3f} MHz  path loss {loss:6.2f} dB  source {min(levels) + loss:7.2f} .. "
-                   f"{max(levels) + loss:7.2f} dBm")
+        parts = model.parts(f)
+        detail = " + ".join(f"{label} {part:.3f}{' (extrapolated)' if ext else ''}" for label, part, ext in parts)
+        click.echo(f"  {f / 1e6:10.3f} MHz  path loss {loss:7.3f} dB  source {min(levels) + loss:7.2f} .. "
+                   f"{max(levels) + loss:7.2f} dBm" + (f"  [{detail}]" if len(parts) > 1 or parts[0][2] else ""))
 
 
 def _execute(loaded: Any, db: str, run_id: int | None) -> None:
@@ -107,14 +112,14 @@ def run(plan: str, db: str | None) -> None:
 def resume(run_id: int, db: str | None) -> None:
     """Continue RUN from its first missing point (after an interruption or a fault)."""
     from drivers.errors import InputError
-    from runner.plan import parse_plan
+    from runner.runs import snapshot_plan
     from runner.store import Store
 
     store = Store(_db(db), create=False)
     row = store.run(run_id)
     if row["state"] == "completed":
         raise InputError(f"run {run_id} is already completed")
-    loaded = parse_plan(row["plan_text"], f"run {run_id} plan snapshot")
+    loaded = snapshot_plan(store, run_id)
     store.close()
     _execute(loaded, _db(db), run_id)
 

@@ -6,13 +6,15 @@ typo must not silently change a night's work. Numbers may be written `70e6` (see
 
 from __future__ import annotations
 
-import math
 from pathlib import Path
-from typing import Annotated, Any, Literal
+from typing import Annotated, Any, Literal, Mapping
 
-from pydantic import AfterValidator, BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+from pydantic import (AfterValidator, BaseModel, ConfigDict, Field, PrivateAttr, ValidationError, field_validator,
+                      model_validator)
 
 from drivers.errors import InputError
+from runner.path import build_path
+from runner.planfiles import PlanFiles, PlanProblem
 from runner.yamlfile import KeyPath, load_yaml_text, read_text
 
 MAX_POINTS = 200_000
@@ -133,42 +135,57 @@ class Instruments(_Strict):
     meter: MeterSpec
 
 
-class PathSpec(_Strict):
-    """Loss from the source port to the DUT input (positive = loss): a constant or a table."""
+Extrapolate = Literal["none", "hold", "linear"]
+PATH_FORMS = ("loss_db", "table", "touchstone", "coupler")
 
+
+class CouplerSpec(_Strict):
+    """A directional coupler in the path, by its coupling factor; the DUT is on `arm`."""
+
+    coupling_db: Positive
+    arm: Literal["mainline", "coupled"]
+    excess_loss_db: NonNegative = 0.0
+
+
+class PathElementSpec(_Strict):
+    """One piece of the path, in exactly one form; runner/path.py works out its loss."""
+
+    name: Annotated[str, Field(min_length=1, max_length=80)] | None = None
     loss_db: Finite | None = None
-    table: list[tuple[Positive, Finite]] | None = None
+    table: Annotated[list[tuple[Positive, Finite]], Field(min_length=1)] | None = None
+    touchstone: Annotated[str, Field(min_length=1)] | None = None   # relative to the plan file
+    coupler: CouplerSpec | None = None
+    extrapolate: Extrapolate = "none"   # beyond a table or file: refused unless hold or linear
 
     @model_validator(mode="after")
-    def _one_form(self) -> "PathSpec":
-        given = [k for k in ("loss_db", "table") if getattr(self, k) is not None]
+    def _one_form(self) -> "PathElementSpec":
+        forms = PATH_FORMS + (("elements",) if "elements" in type(self).model_fields else ())
+        given = [k for k in forms if getattr(self, k) is not None]
         if len(given) != 1:
-            raise ValueError("give exactly one of loss_db or table")
-        if self.table is not None:
-            if len(self.table) < 1:
-                raise ValueError("table needs at least one [frequency_hz, loss_db] row")
-            freqs = [f for f, _ in self.table]
-            if any(b <= a for a, b in zip(freqs, freqs[1:])):
-                raise ValueError("table frequencies must be strictly increasing")
+            raise ValueError(f"give exactly one of {', '.join(forms)}")
+        if self.extrapolate != "none" and given[0] not in ("table", "touchstone"):
+            raise ValueError("extrapolate applies to a table or a touchstone file only")
         return self
 
+
+class PathSpec(PathElementSpec):
+    """Loss from the source port to the DUT input (positive = loss); `elements` add in dB."""
+
+    elements: Annotated[list[PathElementSpec], Field(min_length=1)] | None = None
+    _model: Any = PrivateAttr(None)
+
+    def attach(self, model: Any) -> None:
+        """Set the loss model built by runner.path (it may need files the keys only name)."""
+        self._model = model
+
+    def loss_model(self) -> Any:
+        if self._model is None:
+            self._model = build_path(self, PlanFiles(None, {}, "a plan not loaded from a file"))
+        return self._model
+
     def loss(self, frequency_hz: float) -> float:
-        """Loss at a frequency; a table is interpolated linearly and never extrapolated."""
-        if self.loss_db is not None:
-            return self.loss_db
-        assert self.table is not None
-        freqs = [f for f, _ in self.table]
-        losses = [l for _, l in self.table]
-        if len(freqs) == 1:
-            if not math.isclose(frequency_hz, freqs[0], rel_tol=1e-9):
-                raise ValueError(f"{frequency_hz:g} Hz is not covered by a one-row path table")
-            return losses[0]
-        if not (freqs[0] <= frequency_hz <= freqs[-1]):
-            raise ValueError(f"{frequency_hz:g} Hz lies outside the path table ({freqs[0]:g} to {freqs[-1]:g} Hz)")
-        for (f0, l0), (f1, l1) in zip(self.table, self.table[1:]):
-            if f0 <= frequency_hz <= f1:
-                return l0 + (l1 - l0) * (frequency_hz - f0) / (f1 - f0)
-        raise AssertionError("unreachable")
+        """Loss at a frequency (dB); PlanProblem for a frequency the data does not cover."""
+        return float(self.loss_model().loss(frequency_hz))
 
 
 class Limits(_Strict):
@@ -287,12 +304,14 @@ class Plan(_Strict):
 
 
 class LoadedPlan:
-    """A validated plan with its source text (the snapshot stored with a run)."""
+    """A validated plan with its source text and the texts of the files it refers to, keyed by
+    the path written in the plan: together, the snapshot stored with a run."""
 
-    def __init__(self, plan: Plan, text: str, file: str) -> None:
+    def __init__(self, plan: Plan, text: str, file: str, files: dict[str, str] | None = None) -> None:
         self.plan = plan
         self.text = text
         self.file = file
+        self.files = files or {}
 
 
 def _key_path(loc: tuple[Any, ...]) -> tuple[Any, ...]:
@@ -320,8 +339,13 @@ def _friendly(err: dict[str, Any]) -> str:
     return msg.removeprefix("Value error, ")
 
 
-def parse_plan(text: str, file: str) -> LoadedPlan:
-    """Validate plan text; raise InputError naming file, line and key path of the first problem."""
+def parse_plan(text: str, file: str, *, base_dir: Path | None = None,
+               files: Mapping[str, str] | None = None) -> LoadedPlan:
+    """Validate plan text; raise InputError naming file, line and key path of the first problem.
+
+    Referenced files are read relative to `base_dir` (default: the plan file's folder), or, when
+    `files` is given (a run's snapshot), from those texts only.
+    """
     data, lines = load_yaml_text(text, file)
     if not isinstance(data, dict):
         raise InputError("a plan is a mapping of keys (name, instruments, sweep, ...)", file=file, line=1)
@@ -347,8 +371,18 @@ def parse_plan(text: str, file: str) -> LoadedPlan:
             also.append(f"\n  also {where}key '{'.'.join(map(str, path)) or '(top)'}': {msg}")
         raise InputError(first_msg + "".join(also), file=file, line=_line_for(first_path, lines),
                          key=".".join(map(str, first_path)) or None) from None
+    refs = PlanFiles(base_dir or Path(file).parent, files)
+    try:
+        plan.path.attach(build_path(plan.path, refs))
+    except PlanProblem as exc:
+        _raise_at(exc, file, lines)
     check_consistency(plan, file, lines)
-    return LoadedPlan(plan, text, file)
+    return LoadedPlan(plan, text, file, refs.texts)
+
+
+def _raise_at(problem: PlanProblem, file: str, lines: dict[KeyPath, int]) -> None:
+    raise InputError(str(problem), file=file, line=_line_for(problem.key, lines),
+                     key=".".join(map(str, problem.key))) from None
 
 
 def check_consistency(plan: Plan, file: str, lines: dict[KeyPath, int]) -> None:
@@ -369,8 +403,8 @@ def check_consistency(plan: Plan, file: str, lines: dict[KeyPath, int]) -> None:
     for f in freqs:
         try:
             loss = plan.path.loss(f)
-        except ValueError as exc:
-            fail(str(exc), "path")
+        except PlanProblem as exc:
+            _raise_at(exc, file, lines)
         lo, hi = min(levels) + loss, top + loss
         if lo < src.min_dbm or hi > src.max_dbm:
             fail(f"at {f:g} Hz the source would need {lo:.2f} to {hi:.2f} dBm, outside its limits "

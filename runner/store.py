@@ -42,6 +42,12 @@ CREATE TABLE IF NOT EXISTS runs (
     source_idn TEXT,
     meter_idn TEXT
 );
+CREATE TABLE IF NOT EXISTS run_files (
+    run_id INTEGER NOT NULL REFERENCES runs(id),
+    path TEXT NOT NULL,
+    text TEXT NOT NULL,
+    PRIMARY KEY (run_id, path)
+) WITHOUT ROWID;
 CREATE TABLE IF NOT EXISTS points (
     run_id INTEGER NOT NULL REFERENCES runs(id),
     idx INTEGER NOT NULL,
@@ -121,12 +127,27 @@ class Store:
 
     # -- runs -----------------------------------------------------------------------------
     def create_run(self, *, name: str, plan_file: str | None, plan_text: str, plan_json: dict[str, Any],
-                   dut_id: str | None, points_total: int, state: str = "queued") -> int:
-        cur = self.conn.execute(
-            "INSERT INTO runs (name, state, plan_file, plan_text, plan_json, dut_id, points_total, created_at)"
-            " VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
-            (name, state, plan_file, plan_text, json.dumps(plan_json), dut_id, points_total, now_iso()))
-        return int(cur.lastrowid)
+                   dut_id: str | None, points_total: int, state: str = "queued",
+                   files: dict[str, str] | None = None) -> int:
+        """A run with its plan snapshot: the text, the parsed form, and the referenced files'
+        texts (keyed by the path the plan wrote), in one transaction."""
+        with self._transaction():
+            cur = self.conn.execute(
+                "INSERT INTO runs (name, state, plan_file, plan_text, plan_json, dut_id, points_total, created_at)"
+                " VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                (name, state, plan_file, plan_text, json.dumps(plan_json), dut_id, points_total, now_iso()))
+            run_id = int(cur.lastrowid)
+            self.conn.executemany("INSERT INTO run_files (run_id, path, text) VALUES (?, ?, ?)",
+                                  [(run_id, path, text) for path, text in (files or {}).items()])
+        return run_id
+
+    def run_files(self, run_id: int) -> dict[str, str]:
+        """The referenced files' texts as the run used them."""
+        try:
+            rows = self.conn.execute("SELECT path, text FROM run_files WHERE run_id=? ORDER BY path", (run_id,))
+        except sqlite3.OperationalError:
+            return {}   # a database from before referenced files were snapshotted has none
+        return {r["path"]: r["text"] for r in rows}
 
     def mark_running(self, run_id: int) -> None:
         self.conn.execute(

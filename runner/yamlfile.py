@@ -82,25 +82,25 @@ def load_yaml_text(text: str, file: str) -> tuple[Any, dict[KeyPath, int]]:
     return data, lines
 
 
-def read_text(path: Path) -> str:
+def read_text(path: Path, *, what: str = "a YAML plan", max_bytes: int = MAX_BYTES) -> str:
     """Read a plan-like text file: missing, huge or binary files are refused plainly."""
     file = str(path)
     try:
         if path.is_dir():
-            raise InputError("is a directory, not a plan file", file=file)
+            raise InputError(f"is a directory, not {what}", file=file)
         size = path.stat().st_size
     except FileNotFoundError as exc:
         raise InputError("no such file", file=file) from exc
     except OSError as exc:
         raise InputError(f"cannot read: {exc.strerror}", file=file) from exc
-    if size > MAX_BYTES:
-        raise InputError(f"the file is {size} bytes; plans larger than {MAX_BYTES} bytes are refused", file=file)
+    if size > max_bytes:
+        raise InputError(f"the file is {size} bytes; files larger than {max_bytes} bytes are refused", file=file)
     try:
         raw = path.read_bytes()
     except OSError as exc:
         raise InputError(f"cannot read: {exc.strerror}", file=file) from exc
     if b"\x00" in raw:
-        raise InputError("is a binary file, not a YAML plan", file=file)
+        raise InputError(f"is a binary file, not {what}", file=file)
     try:
         return raw.decode("utf-8")
     except UnicodeDecodeError as exc:
