@@ -66,20 +66,23 @@ def transfer_plot(reports: list[dict[str, Any]], path: Path) -> Path:
     """Output voltage against DUT level: measured points, the fitted line, points left out (x)."""
     fig = Figure(figsize=(8, 5.5), layout="constrained")
     ax = fig.add_subplot()
+    left_out_label = "left out (did not settle)"
     for r_i, colour, g, d, label in _groups(reports):
         used = [c for c in d["curve"] if c["error_db"] is not None]
         left_out = [c for c in d["curve"] if c["error_db"] is None and c["value_v"] is not None]
         ax.plot([c["power_dbm"] for c in used], [c["value_v"] for c in used], MARKERS[r_i], ms=3.5,
                 color=colour, label=label)
         if left_out:
-            ax.plot([c["power_dbm"] for c in left_out], [c["value_v"] for c in left_out], "x", ms=5, color="0.45")
+            ax.plot([c["power_dbm"] for c in left_out], [c["value_v"] for c in left_out], "x", ms=7, mew=1.5,
+                    color="tab:red", zorder=5, label=left_out_label)
+            left_out_label = "_nolegend_"
         line = d["line"]
         if line is not None:
             levels = [c["power_dbm"] for c in d["curve"]]
             xs = [min(levels), max(levels)]
             ax.plot(xs, [line["intercept_v"] + line["slope_v_per_db"] * x for x in xs], LINESTYLES[r_i],
                     lw=0.9, color=colour)
-    _level_axes(ax, reports, "detector output (V)", "Transfer curve and straight-line fit (x: left out)")
+    _level_axes(ax, reports, "detector output (V)", "Transfer curve and straight-line fit")
     return _save(fig, path)
 
 

@@ -18,7 +18,7 @@ from typing import Any
 
 from drivers.errors import InputError
 
-SCHEMA_VERSION = 2   # 2: the fits table and the v_points / v_fits views (docs/database.md)
+SCHEMA_VERSION = 2   # 2: fits, run_counts, and the v_points / v_fits views (docs/database.md)
 STATES = ("queued", "running", "completed", "interrupted", "failed")
 
 SCHEMA = """
@@ -98,6 +98,21 @@ CREATE TABLE IF NOT EXISTS fits (
     analysed_at TEXT NOT NULL
 );
 CREATE INDEX IF NOT EXISTS fits_run ON fits(run_id);
+-- points per run, kept by the database itself in the same transaction as each point, so listing
+-- runs costs one row per run instead of counting every point of a year (bench/store.py)
+CREATE TABLE IF NOT EXISTS run_counts (run_id INTEGER PRIMARY KEY, points_done INTEGER NOT NULL);
+CREATE TRIGGER IF NOT EXISTS points_counted AFTER INSERT ON points BEGIN
+    INSERT INTO run_counts (run_id, points_done) VALUES (NEW.run_id, 1)
+    ON CONFLICT (run_id) DO UPDATE SET points_done = points_done + 1;
+END;
+CREATE TRIGGER IF NOT EXISTS points_uncounted AFTER DELETE ON points BEGIN
+    UPDATE run_counts SET points_done = points_done - 1 WHERE run_id = OLD.run_id;
+END;
+"""
+
+# run on every migration: the counts of a file written before run_counts existed
+BACKFILL = """
+INSERT OR REPLACE INTO run_counts (run_id, points_done) SELECT run_id, COUNT(*) FROM points GROUP BY run_id;
 """
 
 # The stable views: their names and columns are a documented contract (docs/database.md); the
@@ -157,22 +172,25 @@ class Store:
         try:
             self.conn = sqlite3.connect(self.path, timeout=10.0, isolation_level=None)
             self.conn.row_factory = sqlite3.Row
+            if not create and not self._has_meta():
+                raise InputError("not a nightbench database (it has no meta table)", file=self.path)
             self.conn.execute("PRAGMA journal_mode=WAL")
             self.conn.execute("PRAGMA synchronous=FULL")
             self.conn.execute("PRAGMA foreign_keys=ON")
-            self._migrate(create)
+            self._migrate()
         except sqlite3.DatabaseError as exc:
             raise InputError(f"cannot use as a nightbench database: {exc}", file=self.path) from exc
 
-    def _migrate(self, create: bool) -> None:
+    def _has_meta(self) -> bool:
+        return self.conn.execute("SELECT 1 FROM sqlite_master WHERE type='table' AND name='meta'").fetchone() is not None
+
+    def _migrate(self) -> None:
         """Bring the schema to SCHEMA_VERSION; an up-to-date file costs one SELECT and no write."""
-        has_meta = self.conn.execute("SELECT 1 FROM sqlite_master WHERE type='table' AND name='meta'").fetchone()
-        if not has_meta and not create:
-            raise InputError("not a nightbench database (it has no meta table)", file=self.path)
+        has_meta = self._has_meta()
         row = self.conn.execute("SELECT value FROM meta WHERE key='schema_version'").fetchone() if has_meta else None
         if row is not None and row[0] == str(SCHEMA_VERSION):
             return
-        self.conn.executescript("BEGIN IMMEDIATE;" + SCHEMA + VIEWS
+        self.conn.executescript("BEGIN IMMEDIATE;" + SCHEMA + VIEWS + BACKFILL
                                 + f"INSERT OR REPLACE INTO meta VALUES ('schema_version', '{SCHEMA_VERSION}');COMMIT;")
 
     def close(self) -> None:
@@ -214,8 +232,8 @@ class Store:
     def runs(self) -> list[dict[str, Any]]:
         rows = self.conn.execute(
             "SELECT r.id, r.name, r.state, r.points_total, r.started_at, r.finished_at,"
-            " (SELECT COUNT(*) FROM points p WHERE p.run_id = r.id) AS points_done"
-            " FROM runs r ORDER BY r.id").fetchall()
+            " COALESCE(c.points_done, 0) AS points_done"
+            " FROM runs r LEFT JOIN run_counts c ON c.run_id = r.id ORDER BY r.id").fetchall()
         return [{"id": r["id"], "name": r["name"], "state": r["state"], "points_done": r["points_done"],
                  "points_total": r["points_total"], "started_at": r["started_at"],
                  "finished_at": r["finished_at"]} for r in rows]
