@@ -76,6 +76,8 @@ def render_table(report: dict[str, Any]) -> str:
                      f"{g['points']:7d} {g['unsettled_points']:9d}")
         if d.get("note"):
             lines.append(f"{'':10} not fitted: {d['note']}")
+    if not report["groups"]:
+        lines.append(f"{'':10} no points stored for this run")
     a = report["analysis"]
     lines.append(f"fit over {a['fit_dbm'][0]:g} .. {a['fit_dbm'][1]:g} dBm; range where |error| <= "
                  f"{a['error_limit_db']:g} dB ('<=', '>=': the sweep ends first); "
