@@ -3,19 +3,20 @@
 Reads the store only. Per group (one frequency): the least-squares line V = a + b*P over the
 plan's fit range, slope b (mV/dB), intercept -a/b (dBm, where the line reaches 0 V), the
 conformance error (V - a - b*P)/b (dB) of every point, and the contiguous range around the fit
-range where |error| stays within the limit. Uncertainties are JCGM 100:2008 Type A from the fit,
-expanded with k = 2.
+range where |error| stays within the limit. Uncertainties follow JCGM 100:2008
+(runner/uncertainty.py): Type A from the fit and the reading scatter, Type B from what the plan
+states about the bench, expanded with k = 2.
 """
 
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field
 from typing import Any, Sequence
 
 import numpy as np
 
-K_EXPANSION = 2.0
+from runner.uncertainty import Budget, build_budget, expand, type_a_of_mean
 
 
 @dataclass
@@ -89,6 +90,22 @@ def range_within(levels: np.ndarray, errors: np.ndarray, fit_dbm: tuple[float, f
     return round(walk(-1), 1), round(walk(+1), 1)
 
 
+PUBLIC_KEYS = ("frequency_hz", "temperature_c", "slope_mv_per_db", "slope_u_mv_per_db", "intercept_dbm",
+               "intercept_u_db", "fit_dbm", "error_limit_db", "range_low_dbm", "range_high_dbm",
+               "dynamic_range_db", "max_abs_error_db", "points", "unsettled_points")
+
+
+def exclusion(row: dict[str, Any]) -> str | None:
+    """Why a stored point cannot be used (None if it can): overload first, then unsettled."""
+    if row.get("overload"):
+        return "overload"
+    if not row.get("settled"):
+        return "unsettled"
+    if row.get("value_v") is None:
+        return "no value"
+    return None
+
+
 @dataclass
 class GroupResult:
     frequency_hz: float
@@ -104,52 +121,103 @@ class GroupResult:
     dynamic_range_db: float | None
     max_abs_error_db: float | None
     points: int
-    unsettled_points: int
+    unsettled_points: int          # did not settle within settle.timeout_s (overloads counted apart)
     overload_points: int = 0
     note: str | None = None
-    errors_db: list[tuple[float, float]] = field(default_factory=list)
+    line: LineFit | None = None
+    budget: Budget | None = None
+    range_low_at_sweep_end: bool = False    # the range end is the last point swept, not a crossing
+    range_high_at_sweep_end: bool = False
+    curve: list[dict[str, Any]] = field(default_factory=list)   # every point: level, value, error, status
+
+    @property
+    def errors_db(self) -> list[tuple[float, float]]:
+        return [(c["power_dbm"], c["error_db"]) for c in self.curve if c["error_db"] is not None]
+
+    @property
+    def excluded(self) -> list[dict[str, Any]]:
+        return [{"power_dbm": c["power_dbm"], "reason": c["status"]} for c in self.curve
+                if c["status"] not in ("in_fit", "outside_fit")]
 
     def public(self) -> dict[str, Any]:
-        """The report --json shape from DESIGN.md."""
-        data = asdict(self)
-        for key in ("overload_points", "note", "errors_db"):
-            data.pop(key)
-        return data
+        """The report --json group shape from DESIGN.md, exactly."""
+        return {k: getattr(self, k) for k in PUBLIC_KEYS}
+
+    def detail(self) -> dict[str, Any]:
+        """Everything else a reader or a plot needs: the line, the budget, every point and why."""
+        return {"frequency_hz": self.frequency_hz, "temperature_c": self.temperature_c, "note": self.note,
+                "line": None if self.line is None else {
+                    "intercept_v": self.line.intercept_v, "slope_v_per_db": self.line.slope_v_per_db,
+                    "residual_sd_v": self.line.residual_sd_v, "n": self.line.n},
+                "uncertainty": None if self.budget is None else self.budget.as_dict(),
+                "overload_points": self.overload_points,
+                "range_low_at_sweep_end": self.range_low_at_sweep_end,
+                "range_high_at_sweep_end": self.range_high_at_sweep_end,
+                "excluded": self.excluded, "curve": self.curve}
 
 
 def analyse_group(frequency_hz: float, rows: list[dict[str, Any]], fit_dbm: tuple[float, float],
-                  limit_db: float) -> GroupResult:
-    """Fit one group of stored points (dicts with power_dbm, value_v, settled, overload)."""
-    usable = [r for r in rows if r["settled"] and not r["overload"] and r["value_v"] is not None]
-    unsettled = sum(1 for r in rows if not r["settled"])
-    overload = sum(1 for r in rows if r["overload"])
-    base = dict(frequency_hz=frequency_hz, temperature_c=None, fit_dbm=list(fit_dbm), error_limit_db=limit_db,
-                points=len(rows), unsettled_points=unsettled, overload_points=overload)
+                  limit_db: float, accuracy: dict[str, float] | None = None,
+                  temperature_c: float | None = None) -> GroupResult:
+    """Fit one group of stored points (dicts with power_dbm, value_v, settled, overload and,
+    for the reading-scatter term, stdev_v and samples)."""
+    rows = sorted(rows, key=lambda r: r["power_dbm"])
+    reasons = [exclusion(r) for r in rows]
+    usable = [r for r, why in zip(rows, reasons) if why is None]
+    base = dict(frequency_hz=frequency_hz, temperature_c=temperature_c, fit_dbm=list(fit_dbm),
+                error_limit_db=limit_db, points=len(rows), unsettled_points=reasons.count("unsettled"),
+                overload_points=reasons.count("overload"))
     levels = np.array([r["power_dbm"] for r in usable], dtype=float)
     values = np.array([r["value_v"] for r in usable], dtype=float)
     in_fit = (levels >= fit_dbm[0] - 1e-9) & (levels <= fit_dbm[1] + 1e-9)
+
+    def curve(errors: np.ndarray | None) -> list[dict[str, Any]]:
+        out, k = [], 0
+        for r, why in zip(rows, reasons):
+            entry = {"power_dbm": r["power_dbm"], "value_v": r["value_v"], "error_db": None, "status": why}
+            if why is None:
+                entry["status"] = "in_fit" if in_fit[k] else "outside_fit"
+                entry["error_db"] = None if errors is None else float(errors[k])
+                k += 1
+            out.append(entry)
+        return out
+
     try:
         fit = fit_line(levels[in_fit], values[in_fit])
     except ValueError as exc:
         return GroupResult(slope_mv_per_db=None, slope_u_mv_per_db=None, intercept_dbm=None, intercept_u_db=None,
                            range_low_dbm=None, range_high_dbm=None, dynamic_range_db=None,
-                           max_abs_error_db=None, note=str(exc), **base)
+                           max_abs_error_db=None, note=str(exc), curve=curve(None), **base)
     errors = conformance_db(fit, levels, values)
     low, high = range_within(levels, errors, fit_dbm, limit_db)
+    u_y = [_u_mean(r) for r, ok in zip(usable, in_fit) if ok]
+    budget = build_budget(slope_v_per_db=fit.slope_v_per_db, intercept_v=fit.intercept_v,
+                          u_slope_fit=fit.u_slope_v_per_db, u_intercept_fit_db=fit.u_intercept_dbm,
+                          residual_sd_v=fit.residual_sd_v, x=levels[in_fit], u_y=u_y, accuracy=accuracy or {})
     return GroupResult(
         slope_mv_per_db=fit.slope_v_per_db * 1e3,
-        slope_u_mv_per_db=K_EXPANSION * fit.u_slope_v_per_db * 1e3,
+        slope_u_mv_per_db=expand(budget.slope_u_mv_per_db),
         intercept_dbm=fit.intercept_dbm,
-        intercept_u_db=K_EXPANSION * fit.u_intercept_dbm,
+        intercept_u_db=expand(budget.intercept_u_db),
         range_low_dbm=low, range_high_dbm=high,
         dynamic_range_db=None if low is None or high is None else round(high - low, 1),
         max_abs_error_db=float(np.max(np.abs(errors[in_fit]))),
-        errors_db=[(float(p), float(e)) for p, e in zip(levels, errors)],
-        **base)
+        line=fit, budget=budget,
+        range_low_at_sweep_end=low is not None and low == round(float(levels.min()), 1),
+        range_high_at_sweep_end=high is not None and high == round(float(levels.max()), 1),
+        curve=curve(errors), **base)
 
 
-def analyse_run(points: list[dict[str, Any]], fit_dbm: tuple[float, float], limit_db: float) -> list[GroupResult]:
-    groups: dict[float, list[dict[str, Any]]] = {}
+def _u_mean(row: dict[str, Any]) -> float | None:
+    stdev, n = row.get("stdev_v"), row.get("samples") or 0
+    return None if stdev is None or n < 2 else type_a_of_mean(stdev, n)
+
+
+def analyse_run(points: list[dict[str, Any]], fit_dbm: tuple[float, float], limit_db: float,
+                accuracy: dict[str, float] | None = None) -> list[GroupResult]:
+    """One result per group: each frequency (and, once points carry it, each temperature)."""
+    groups: dict[tuple[float, float | None], list[dict[str, Any]]] = {}
     for row in points:
-        groups.setdefault(row["frequency_hz"], []).append(row)
-    return [analyse_group(f, rows, fit_dbm, limit_db) for f, rows in sorted(groups.items())]
+        groups.setdefault((row["frequency_hz"], row.get("temperature_c")), []).append(row)
+    return [analyse_group(f, rows, fit_dbm, limit_db, accuracy, temperature_c=t)
+            for (f, t), rows in sorted(groups.items(), key=lambda kv: (kv[0][0], kv[0][1] or 0.0))]

@@ -144,17 +144,45 @@ def runs(db: str | None, as_json: bool) -> None:
 
 
 @main.command()
-@click.argument("run_id", type=int)
+@click.argument("run_ids", metavar="RUN [RUN_B]", nargs=-1, type=int, required=True)
 @click.option("--db", help=DB_HELP)
 @click.option("--json", "as_json", is_flag=True, help="machine-readable results")
+@click.option("--out", type=click.Path(), help="write PNG plots, a Markdown summary and CSV files into this directory")
 @friendly
-def report(run_id: int, db: str | None, as_json: bool) -> None:
-    """Characterisation results of RUN: slope, intercept, conformance, dynamic range."""
+def report(run_ids: tuple[int, ...], db: str | None, as_json: bool, out: str | None) -> None:
+    """Characterisation results of RUN: slope, intercept, conformance, dynamic range, uncertainties.
+
+    With a second run, RUN_B, both side by side and their differences (B minus A).
+    """
+    from drivers.errors import InputError
     from runner.report import build_report, render_table
     from runner.store import Store
 
-    result = build_report(Store(_db(db), create=False), run_id)
-    click.echo(json.dumps(result, indent=1) if as_json else render_table(result))
+    if len(run_ids) > 2:
+        raise InputError(f"report takes one run, or two to compare; got {len(run_ids)}")
+    if out:
+        from runner.outputs import check_out_dir
+
+        check_out_dir(out)
+    store = Store(_db(db), create=False)
+    for run_id in run_ids:
+        store.run(run_id)  # every run must exist before anything is written
+    reports = [build_report(store, run_id) for run_id in run_ids]
+    comparison_text = None
+    if len(reports) == 2:
+        from runner.compare import compare_reports, render_comparison
+
+        cmp = compare_reports(*reports)
+        comparison_text = render_comparison(cmp)
+        click.echo(json.dumps(cmp, indent=1) if as_json
+                   else "\n\n".join([comparison_text, *(render_table(r) for r in reports)]))
+    else:
+        click.echo(json.dumps(reports[0], indent=1) if as_json else render_table(reports[0]))
+    if out:
+        from runner.outputs import prepare_dir, write_outputs
+
+        files = write_outputs(store, reports, comparison_text, prepare_dir(out))
+        click.echo(f"wrote {len(files)} files to {out}: " + ", ".join(f.name for f in files), err=True)
 
 
 @main.command()

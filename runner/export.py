@@ -1,4 +1,8 @@
-"""One row per point, as CSV or JSON (DESIGN.md export columns first)."""
+"""One row per point, as CSV or JSON (DESIGN.md export columns first).
+
+CSV is only the table (header row first, so any reader takes it); JSON adds the run's metadata
+and its stored plan, so an export alone says what was measured, on what, and how.
+"""
 
 from __future__ import annotations
 
@@ -10,6 +14,9 @@ from runner.store import Store
 
 COLUMNS = ["frequency_hz", "power_dbm", "source_dbm", "value_v", "stdev_v", "samples", "settle_s", "settled",
            "overload", "settle_readings", "idx", "measured_at"]
+# the run's metadata in a JSON export; the plan comes both parsed (as validated) and as the exact text
+RUN_METADATA = ("name", "state", "dut_id", "points_total", "created_at", "started_at", "finished_at", "error",
+                "host", "source_idn", "meter_idn", "plan_file")
 
 
 def write_export(store: Store, run_id: int, fmt: str, out: TextIO) -> None:
@@ -20,7 +27,7 @@ def write_export(store: Store, run_id: int, fmt: str, out: TextIO) -> None:
         writer.writeheader()
         writer.writerows(rows)
         return
-    json.dump({"run_id": run_id, "name": run["name"], "state": run["state"], "dut_id": run["dut_id"],
-               "source_idn": run["source_idn"], "meter_idn": run["meter_idn"],
-               "plan": json.loads(run["plan_json"]), "points": rows}, out, indent=1)
+    meta = {k: run[k] for k in RUN_METADATA}
+    json.dump({"run_id": run_id, **meta, "plan": json.loads(run["plan_json"]), "plan_text": run["plan_text"],
+               "points": rows}, out, indent=1)
     out.write("\n")

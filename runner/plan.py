@@ -281,6 +281,12 @@ class Measure(_Strict):
 class Analysis(_Strict):
     fit_dbm: tuple[Finite, Finite]
     error_limit_db: Positive = 1.0
+    # What the bench's data sheets promise, as half-widths of rectangular distributions (the
+    # Type B inputs of JCGM 100:2008, 4.3.7). 0 = not stated: the term is shown as 0, not guessed.
+    source_level_accuracy_db: NonNegative = 0.0   # absolute level accuracy of the source, +/- dB
+    path_loss_accuracy_db: NonNegative = 0.0      # calibration of the path loss, +/- dB
+    meter_gain_accuracy_pct: NonNegative = 0.0    # meter accuracy, +/- % of reading
+    meter_offset_accuracy_v: NonNegative = 0.0    # meter offset (the "% of range" part), +/- V
 
     @field_validator("fit_dbm")
     @classmethod

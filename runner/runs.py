@@ -27,4 +27,20 @@ def snapshot_plan(store: Store, run_id: int) -> LoadedPlan:
 def execute(loaded: LoadedPlan, store: Store, run_id: int, stop: StopFlag) -> tuple[str, str | None]:
     """Run the missing points of a run in the foreground, with a progress bar on a terminal."""
     with progress_printer(loaded.plan.name, run_id) as progress:
-        return Engine(loaded, store, run_id, stop, progress).run()
+        state, error = Engine(loaded, store, run_id, stop, progress).run()
+    if state == "completed":
+        store_fits(store, run_id)
+    return state, error
+
+
+def store_fits(store: Store, run_id: int) -> None:
+    """Fit results go into the database as soon as a run completes, so queries across runs see
+    every completed run whether or not anyone ran `report`. The points are already durable and the
+    run's state recorded, so a failure here must not turn a good night into a failed run (nor stop
+    the service): it becomes an event, and `report` (which stores the fits again) shows the error."""
+    from runner.report import build_report
+
+    try:
+        build_report(store, run_id)
+    except Exception as exc:  # noqa: BLE001 - see the docstring
+        store.event(run_id, "analysis", f"fit results not stored: {type(exc).__name__}: {exc}")

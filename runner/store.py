@@ -18,7 +18,7 @@ from typing import Any
 
 from drivers.errors import InputError
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2   # 2: fits, run_counts, and the v_points / v_fits views (docs/database.md)
 STATES = ("queued", "running", "completed", "interrupted", "failed")
 
 SCHEMA = """
@@ -80,7 +80,72 @@ CREATE TABLE IF NOT EXISTS events (
     kind TEXT NOT NULL,
     message TEXT NOT NULL
 );
+CREATE TABLE IF NOT EXISTS fits (
+    run_id INTEGER NOT NULL REFERENCES runs(id),
+    frequency_hz REAL NOT NULL,
+    temperature_c REAL,
+    slope_mv_per_db REAL,
+    slope_u_mv_per_db REAL,
+    intercept_dbm REAL,
+    intercept_u_db REAL,
+    fit_low_dbm REAL NOT NULL,
+    fit_high_dbm REAL NOT NULL,
+    error_limit_db REAL NOT NULL,
+    range_low_dbm REAL,
+    range_high_dbm REAL,
+    dynamic_range_db REAL,
+    max_abs_error_db REAL,
+    points INTEGER NOT NULL,
+    unsettled_points INTEGER NOT NULL,
+    overload_points INTEGER NOT NULL,
+    residual_sd_v REAL,
+    note TEXT,
+    uncertainty_json TEXT,
+    analysed_at TEXT NOT NULL
+);
+CREATE INDEX IF NOT EXISTS fits_run ON fits(run_id);
+-- points per run, kept by the database itself in the same transaction as each point, so listing
+-- runs costs one row per run instead of counting every point of a year (bench/store.py)
+CREATE TABLE IF NOT EXISTS run_counts (run_id INTEGER PRIMARY KEY, points_done INTEGER NOT NULL);
+CREATE TRIGGER IF NOT EXISTS points_counted AFTER INSERT ON points BEGIN
+    INSERT INTO run_counts (run_id, points_done) VALUES (NEW.run_id, 1)
+    ON CONFLICT (run_id) DO UPDATE SET points_done = points_done + 1;
+END;
+CREATE TRIGGER IF NOT EXISTS points_uncounted AFTER DELETE ON points BEGIN
+    UPDATE run_counts SET points_done = points_done - 1 WHERE run_id = OLD.run_id;
+END;
 """
+
+# run on every migration: the counts of a file written before run_counts existed
+BACKFILL = """
+INSERT OR REPLACE INTO run_counts (run_id, points_done) SELECT run_id, COUNT(*) FROM points GROUP BY run_id;
+"""
+
+# The stable views: their names and columns are a documented contract (docs/database.md); the
+# tables under them may change, so they are dropped and re-created whenever the schema version moves.
+VIEWS = """
+DROP VIEW IF EXISTS v_points;
+CREATE VIEW v_points AS
+SELECT p.run_id, r.name AS run_name, r.dut_id, r.state AS run_state, r.started_at AS run_started_at,
+       r.finished_at AS run_finished_at, r.source_idn, r.meter_idn,
+       p.idx, p.frequency_hz, NULL AS temperature_c, p.power_dbm, p.source_dbm, p.value_v, p.stdev_v,
+       p.samples, p.settle_s, p.settle_readings, p.settled, p.overload, p.measured_at
+FROM points p JOIN runs r ON r.id = p.run_id;
+DROP VIEW IF EXISTS v_fits;
+CREATE VIEW v_fits AS
+SELECT f.run_id, r.name AS run_name, r.dut_id, r.state AS run_state, r.started_at AS run_started_at,
+       r.finished_at AS run_finished_at, f.frequency_hz, f.temperature_c,
+       f.slope_mv_per_db, f.slope_u_mv_per_db, f.intercept_dbm, f.intercept_u_db,
+       f.fit_low_dbm, f.fit_high_dbm, f.error_limit_db, f.range_low_dbm, f.range_high_dbm,
+       f.dynamic_range_db, f.max_abs_error_db, f.points, f.unsettled_points, f.overload_points,
+       f.analysed_at
+FROM fits f JOIN runs r ON r.id = f.run_id;
+"""
+
+FIT_COLUMNS = ("frequency_hz", "temperature_c", "slope_mv_per_db", "slope_u_mv_per_db", "intercept_dbm",
+               "intercept_u_db", "fit_low_dbm", "fit_high_dbm", "error_limit_db", "range_low_dbm",
+               "range_high_dbm", "dynamic_range_db", "max_abs_error_db", "points", "unsettled_points",
+               "overload_points", "residual_sd_v", "note", "uncertainty_json")
 
 
 def now_iso() -> str:
@@ -113,14 +178,26 @@ class Store:
         try:
             self.conn = sqlite3.connect(self.path, timeout=10.0, isolation_level=None)
             self.conn.row_factory = sqlite3.Row
+            if not create and not self._has_meta():
+                raise InputError("not a nightbench database (it has no meta table)", file=self.path)
             self.conn.execute("PRAGMA journal_mode=WAL")
             self.conn.execute("PRAGMA synchronous=FULL")
             self.conn.execute("PRAGMA foreign_keys=ON")
-            if create:
-                self.conn.executescript(SCHEMA)
-                self.conn.execute("INSERT OR IGNORE INTO meta VALUES ('schema_version', ?)", (str(SCHEMA_VERSION),))
+            self._migrate()
         except sqlite3.DatabaseError as exc:
             raise InputError(f"cannot use as a nightbench database: {exc}", file=self.path) from exc
+
+    def _has_meta(self) -> bool:
+        return self.conn.execute("SELECT 1 FROM sqlite_master WHERE type='table' AND name='meta'").fetchone() is not None
+
+    def _migrate(self) -> None:
+        """Bring the schema to SCHEMA_VERSION; an up-to-date file costs one SELECT and no write."""
+        has_meta = self._has_meta()
+        row = self.conn.execute("SELECT value FROM meta WHERE key='schema_version'").fetchone() if has_meta else None
+        if row is not None and row[0] == str(SCHEMA_VERSION):
+            return
+        self.conn.executescript("BEGIN IMMEDIATE;" + SCHEMA + VIEWS + BACKFILL
+                                + f"INSERT OR REPLACE INTO meta VALUES ('schema_version', '{SCHEMA_VERSION}');COMMIT;")
 
     def close(self) -> None:
         self.conn.close()
@@ -176,8 +253,8 @@ class Store:
     def runs(self) -> list[dict[str, Any]]:
         rows = self.conn.execute(
             "SELECT r.id, r.name, r.state, r.points_total, r.started_at, r.finished_at,"
-            " (SELECT COUNT(*) FROM points p WHERE p.run_id = r.id) AS points_done"
-            " FROM runs r ORDER BY r.id").fetchall()
+            " COALESCE(c.points_done, 0) AS points_done"
+            " FROM runs r LEFT JOIN run_counts c ON c.run_id = r.id ORDER BY r.id").fetchall()
         return [{"id": r["id"], "name": r["name"], "state": r["state"], "points_done": r["points_done"],
                  "points_total": r["points_total"], "started_at": r["started_at"],
                  "finished_at": r["finished_at"]} for r in rows]
@@ -202,6 +279,20 @@ class Store:
 
     def points(self, run_id: int) -> list[sqlite3.Row]:
         return self.conn.execute("SELECT * FROM points WHERE run_id=? ORDER BY idx", (run_id,)).fetchall()
+
+    # -- fits ------------------------------------------------------------------------------
+    def save_fits(self, run_id: int, rows: list[dict[str, Any]]) -> None:
+        """Replace the stored fit results of a run (one row per group) in one transaction."""
+        with self._transaction():
+            self.conn.execute("DELETE FROM fits WHERE run_id=?", (run_id,))
+            self.conn.executemany(
+                f"INSERT INTO fits (run_id, {', '.join(FIT_COLUMNS)}, analysed_at)"
+                f" VALUES (?, {', '.join('?' * len(FIT_COLUMNS))}, ?)",
+                [(run_id, *(r[c] for c in FIT_COLUMNS), now_iso()) for r in rows])
+
+    def fits(self, run_id: int) -> list[sqlite3.Row]:
+        return self.conn.execute("SELECT * FROM fits WHERE run_id=? ORDER BY frequency_hz, temperature_c",
+                                 (run_id,)).fetchall()
 
     def _transaction(self) -> "_Tx":
         return _Tx(self.conn)

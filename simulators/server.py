@@ -110,11 +110,16 @@ class Bench:
                 "adc_serial": self.ports[3].resource if serial else None}
 
     def start(self) -> None:
-        for port in self.ports:
-            threading.Thread(target=port.serve, daemon=True).start()
+        self.threads = [threading.Thread(target=port.serve, daemon=True) for port in self.ports]
+        for thread in self.threads:
+            thread.start()
 
     def stop(self) -> None:
+        """Stop serving; threads end before their file descriptors close, so a number the OS
+        hands out again can never be read by a thread of a stopped bench."""
         self.stop_event.set()
+        for thread in getattr(self, "threads", []):
+            thread.join(timeout=2.0)
         for port in self.ports:
             port.close()
 

@@ -6,7 +6,7 @@ import json
 import subprocess
 import sys
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable
 
 import pytest
 import yaml
@@ -104,3 +104,34 @@ def session(resource: str, timeout_s: float = 2.0, name: str = "instrument"):
     from drivers.transport import open_transport
 
     return ScpiSession(open_transport(resource, timeout_s=timeout_s), name)
+
+def store_run(db: Path, law: Callable[[float, float], float], *, dut_id: str = "T-1",
+              frequencies: list[float] | None = None, levels: list[float] | None = None,
+              analysis: dict[str, Any] | None = None, stdev_v: float | None = 1e-4,
+              status: Callable[[float, float], str] | None = None) -> int:
+    """A completed run written through the real plan loader and Store, from a known law V(P, f).
+
+    For checks whose expected values follow from the law by arithmetic (differences between two
+    boards, what the views return); `status(P, f)` may mark a point "unsettled" or "overload".
+    """
+    from runner.plan import parse_plan
+    from runner.runs import new_run
+    from runner.store import PointResult, Store
+    from runner.sweep import expand
+
+    sweep = {"frequency_hz": frequencies or [100e6],
+             "power_dbm": levels if levels is not None else {"start": -80, "stop": 0, "step": 2}}
+    plan = plan_dict(OFFLINE, dut={"id": dut_id}, sweep=sweep, **({"analysis": analysis} if analysis else {}))
+    loaded = parse_plan(yaml.safe_dump(plan, sort_keys=False), "synthetic.yaml")
+    store = Store(db)
+    run_id = new_run(store, loaded)
+    store.mark_running(run_id)
+    for point in expand(loaded.plan):
+        kind = status(point.power_dbm, point.frequency_hz) if status else "ok"
+        value = None if kind == "overload" else law(point.power_dbm, point.frequency_hz)
+        result = PointResult(value, stdev_v if value is not None else None, 4 if value is not None else 0,
+                             0.01, 3, kind == "ok", kind == "overload", [(0.01, value, "measure")])
+        store.add_point(run_id, point, result)
+    store.finish_run(run_id, "completed")
+    store.close()
+    return run_id

@@ -65,6 +65,13 @@ def test_numbers_in_exponent_form_everywhere(write_plan):
     assert loaded.plan.settle.tolerance_v == 5e-4
 
 
+def test_type_b_accuracies_default_to_not_stated_and_accept_exponents():
+    plan = plan_dict(OFFLINE)
+    assert parse_plan(_yaml(plan), "p.yaml").plan.analysis.meter_offset_accuracy_v == 0.0
+    text = _yaml(plan).replace("error_limit_db: 1.0", "error_limit_db: 1.0\n  meter_offset_accuracy_v: 5e-5")
+    assert parse_plan(text, "p.yaml").plan.analysis.meter_offset_accuracy_v == 5e-5
+
+
 def test_endpoints_inclusive_and_outer_axis_first():
     plan = parse_plan(_yaml(plan_dict(OFFLINE, sweep={
         "power_dbm": {"start": -10, "stop": -20, "step": -5},
@@ -95,6 +102,7 @@ def test_unknown_key_names_file_line_and_key(write_plan):
     (lambda p: p["instruments"]["source"].update(resource="127.0.0.1:5025"), "instruments.source.resource"),
     (lambda p: p["instruments"]["meter"].update(driver="volt-o-matic"), "instruments.meter.driver"),
     (lambda p: p["analysis"].update(fit_dbm=[-10, -60]), "analysis.fit_dbm"),
+    (lambda p: p["analysis"].update(source_level_accuracy_db=-0.5), "analysis.source_level_accuracy_db"),
 ])
 def test_bad_values_are_refused_with_their_key(edit, key):
     plan = plan_dict(OFFLINE)

@@ -1,0 +1,125 @@
+"""The result database as a product: stable views, stored fits, counts, migration, documented queries."""
+
+from __future__ import annotations
+
+import re
+import shlex
+import sqlite3
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from runner.store import SCHEMA_VERSION, Store
+from tests.conftest import cli, store_run
+
+DOC = Path(__file__).resolve().parent.parent / "docs" / "database.md"
+FREQS = [100e6, 500e6, 900e6]
+
+# the documented column lists of the stable views (docs/database.md): a contract for integrators
+V_POINTS = ["run_id", "run_name", "dut_id", "run_state", "run_started_at", "run_finished_at", "source_idn",
+            "meter_idn", "idx", "frequency_hz", "temperature_c", "power_dbm", "source_dbm", "value_v", "stdev_v",
+            "samples", "settle_s", "settle_readings", "settled", "overload", "measured_at"]
+V_FITS = ["run_id", "run_name", "dut_id", "run_state", "run_started_at", "run_finished_at", "frequency_hz",
+          "temperature_c", "slope_mv_per_db", "slope_u_mv_per_db", "intercept_dbm", "intercept_u_db",
+          "fit_low_dbm", "fit_high_dbm", "error_limit_db", "range_low_dbm", "range_high_dbm", "dynamic_range_db",
+          "max_abs_error_db", "points", "unsettled_points", "overload_points", "analysed_at"]
+
+
+def _batch(db: Path) -> None:
+    """Three invented boards, one of them twice, with known slopes; fits stored by `report`."""
+    def bad_top(p: float, f: float) -> str:   # board -01 overloads at the top and misses one point
+        return "overload" if p == 0 else "unsettled" if (p, f) == (-40, 500e6) else "ok"
+
+    for dut, slope, icpt in (("B7-proto-03", 0.0200, -92.0), ("B7-proto-01", 0.0198, -91.0),
+                             ("B7-proto-03", 0.0201, -91.5), ("B7-proto-02", 0.0203, -93.0)):
+        store_run(db, lambda p, f, s=slope, i=icpt: s * (max(p, -80.0) - i), dut_id=dut, frequencies=FREQS,
+                  status=bad_top if dut == "B7-proto-01" else None)
+    for run_id in range(1, 5):
+        assert cli("report", str(run_id), "--db", str(db)).returncode == 0
+
+
+def _columns(conn: sqlite3.Connection, view: str) -> list[str]:
+    return [row[1] for row in conn.execute(f"PRAGMA table_info({view})")]
+
+
+def test_views_have_the_documented_columns_and_one_row_per_point_and_per_group(tmp_path):
+    db = tmp_path / "lab.db"
+    _batch(db)
+    conn = sqlite3.connect(db)
+    assert _columns(conn, "v_points") == V_POINTS and _columns(conn, "v_fits") == V_FITS
+    doc = DOC.read_text()
+    assert all(f"`{c}`" in doc for c in V_POINTS + V_FITS)
+    points = conn.execute("SELECT COUNT(*) FROM points").fetchone()[0]
+    assert conn.execute("SELECT COUNT(*) FROM v_points").fetchone()[0] == points == 4 * 3 * 41
+    assert conn.execute("SELECT COUNT(*) FROM v_fits").fetchone()[0] == 4 * 3
+    # a stored fit is the law it came from: run 3 is 20.1 mV/dB, 0 V at -91.5 dBm
+    slope, icpt = conn.execute("SELECT slope_mv_per_db, intercept_dbm FROM v_fits WHERE run_id = 3 "
+                               "AND frequency_hz = 500e6").fetchone()
+    assert slope == pytest.approx(20.1) and icpt == pytest.approx(-91.5)
+
+
+def test_report_replaces_a_runs_fits_rather_than_adding_to_them(tmp_path):
+    db = tmp_path / "lab.db"
+    store_run(db, lambda p, f: 0.02 * (p + 90.0), frequencies=FREQS)
+    for _ in range(3):
+        assert cli("report", "1", "--db", str(db)).returncode == 0
+    assert sqlite3.connect(db).execute("SELECT COUNT(*) FROM fits").fetchone()[0] == 3
+
+
+def test_points_done_is_kept_by_the_database(tmp_path):
+    db = tmp_path / "lab.db"
+    store_run(db, lambda p, f: 0.02 * (p + 90.0))
+    store_run(db, lambda p, f: 0.02 * (p + 90.0), levels=[-40, -30])
+    store = Store(db)
+    counts = {r["id"]: r["points_done"] for r in store.runs()}
+    truth = dict(store.conn.execute("SELECT run_id, COUNT(*) FROM points GROUP BY run_id").fetchall())
+    assert counts == truth == {1: 41, 2: 2}
+    store.conn.execute("DELETE FROM points WHERE run_id = 2 AND idx = 0")
+    assert {r["id"]: r["points_done"] for r in store.runs()} == {1: 41, 2: 1}
+
+
+def test_a_version_1_file_is_migrated_in_place(tmp_path):
+    db = tmp_path / "old.db"
+    store_run(db, lambda p, f: 0.02 * (p + 90.0))
+    conn = sqlite3.connect(db)
+    conn.executescript("DROP VIEW v_points; DROP VIEW v_fits; DROP TRIGGER points_counted; "
+                       "DROP TRIGGER points_uncounted; DROP TABLE run_counts; DROP TABLE fits; "
+                       "UPDATE meta SET value = '1' WHERE key = 'schema_version';")
+    conn.close()
+    store = Store(db, create=False)
+    assert store.conn.execute("SELECT value FROM meta").fetchone()[0] == str(SCHEMA_VERSION)
+    assert store.runs()[0]["points_done"] == 41
+    assert store.conn.execute("SELECT COUNT(*) FROM v_points").fetchone()[0] == 41
+
+
+def test_a_sqlite_file_that_is_not_ours_is_refused_and_left_alone(tmp_path):
+    other = tmp_path / "other.db"
+    sqlite3.connect(other).executescript("CREATE TABLE t (x); INSERT INTO t VALUES (1);")
+    res = cli("report", "1", "--db", str(other))
+    assert res.returncode == 2 and "not a nightbench database" in res.stderr and "Traceback" not in res.stderr
+    tables = sqlite3.connect(other).execute("SELECT name FROM sqlite_master").fetchall()
+    assert tables == [("t",)]
+
+
+def _doc_blocks(lang: str) -> list[str]:
+    return re.findall(rf"```{lang}\n(.*?)```", DOC.read_text(), flags=re.S)
+
+
+def test_every_worked_query_in_the_docs_runs(tmp_path):
+    db = tmp_path / "lab.db"
+    _batch(db)
+    conn = sqlite3.connect(db)
+    queries = [q for block in _doc_blocks("sql") for q in block.split(";") if q.strip()]
+    assert len(queries) >= 4
+    for query in queries:
+        assert conn.execute(query).fetchall(), f"no rows from the documented query:\n{query}"
+    commands = [line for block in _doc_blocks("sh") for line in block.splitlines()
+                if line.startswith("sqlite-utils ")]
+    assert len(commands) >= 2
+    tool = Path(sys.executable).with_name("sqlite-utils")
+    for line in commands:
+        argv = [str(db) if a == "lab.db" else a for a in shlex.split(line)]
+        res = subprocess.run([str(tool), *argv[1:]], capture_output=True, text=True, timeout=60)
+        assert res.returncode == 0 and len(res.stdout.splitlines()) >= 2, (line, res.stderr)

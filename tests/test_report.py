@@ -1,0 +1,180 @@
+"""`nightbench report` on the simulated bench: numbers, plots, summary, comparison, exports.
+
+One wide sweep is run once for the module (a real simulator process, pyvisa-py over TCP, the
+CLI in a child process). The reference is the simulator's own noiseless law
+(`BenchModel.truth_v`) at the same levels, analysed by the same code: the report must agree
+with it, whatever the simulator's physics is (ripple, floor, compression).
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import sqlite3
+from pathlib import Path
+
+import numpy as np
+import pytest
+import yaml
+from matplotlib import image
+
+from runner.analysis import analyse_group
+from runner.simproc import SimProcess
+from simulators.physics import BenchConfig, BenchModel
+from tests.conftest import cli, plan_dict, store_run
+
+FREQS = [100e6, 900e6]
+FIT = [-60.0, -20.0]
+
+
+@pytest.fixture(scope="module")
+def measured(tmp_path_factory):
+    """A completed run on the simulated bench, wide enough to reach both ends of the range."""
+    tmp = tmp_path_factory.mktemp("report")
+    truth = BenchModel(BenchConfig())
+    with SimProcess() as sim:
+        plan = plan_dict(sim.resources,
+                         path={"table": [[f, truth.config.path.loss(f)] for f in FREQS]},
+                         sweep={"frequency_hz": FREQS, "power_dbm": {"start": -90, "stop": 0, "step": 2}},
+                         analysis={"fit_dbm": FIT, "error_limit_db": 1.0, "source_level_accuracy_db": 0.5,
+                                   "meter_gain_accuracy_pct": 0.01})
+        plan_file = tmp / "plan.yaml"
+        plan_file.write_text(yaml.safe_dump(plan, sort_keys=False))
+        db = tmp / "run.db"
+        res = cli("run", str(plan_file), "--db", str(db))
+    assert res.returncode == 0, res.stderr
+    conn = sqlite3.connect(db)
+    conn.row_factory = sqlite3.Row
+    stored = [dict(r) for r in conn.execute("SELECT * FROM v_fits WHERE run_id = 1 ORDER BY frequency_hz")]
+    conn.close()
+    return {"db": db, "tmp": tmp, "truth": truth, "fits_after_run": stored}
+
+
+def _report(db: Path, *runs: str) -> dict:
+    res = cli("report", *runs, "--db", str(db), "--json")
+    assert res.returncode == 0, res.stderr
+    return json.loads(res.stdout)
+
+
+def test_report_agrees_with_the_simulators_noiseless_law_analysed_the_same_way(measured):
+    report = _report(measured["db"], "1")
+    truth = measured["truth"]
+    assert [g["frequency_hz"] for g in report["groups"]] == FREQS
+    for group, detail in zip(report["groups"], report["details"]):
+        f = group["frequency_hz"]
+        levels = [c["power_dbm"] for c in detail["curve"] if c["error_db"] is not None]
+        ideal = [{"power_dbm": p, "value_v": truth.truth_v(p, f), "settled": 1, "overload": 0} for p in levels]
+        ref = analyse_group(f, ideal, tuple(FIT), 1.0)
+        # issue 6 acceptance: slope within 0.5 %, intercept within 0.3 dB, range ends within 1 dB
+        assert group["slope_mv_per_db"] == pytest.approx(ref.slope_mv_per_db, rel=0.005)
+        assert group["intercept_dbm"] == pytest.approx(ref.intercept_dbm, abs=0.3)
+        assert ref.range_low_dbm is not None and ref.range_high_dbm is not None
+        assert group["range_low_dbm"] == pytest.approx(ref.range_low_dbm, abs=1.0)
+        assert group["range_high_dbm"] == pytest.approx(ref.range_high_dbm, abs=1.0)
+        # the law's range ends are real crossings inside the sweep, so the check above tests interpolation
+        assert -90 < ref.range_low_dbm and ref.range_high_dbm < 0
+        assert group["dynamic_range_db"] == pytest.approx(group["range_high_dbm"] - group["range_low_dbm"])
+
+
+def test_uncertainty_in_the_report_includes_the_plans_type_b_terms(measured):
+    report = _report(measured["db"], "1")
+    terms = {t["key"]: t for t in report["analysis"]["uncertainty_terms"]}
+    assert terms["source_level"]["half_width"] == 0.5 and terms["source_level"]["type"] == "B"
+    assert terms["path_loss"]["half_width"] == 0.0
+    assert all(t["what"] for t in terms.values())
+    for group in report["groups"]:
+        # the source's ±0.5 dB alone gives U >= 2 * 0.5/sqrt(3) = 0.577 dB (JCGM 100:2008 4.3.7, 6.2.1)
+        assert group["intercept_u_db"] >= 2 * 0.5 / np.sqrt(3) - 1e-12
+        assert group["intercept_u_db"] < 0.7   # and the Type A part is small on this bench
+
+
+def test_fit_results_are_stored_when_the_run_completes(measured):
+    # read by the fixture right after `run`, before any `report` could have written them
+    rows = measured["fits_after_run"]
+    report = _report(measured["db"], "1")
+    assert len(rows) == len(report["groups"])
+    for row, group in zip(rows, report["groups"]):
+        for key in ("slope_mv_per_db", "intercept_dbm", "intercept_u_db", "dynamic_range_db", "points"):
+            assert row[key] == pytest.approx(group[key]), key
+        assert row["dut_id"] == "T-1" and row["run_state"] == "completed"
+
+
+def _assert_real_plot(path: Path) -> None:
+    """A PNG of a real plot: the PNG signature, a sensible size, and many colours on much of it."""
+    assert path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    pixels = image.imread(path)[:, :, :3]
+    assert pixels.shape[0] > 300 and pixels.shape[1] > 400
+    colours = np.unique((pixels * 255).astype(np.uint8).reshape(-1, 3), axis=0)
+    assert len(colours) > 50
+    not_white = (pixels < 0.95).any(axis=2).mean()
+    assert 0.03 < not_white < 0.9
+
+
+def test_out_writes_plots_summary_and_csv(measured):
+    out = measured["tmp"] / "out"
+    res = cli("report", "1", "--db", str(measured["db"]), "--out", str(out))
+    assert res.returncode == 0, res.stderr
+    assert "slope mV/dB" in res.stdout and "terms:" in res.stdout
+    for name in ("transfer.png", "conformance.png", "slope-intercept.png"):
+        _assert_real_plot(out / name)
+    summary = (out / "summary.md").read_text()
+    assert "![transfer.png](transfer.png)" in summary and "source_level" in summary
+    points = list(csv.DictReader(io.StringIO((out / "points-run1.csv").read_text())))
+    assert len(points) == 2 * 46
+    results = list(csv.DictReader(io.StringIO((out / "results.csv").read_text())))
+    assert [float(r["frequency_hz"]) for r in results] == FREQS
+
+
+def test_json_export_carries_the_plan_and_the_run_metadata(measured):
+    res = cli("export", "1", "--format", "json", "--db", str(measured["db"]))
+    data = json.loads(res.stdout)
+    assert data["plan"]["analysis"]["source_level_accuracy_db"] == 0.5
+    assert yaml.safe_load(data["plan_text"])["name"] == "test-plan"
+    assert data["source_idn"] and data["meter_idn"] and data["started_at"] and data["finished_at"]
+    assert len(data["points"]) == 2 * 46
+    assert {"frequency_hz", "power_dbm", "source_dbm", "value_v", "stdev_v", "samples", "settle_s",
+            "settled"} <= set(data["points"][0])
+
+
+def test_two_runs_side_by_side_give_their_differences(tmp_path):
+    # Two invented boards with known laws: B is 0.5 mV/dB steeper and reaches 0 V 2 dB higher.
+    db = tmp_path / "two.db"
+    store_run(db, lambda p, f: 0.0200 * (p + 90.0), dut_id="BRD-A")
+    store_run(db, lambda p, f: 0.0205 * (p + 88.0), dut_id="BRD-B")
+    cmp = _report(db, "1", "2")
+    assert cmp["run_ids"] == [1, 2] and len(cmp["runs"]) == 2
+    (diff,) = cmp["differences"]
+    assert diff["slope_diff_mv_per_db"] == pytest.approx(0.5)
+    assert diff["intercept_diff_db"] == pytest.approx(2.0)
+    # both ideal lines stay within the limit over the whole sweep: the same range, no difference
+    assert diff["dynamic_range_diff_db"] == pytest.approx(0.0)
+    text = cli("report", "1", "2", "--db", str(db)).stdout
+    assert "BRD-A" in text and "BRD-B" in text and "+0.500" in text
+    res = cli("report", "1", "2", "--db", str(db), "--out", str(tmp_path / "cmp"))
+    assert res.returncode == 0, res.stderr
+    _assert_real_plot(tmp_path / "cmp" / "slope-intercept.png")
+    assert (tmp_path / "cmp" / "points-run2.csv").exists()
+
+
+@pytest.mark.parametrize("args, message", [
+    (["1", "2", "3"], "one run, or two"),
+    (["7"], "there is no run 7"),
+])
+def test_bad_report_arguments_exit_2_and_store_nothing(tmp_path, args, message):
+    db = tmp_path / "one.db"
+    store_run(db, lambda p, f: 0.02 * (p + 90.0))
+    res = cli("report", *args, "--db", str(db))
+    assert res.returncode == 2 and message in res.stderr and "Traceback" not in res.stderr
+    assert sqlite3.connect(db).execute("SELECT COUNT(*) FROM fits").fetchone()[0] == 0
+
+
+def test_out_that_is_a_file_is_refused_before_anything_is_written(tmp_path):
+    db = tmp_path / "one.db"
+    store_run(db, lambda p, f: 0.02 * (p + 90.0))
+    target = tmp_path / "taken"
+    target.write_text("not a folder")
+    res = cli("report", "1", "--db", str(db), "--out", str(target))
+    assert res.returncode == 2 and "must be a directory" in res.stderr and "Traceback" not in res.stderr
+    assert sqlite3.connect(db).execute("SELECT COUNT(*) FROM fits").fetchone()[0] == 0
+    assert target.read_text() == "not a folder"
