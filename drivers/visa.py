@@ -59,7 +59,7 @@ class VisaTransport:
             inst.read_termination = "\n"
             inst.write_termination = "\n"
             if resource.upper().startswith("TCPIP") and resource.upper().endswith("SOCKET"):
-                _set_nodelay(inst)
+                set_nodelay(inst)
             if baud_rate and resource.upper().startswith("ASRL"):
                 inst.baud_rate = baud_rate
         except errors as exc:
@@ -122,14 +122,24 @@ class VisaTransport:
             pass
 
 
-def _set_nodelay(inst: Any) -> None:
-    """Avoid the Nagle + delayed-ACK stall on small back-to-back writes (FIELD-NOTES trap 10)."""
+def set_nodelay(inst: Any, on: bool = True) -> bool:
+    """TCP_NODELAY on a TCPIP SOCKET session (FIELD-NOTES trap 10); True if it could be set.
+    pyvisa-py does not implement VI_ATTR_TCPIP_NODELAY, so its session's socket is set directly."""
+    import socket
+
+    try:
+        link = inst.visalib.sessions[inst.session].interface
+        link.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1 if on else 0)
+        return True
+    except (AttributeError, KeyError, OSError):
+        pass
     from pyvisa import constants
 
     try:
-        inst.set_visa_attribute(constants.VI_ATTR_TCPIP_NODELAY, constants.VI_TRUE)
-    except Exception:  # not every backend exposes it; the joined-message path still works
-        pass
+        inst.set_visa_attribute(constants.VI_ATTR_TCPIP_NODELAY, constants.VI_TRUE if on else constants.VI_FALSE)
+        return True
+    except Exception:  # not every backend has it; joined messages avoid the stall anyway
+        return False
 
 
 def _describe(exc: BaseException) -> str:
