@@ -198,9 +198,17 @@ class Sweep(_Strict):
 
 
 class Settle(_Strict):
+    """How a point is judged settled (runner/settle.py; docs/settling.md)."""
+
     tolerance_v: Positive
     timeout_s: Positive
-    min_wait_s: NonNegative = 0.0
+    min_wait_s: NonNegative = 0.0     # never accept sooner after a change (a DUT with a known dead time)
+    max_tau_s: Positive | None = None  # slowest time constant allowed for before one is learned (default timeout_s)
+    level_order: Literal["planned", "fast-edge"] = "planned"   # fast-edge: sweep levels toward the faster edge
+
+    @property
+    def prior_tau_s(self) -> float:
+        return self.max_tau_s if self.max_tau_s is not None else self.timeout_s
 
 
 class Measure(_Strict):
