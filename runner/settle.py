@@ -7,7 +7,7 @@ fits that model to every reading since the change, for each time constant on a f
 how large could the drift of the next `samples` readings still be? It takes the worst case over
 every time constant the data cannot rule out (a profile-likelihood interval) that is also
 plausible from what the run has taught it, adds k standard errors of the fitted amplitude, and
-accepts when that bound is within a share of the tolerance. Nothing is assumed about step size,
+accepts when that bound is within 3/4 of the tolerance. Nothing is assumed about step size,
 direction or noise: fast readings against a long time constant leave slow time constants in the
 interval, and those keep the bound high until the data or the learned prior excludes them.
 
@@ -32,13 +32,13 @@ DIRECTIONS: tuple[Direction, Direction] = ("rise", "fall")
 GRID_MIN_S = 1e-5          # faster than any reading cadence: such outputs are done before one reading
 GRID_RATIO = 1.04          # 4 % steps in tau: finer than the intervals the data can resolve
 DRIFT_SHARE = 0.75         # accept when the drift bound is within this share of the tolerance
-MIN_READINGS = 3           # two linear parameters plus one reading of evidence
+MIN_READINGS = 2           # A and C; with no residual left, the learned tau interval decides
 DENSE_READINGS = 32        # judge after every reading up to this many, then every n // 32th
 PRIOR_NOISE_DOF = 5        # weight (degrees of freedom) of the noise learned from earlier points
-COMPAT_SCALE = 2.0
+COMPAT_SCALE = 2.0         # interval: rss within 2 k^2 s^2 of the best (~99.9 %: many looks per point)
 ALONE_DOF = 10             # local degrees of freedom needed before any noise has been learned
 LEARN_SPAN = 1.6           # a point teaches its direction's tau only if its interval hi/lo is within this
-LEARN_KEEP = 6             # recent intervals kept per direction (the prior is their union)
+LEARN_KEEP = 7             # recent intervals kept per direction (the prior: medians of their ends)
 NOISE_KEEP = 12            # recent points pooled for the noise prior
 
 # One-sided 99 % quantiles of Student's t for 1..30 degrees of freedom (from memory of the
@@ -188,7 +188,10 @@ class SettleDetector:
         facts = self.learned[direction]
         if not facts:
             return GRID_MIN_S, self.max_tau_s
-        return min(f.tau_lo_s for f in facts), max(f.tau_hi_s for f in facts)
+        # medians of the recent intervals' ends: each end covers the truth at ~99 %, so a median
+        # of several is safe for a constant tau, far tighter than the union, and it follows a
+        # tau that drifts with level, since recent points are the neighbouring levels
+        return (float(np.median([f.tau_lo_s for f in facts])), float(np.median([f.tau_hi_s for f in facts])))
 
     def _noise_prior(self) -> tuple[float, int]:
         dof = sum(d for _, d in self.noise)
