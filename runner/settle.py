@@ -11,8 +11,8 @@ accepts when that bound is within 3/4 of the tolerance. Nothing is assumed about
 direction or noise: fast readings against a long time constant leave slow time constants in the
 interval, and those keep the bound high until the data or the learned prior excludes them.
 
-What it learns across points, per direction of the output (rise, fall): the time constant
-interval of each point whose data pins it down, and the reading noise. Before a direction is
+What it learns across points, per direction of the output (rise, fall): the evidence about tau
+of each point that showed a step (its deviance profile over the grid), and the reading noise. Before a direction is
 learned the only prior is `max_tau_s`: a drift slower than that which the data cannot see is
 not allowed for (no detector can tell a very slow drift from a settled output).
 """
@@ -37,8 +37,8 @@ DENSE_READINGS = 32        # judge after every reading up to this many, then eve
 PRIOR_NOISE_DOF = 5        # weight (degrees of freedom) of the noise learned from earlier points
 COMPAT_SCALE = 2.0         # interval: rss within 2 k^2 s^2 of the best (~99.9 %: many looks per point)
 ALONE_DOF = 10             # local degrees of freedom needed before any noise has been learned
-LEARN_SPAN = 1.6           # a point teaches its direction's tau only if its interval hi/lo is within this
-LEARN_KEEP = 7             # recent intervals kept per direction (the prior: medians of their ends)
+LEARN_KEEP = 7             # recent points whose tau evidence is kept per direction
+NOISE_FLOOR = 1e-3         # noise below this share of the tolerance counts as this much (clean streams)
 NOISE_KEEP = 12            # recent points pooled for the noise prior
 
 # One-sided 99 % quantiles of Student's t for 1..30 degrees of freedom (from memory of the
@@ -47,6 +47,14 @@ _T99 = (31.821, 6.965, 4.541, 3.747, 3.365, 3.143, 2.998, 2.896, 2.821, 2.764, 2
         2.624, 2.602, 2.583, 2.567, 2.552, 2.539, 2.528, 2.518, 2.508, 2.500, 2.492, 2.485, 2.479,
         2.473, 2.467, 2.462, 2.457)
 _Z99 = 2.3263
+
+
+def chi2_999(dof: int) -> float:
+    """99.9 % quantile of chi-square (Wilson-Hilferty); 0 for no degrees of freedom."""
+    if dof < 1:
+        return 0.0
+    a = 2.0 / (9.0 * dof)
+    return dof * (1.0 - a + 3.0902 * math.sqrt(a)) ** 3
 
 
 def t99(dof: float) -> float:
@@ -100,6 +108,7 @@ class SettleDetector:
         top = 4.0 * max_tau_s
         self.grid = GRID_MIN_S * GRID_RATIO ** np.arange(math.ceil(math.log(top / GRID_MIN_S, GRID_RATIO)) + 1)
         self.learned: dict[Direction, deque[Learned]] = {d: deque(maxlen=LEARN_KEEP) for d in DIRECTIONS}
+        self.profiles: dict[Direction, deque[np.ndarray]] = {d: deque(maxlen=LEARN_KEEP) for d in DIRECTIONS}
         self.noise: deque[tuple[float, int]] = deque(maxlen=NOISE_KEEP)   # (rss, dof) per point
         self.polarity = 0          # +1: hints match the output's direction; -1: they are inverted
         self.last: Assessment | None = None
@@ -142,27 +151,27 @@ class SettleDetector:
         return self.last.drift_bound_v <= DRIFT_SHARE * self.tolerance_v
 
     def end(self) -> Learned | None:
-        """The point is done: learn its noise and, if its data pins it down, its time constant."""
+        """The point is done: learn its noise and, if it showed a step, its time constant profile."""
         if self.n < 4:
             return None
         c, rss, sxx = self._fit()
         best = int(np.argmin(rss))
         dof = self.n - 3
+        s0, nu0 = self._noise_prior()
         self.noise.append((float(rss[best]), dof))
-        s2 = float(rss[best]) / dof
-        k = t99(dof)
-        inside = np.flatnonzero(rss <= rss[best] + k * k * s2)
-        lo, hi = int(inside[0]), int(inside[-1])
-        significant = sxx[best] > 0 and abs(c[best]) > k * math.sqrt(s2 / sxx[best])
-        if not significant or hi == len(self.grid) - 1:
-            return None
+        s2 = max((float(rss[best]) + nu0 * s0) / (dof + nu0), (NOISE_FLOOR * self.tolerance_v) ** 2)
+        k = t99(dof + nu0)
+        if not (sxx[best] > 0 and abs(c[best]) > k * math.sqrt(s2 / sxx[best])):
+            return None            # no step to learn from (or too small to tell its direction)
         direction: Direction = "fall" if c[best] > 0 else "rise"
         if self.hint is not None:
-            self.polarity += 1 if self.hint == direction else -1
-            self.polarity = max(-3, min(3, self.polarity))
-        # an interval reaching the grid's bottom is an upper bound: done within the first reading
-        if lo > 0 and self.grid[hi] / self.grid[lo] > LEARN_SPAN:
-            return None
+            self.polarity = max(-3, min(3, self.polarity + (1 if self.hint == direction else -1)))
+        profile = (rss - rss[best]) / s2          # deviance of each tau against the best one
+        self.profiles[direction].append(profile)
+        inside = np.flatnonzero(profile <= k * k)
+        lo, hi = int(inside[0]), int(inside[-1])
+        if hi == len(self.grid) - 1:
+            return None            # the data cannot tell how slow: no interval of its own
         fact = Learned(direction, float(self.grid[best]), float(self.grid[lo]), float(self.grid[hi]))
         self.learned[direction].append(fact)
         return fact
@@ -181,17 +190,24 @@ class SettleDetector:
         return self.tau_s(up), self.tau_s(down)
 
     def prior(self, direction: Direction | None) -> tuple[float, float]:
-        """The time constants the run makes plausible for a direction (None: either)."""
+        """The time constants the run makes plausible for a direction (None: either).
+
+        The recent points' deviance profiles are summed (independent evidence about one tau):
+        if one tau fits them all, the joint interval is far tighter than any one point's. If
+        they disagree (tau changes with level), the union of the recent points' own intervals.
+        """
         if direction is None:
             (a, b), (c, d) = self.prior("rise"), self.prior("fall")
             return min(a, c), max(b, d)
-        facts = self.learned[direction]
+        profiles, facts = self.profiles[direction], self.learned[direction]
+        if profiles:
+            joint = np.sum(profiles, axis=0)
+            if joint.min() <= chi2_999(len(profiles) - 1):
+                inside = np.flatnonzero(joint <= joint.min() + COMPAT_SCALE * _Z99**2)
+                return float(self.grid[inside[0]]), float(self.grid[inside[-1]])
         if not facts:
             return GRID_MIN_S, self.max_tau_s
-        # medians of the recent intervals' ends: each end covers the truth at ~99 %, so a median
-        # of several is safe for a constant tau, far tighter than the union, and it follows a
-        # tau that drifts with level, since recent points are the neighbouring levels
-        return (float(np.median([f.tau_lo_s for f in facts])), float(np.median([f.tau_hi_s for f in facts])))
+        return min(f.tau_lo_s for f in facts), max(f.tau_hi_s for f in facts)
 
     def _noise_prior(self) -> tuple[float, int]:
         dof = sum(d for _, d in self.noise)

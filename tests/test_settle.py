@@ -20,7 +20,7 @@ from hypothesis import strategies as st
 from drivers.errors import InputError
 from runner.order import fast_edge_order, faster_direction, next_level
 from runner.plan import parse_plan
-from runner.settle import SettleDetector, t99
+from runner.settle import SettleDetector, chi2_999, t99
 from runner.sweep import Point
 from simulators.physics import BenchConfig, BenchModel
 from tests.conftest import cli, plan_dict
@@ -96,13 +96,15 @@ def test_synthetic_stream_is_a_first_order_step_response():
     assert minimum_s(b, tau) == pytest.approx(tau * math.log(40))
 
 
-def test_student_t_table_matches_scipy():
+def test_student_t_and_chi_square_quantiles_match_scipy():
     from scipy import stats  # reference library
 
     for dof in range(1, 31):
         assert t99(dof) == pytest.approx(stats.t.ppf(0.99, dof), rel=1e-3), dof
     for dof in (35, 60, 120, 1000):
         assert t99(dof) == pytest.approx(stats.t.ppf(0.99, dof), rel=5e-3), dof
+    for dof in range(1, 40):          # Wilson-Hilferty: within 4 %, and never below the true quantile
+        assert stats.chi2.ppf(0.999, dof) <= chi2_999(dof) <= 1.04 * stats.chi2.ppf(0.999, dof), dof
 
 
 # -- properties on synthetic streams -------------------------------------------------------
@@ -188,6 +190,20 @@ def test_rise_and_fall_are_learned_separately_and_mapped_to_level_steps():
     assert det.tau_s("rise") == pytest.approx(0.004, rel=0.1)
     assert det.tau_s("fall") == pytest.approx(0.040, rel=0.1)
     assert det.level_taus() == (det.tau_s("rise"), det.tau_s("fall"))
+
+
+def test_one_tau_tightens_the_prior_and_a_level_dependent_tau_widens_it():
+    rng = np.random.default_rng(5)
+    steady = SettleDetector(TOL, samples=SAMPLES, max_tau_s=MAX_TAU_S)
+    varying = SettleDetector(TOL, samples=SAMPLES, max_tau_s=MAX_TAU_S)
+    for i in range(6):
+        run_point(steady, -0.02, 0.01, TOL, rng)
+        run_point(varying, -0.02, 0.004 if i % 2 else 0.04, TOL, rng)
+    one = steady.learned["rise"][-1]
+    lo, hi = steady.prior("rise")
+    assert lo <= 0.01 <= hi and hi / lo < one.tau_hi_s / one.tau_lo_s     # joint: tighter than one point
+    lo, hi = varying.prior("rise")
+    assert lo <= 0.004 and hi >= 0.04                                      # both time constants allowed for
 
 
 def test_an_output_that_falls_with_level_inverts_the_mapping():
