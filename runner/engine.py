@@ -13,8 +13,9 @@ from typing import Callable
 
 from drivers.errors import ConnectionLost, InstrumentError, NightbenchError, SafetyError
 from runner.instruments import Bench
+from runner.order import fast_edge_order
 from runner.plan import LoadedPlan
-from runner.settle import SettleDetector
+from runner.settle import Direction, SettleDetector
 from runner.signals import StopFlag
 from runner.store import PointResult, Store
 from runner.sweep import Point, expand
@@ -40,6 +41,11 @@ class Engine:
         self.stop = stop
         self.progress = progress
         self.bench: Bench | None = None
+        s = self.plan.settle
+        # one detector per run: it learns time constants and noise from point to point
+        self.detector = SettleDetector(s.tolerance_v, samples=self.plan.measure.samples,
+                                       min_wait_s=s.min_wait_s, max_tau_s=s.prior_tau_s)
+        self.last_dbm: float | None = None   # DUT level of the last point; None while RF is off
 
     # -- safety ---------------------------------------------------------------------------
     def _check_ceiling(self, level_dbm: float, frequency_hz: float) -> None:
@@ -71,11 +77,20 @@ class Engine:
             source.set(output=True)
 
     # -- one point ------------------------------------------------------------------------
+    def step_direction(self, point: Point) -> Direction | None:
+        """The way the output is expected to move: with the level (from RF off: up); None if same."""
+        last = self.last_dbm
+        if last is None or point.power_dbm > last:
+            return "rise"
+        return "fall" if point.power_dbm < last else None
+
     def measure(self, point: Point) -> PointResult:
         assert self.bench is not None
         meter = self.bench.meter
         settle = self.plan.settle
-        detector = SettleDetector(settle.tolerance_v, min_wait_s=settle.min_wait_s)
+        detector = self.detector
+        detector.begin(self.step_direction(point))
+        self.last_dbm = point.power_dbm
         readings: list[tuple[float, float | None, str]] = []
         t0 = time.monotonic()
         settled, overloads = False, 0
@@ -108,6 +123,8 @@ class Engine:
             if math.isinf(value):
                 return PointResult(None, None, 0, settle_s, settle_count, settled, True, readings)
             samples.append(value)
+            detector.record(t, value)
+        detector.end()
         mean = statistics.fmean(samples)
         stdev = statistics.stdev(samples) if len(samples) > 1 else None
         return PointResult(mean, stdev, len(samples), settle_s, settle_count, settled, False, readings)
@@ -127,7 +144,9 @@ class Engine:
                 raise Interrupted(self.stop.reason)
             self.bench = Bench.open(self.plan)
             store.set_identities(run_id, self.bench.source.session.idn, self.bench.meter.session.idn)
-            for point in todo:
+            visit = (fast_edge_order(todo, self.plan.sweep.order, self.detector.level_taus)
+                     if self.plan.settle.level_order == "fast-edge" else todo)
+            for point in visit:
                 self.doing = (f"measuring point {point.index} ({point.frequency_hz / 1e6:g} MHz, "
                               f"{point.power_dbm:g} dBm at the DUT)")
                 result = self._point_with_recovery(point)
@@ -177,6 +196,8 @@ class Engine:
         for name in sorted(names, key=lambda n: n != "source"):
             self.store.event(self.run_id, "reconnect", f"reconnecting the {name}")
             self.bench.reconnect(name, self.stop.is_set)
+            if name == "source":
+                self.last_dbm = None   # RF was switched off: the next step is a rise from nothing
 
     def _make_safe(self) -> str | None:
         """RF off on every way out; a failure to do so is reported, never swallowed."""

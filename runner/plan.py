@@ -6,6 +6,7 @@ typo must not silently change a night's work. Numbers may be written `70e6` (see
 
 from __future__ import annotations
 
+import math
 from pathlib import Path
 from typing import Annotated, Any, Literal, Mapping
 
@@ -269,9 +270,19 @@ class Sweep(_Strict):
 
 
 class Settle(_Strict):
+    """How a point is judged settled (runner/settle.py; docs/settling.md)."""
+
     tolerance_v: Positive
     timeout_s: Positive
-    min_wait_s: NonNegative = 0.0
+    min_wait_s: NonNegative = 0.0     # never accept sooner after a change (a DUT with a known dead time)
+    max_tau_s: Positive | None = None  # slowest time constant allowed for before one is learned
+    level_order: Literal["planned", "fast-edge"] = "planned"   # fast-edge: sweep levels toward the faster edge
+
+    @property
+    def prior_tau_s(self) -> float:
+        """max_tau_s, by default timeout_s / ln(100): an output any slower could not settle a step
+        of 100 tolerances before the timeout, so such a plan would time out anyway."""
+        return self.max_tau_s if self.max_tau_s is not None else self.timeout_s / math.log(100.0)
 
 
 class Measure(_Strict):
