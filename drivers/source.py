@@ -5,7 +5,7 @@ from __future__ import annotations
 import math
 
 from drivers.dialect import SOURCE_COMMANDS
-from drivers.errors import InstrumentError, SafetyError
+from drivers.errors import InstrumentError, SafetyError, ScpiError
 from drivers.scpi import ScpiSession
 
 LEVEL_READBACK_DB = 0.01
@@ -31,9 +31,14 @@ class RfSource:
         self.output_on: bool | None = None
 
     def configure(self) -> None:
-        """Start from a known state: error queue empty, output off."""
-        self.session.drain_errors()
-        self.set(output=False)
+        """Start from a known state: output off FIRST (invariant 2: after a crash the source may
+        still be on), then an empty error queue. Errors left from an earlier session make the
+        first attempt look refused, so it is drained and done again."""
+        try:
+            self.set(output=False)
+        except ScpiError:
+            self.session.drain_errors()
+            self.set(output=False)
 
     def set(self, *, frequency_hz: float | None = None, level_dbm: float | None = None,
             output: bool | None = None) -> None:

@@ -110,15 +110,17 @@ def run(plan: str, db: str | None) -> None:
 @click.option("--db", help=DB_HELP)
 @friendly
 def resume(run_id: int, db: str | None) -> None:
-    """Continue RUN from its first missing point (after an interruption or a fault)."""
-    from drivers.errors import InputError
+    """Continue RUN from its first missing point (after an interruption, a fault or a kill).
+
+    The source is made safe (RF off) before anything else, the plan comes from the run's own
+    snapshot (never the file on disk), and points already stored are never measured again."""
     from runner.runs import snapshot_plan
     from runner.store import Store
 
+    from runner.runs import check_resumable
+
     store = Store(_db(db), create=False)
-    row = store.run(run_id)
-    if row["state"] == "completed":
-        raise InputError(f"run {run_id} is already completed")
+    check_resumable(store, run_id)
     loaded = snapshot_plan(store, run_id)
     store.close()
     _execute(loaded, _db(db), run_id)

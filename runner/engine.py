@@ -11,7 +11,7 @@ import time
 from dataclasses import dataclass
 from typing import Callable
 
-from drivers.errors import ConnectionLost, InstrumentError, NightbenchError, SafetyError
+from drivers.errors import InstrumentError, NightbenchError, SafetyError
 from runner.instruments import Bench
 from runner.order import fast_edge_order
 from runner.plan import LoadedPlan
@@ -23,6 +23,7 @@ from runner.sweep import Point, expand
 OVERLOAD_READINGS = 3  # consecutive overrange readings that end a point as overloaded
 CEILING_SLACK_DB = 1e-6
 POINT_ATTEMPTS = 4     # a point is tried this often across instrument faults before the run fails
+OPEN_BACKOFF_S = (0.3, 1.0, 0.0)   # waits after each failed attempt to open the instruments
 
 
 class Interrupted(Exception):
@@ -142,7 +143,7 @@ class Engine:
         try:
             if self.stop.is_set():
                 raise Interrupted(self.stop.reason)
-            self.bench = Bench.open(self.plan)
+            self.bench = self._open_bench()
             store.set_identities(run_id, self.bench.source.session.idn, self.bench.meter.session.idn)
             visit = (fast_edge_order(todo, self.plan.sweep.order, self.detector.level_taus)
                      if self.plan.settle.level_order == "fast-edge" else todo)
@@ -158,6 +159,9 @@ class Engine:
             state, error = "interrupted", f"stopped by {exc}"
         except NightbenchError as exc:
             state, error = "failed", f"{exc}, while {self.doing}"
+        except BaseException as exc:   # a bug: never recorded as completed; RF still goes off
+            state, error = "failed", f"internal error ({type(exc).__name__}: {exc}), while {self.doing}"
+            raise
         finally:
             rf_error = self._make_safe()
             if rf_error and state == "completed":
@@ -187,6 +191,23 @@ class Engine:
                 self._recover(exc)
         raise AssertionError("unreachable")
 
+    def _open_bench(self) -> Bench:
+        """Open both instruments (the source first, made safe at once); a fault while opening is
+        retried with backoff like one mid-sweep, since an instrument may just be rebooting."""
+        for attempt, wait in enumerate(OPEN_BACKOFF_S, start=1):
+            if self.stop.is_set():
+                raise Interrupted(self.stop.reason)
+            try:
+                return Bench.open(self.plan)
+            except SafetyError:
+                raise
+            except InstrumentError as exc:
+                if attempt == len(OPEN_BACKOFF_S):
+                    raise
+                self.store.event(self.run_id, "fault", f"opening, attempt {attempt}: {exc}")
+                self.stop.wait(wait)
+        raise AssertionError("unreachable")
+
     def _recover(self, exc: InstrumentError) -> None:
         """A NEW link to the instrument that failed (a lost link, a stale or garbled reply, a
         refused setting all leave its state in doubt); the source is made safe first."""
@@ -200,7 +221,8 @@ class Engine:
                 self.last_dbm = None   # RF was switched off: the next step is a rise from nothing
 
     def _make_safe(self) -> str | None:
-        """RF off on every way out; a failure to do so is reported, never swallowed."""
+        """RF off on every way out; if the link is in doubt, a new one is opened to do it (the
+        source's configure() switches RF off first). A failure is reported, never swallowed."""
         if self.bench is None:
             return None
         source = self.bench.source
@@ -208,9 +230,10 @@ class Engine:
             source.session.transport.flush_input()
             source.rf_off()
             return None
-        except ConnectionLost:
+        except InstrumentError as first:
+            self.store.event(self.run_id, "fault", f"switching RF off: {first}")
             try:
-                self.bench.reconnect("source", lambda: False)   # configure() switches RF off
+                self.bench.reconnect("source", lambda: False)
                 return None
             except NightbenchError as exc:
                 return f"could not switch RF off: {exc}"

@@ -370,6 +370,14 @@ def parse_plan(text: str, file: str, *, base_dir: Path | None = None,
         plan = Plan.model_validate(data)
     except ValidationError as exc:
         errors = exc.errors()
+        # A union (a list of values, or a {start, stop, step} span) reports each branch; the
+        # branch whose shape the input did not have only says "should be a list": drop those
+        # when the other branch has something to say about the same key.
+        shape = {"list_type", "model_type", "model_attributes_type", "dict_type", "tuple_type"}
+        located = [(_key_path(tuple(e["loc"])), e) for e in errors]
+        errors = [e for p, e in located
+                  if e.get("type") not in shape
+                  or not any(q[:len(p)] == p and o.get("type") not in shape for q, o in located if o is not e)]
         problems = []
         for err in errors:
             path = _key_path(tuple(err["loc"]))

@@ -24,6 +24,42 @@ def snapshot_plan(store: Store, run_id: int) -> LoadedPlan:
     return parse_plan(row["plan_text"], f"run {run_id} plan snapshot", files=store.run_files(run_id))
 
 
+def owner_alive(row: object) -> bool:
+    """Whether the process recorded as running a run is still alive (on this host)."""
+    import os
+    import socket
+
+    pid, host = row["pid"], row["host"]  # type: ignore[index]
+    if not pid:
+        return False
+    if host and host != socket.gethostname():
+        return True   # cannot tell from here: assume it is
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return pid != os.getpid()
+
+
+def check_resumable(store: Store, run_id: int) -> None:
+    """Refuse (InputError) a run that is completed, or still running in a live process, or whose
+    snapshot no longer describes the points it has."""
+    from drivers.errors import InputError
+
+    row = store.run(run_id)
+    if row["state"] == "completed":
+        raise InputError(f"run {run_id} is already completed")
+    if row["state"] == "running" and owner_alive(row):
+        raise InputError(f"run {run_id} is still running (process {row['pid']} on {row['host']})")
+    loaded = snapshot_plan(store, run_id)
+    expected = len(expand(loaded.plan))
+    if expected != row["points_total"]:
+        raise InputError(f"run {run_id}: its plan snapshot expands to {expected} points, "
+                         f"but the run was created with {row['points_total']}; refusing to resume")
+
+
 def execute(loaded: LoadedPlan, store: Store, run_id: int, stop: StopFlag) -> tuple[str, str | None]:
     """Run the missing points of a run in the foreground, with a progress bar on a terminal."""
     with progress_printer(loaded.plan.name, run_id) as progress:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import itertools
+import math
 from dataclasses import dataclass
 
 from runner.plan import Plan
@@ -13,7 +14,16 @@ class Point:
     index: int
     frequency_hz: float
     power_dbm: float      # at the DUT input
-    source_dbm: float     # what the source is set to: DUT level plus path loss
+    source_dbm: float     # what the source is set to: DUT level plus path loss, on the grid below
+
+LEVEL_STEP_DB = 0.001     # the source level is commanded with three decimals
+
+
+def source_level(power_dbm: float, loss_db: float) -> float:
+    """DUT level plus loss, rounded DOWN to the commanded resolution: rounding to nearest could
+    put up to half a step more than asked on the DUT, and above the ceiling at the top level."""
+    steps = math.floor((power_dbm + loss_db) / LEVEL_STEP_DB + 1e-6)
+    return round(steps * LEVEL_STEP_DB, 3)
 
 
 def expand(plan: Plan) -> list[Point]:
@@ -24,5 +34,5 @@ def expand(plan: Plan) -> list[Point]:
     for index, combo in enumerate(itertools.product(*axes)):
         values = dict(zip(order, combo))
         f, p = values["frequency_hz"], values["power_dbm"]
-        points.append(Point(index, f, p, round(p + plan.path.loss(f), 6)))
+        points.append(Point(index, f, p, source_level(p, plan.path.loss(f))))
     return points
