@@ -16,23 +16,37 @@ from runner.simproc import SimProcess
 DATA = Path(__file__).parent / "data"
 
 
+def source_log(path: Path) -> list[dict[str, Any]]:
+    """The simulator's log of source state changes (one JSON object per change)."""
+    return [json.loads(line) for line in path.read_text().splitlines() if line.strip()]
+
+
+def assert_never_above(path: Path, ceiling_dbm: float) -> None:
+    """Invariant 1 from outside: the true DUT-plane level the simulator saw, whenever RF was on."""
+    levels = [e["dut_dbm"] for e in source_log(path) if e["output"] and e["dut_dbm"] is not None]
+    assert not levels or max(levels) <= ceiling_dbm + 1e-6, f"DUT saw {max(levels)} dBm > {ceiling_dbm}"
+
+
 class RunningBench:
     def __init__(self, proc: SimProcess, log: Path) -> None:
         self.proc = proc
         self.resources = proc.resources
         self.log = log
+        self.ceiling_dbm = 0.0   # plan_dict's limits.dut_max_dbm; a test with another sets this
 
     def events(self) -> list[dict[str, Any]]:
-        """The simulator's log of source state changes (one JSON object per change)."""
-        return [json.loads(line) for line in self.log.read_text().splitlines() if line.strip()]
+        return source_log(self.log)
 
 
 @pytest.fixture
 def bench(tmp_path: Path):
-    """A fresh simulated bench (default physics) in a separate process, with an instrument log."""
+    """A fresh simulated bench (default physics) in a separate process, with an instrument log;
+    afterwards the log is checked: the DUT never saw more than the plan's ceiling."""
     log = tmp_path / "source-log.jsonl"
     with SimProcess("--log", str(log)) as proc:
-        yield RunningBench(proc, log)
+        running = RunningBench(proc, log)
+        yield running
+    assert_never_above(log, running.ceiling_dbm)
 
 
 def plan_dict(resources: dict[str, str], **overrides: Any) -> dict[str, Any]:

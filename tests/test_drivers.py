@@ -19,7 +19,7 @@ from runner.signals import StopFlag
 from runner.simproc import SimProcess
 from runner.store import Store
 from simulators.physics import BenchConfig, BenchModel
-from tests.conftest import cli, plan_dict
+from tests.conftest import assert_never_above, cli, plan_dict, source_log
 
 TRUTH = BenchModel(BenchConfig())
 LEVELS = [-60, -50, -40, -30, -20, -10]
@@ -47,10 +47,9 @@ def sim_with(tmp_path: Path, *faults: str) -> SimProcess:
 
 
 def last_output(tmp_path: Path) -> bool:
-    import json
-
-    events = [json.loads(l) for l in (tmp_path / "source.jsonl").read_text().splitlines()]
-    return events[-1]["output"]
+    """What the source was last told about its output; the log is also checked for the ceiling."""
+    assert_never_above(tmp_path / "source.jsonl", 0.0)
+    return source_log(tmp_path / "source.jsonl")[-1]["output"]
 
 
 def assert_points_are_real(rows):
@@ -157,8 +156,8 @@ ALT_METER = {"configure": "CONF:DCV", "set_nplc": "DCV:INT {nplc:g}", "set_range
 def test_dialect_override_completes_against_a_simulator_in_that_dialect(tmp_path):
     with SimProcess("--dialect", "alt", "--log", str(tmp_path / "source.jsonl")) as sim:
         plain = run_plan(tmp_path, sim.resources)
-        # standard SCPI gets no answer from this dialect: a clear failure naming the command
-        assert plain[0] == "failed" and "SYSTem:ERRor?" in plain[1] and "opening the instruments" in plain[1]
+        # standard SCPI is not understood by this dialect: a clear failure naming the command
+        assert plain[0] == "failed" and "OUTPut:STATe" in plain[1] and "opening the instruments" in plain[1]
         instruments = {
             "source": {"driver": "scpi-source", "resource": sim.resources["source"], "commands": ALT_SOURCE},
             "meter": {"driver": "scpi-dmm", "resource": sim.resources["meter"], "nplc": 0.1, "commands": ALT_METER},
