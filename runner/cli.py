@@ -228,3 +228,105 @@ def demo(db: str | None) -> None:
     from runner.demo import run_demo
 
     sys.exit(run_demo(_db(db)))
+
+
+# -- the overnight service (docs/service.md) -------------------------------------------------
+
+@main.command()
+@click.argument("plan", type=click.Path(dir_okay=True))
+@click.option("--at", "when", metavar="WHEN",
+              help="earliest start: ISO 8601 local date-time (2026-03-04T22:30), or HH:MM = the next such time")
+@click.option("--db", help=DB_HELP)
+@friendly
+def submit(plan: str, when: str | None, db: str | None) -> None:
+    """Queue PLAN for `serve`: validated now, stored with the files it refers to, so later edits
+    of the files do not change the job."""
+    from runner.plan import load_plan
+    from runner.queue import JobQueue
+    from runner.store import Store
+    from runner.when import parse_when
+
+    not_before = parse_when(when) if when else None
+    loaded = load_plan(plan)   # bad input stops here: nothing written
+    job_id, shown = JobQueue(Store(_db(db))).submit(loaded, not_before)
+    click.echo(f"job {job_id} queued: plan '{loaded.plan.name}', not before {shown}")
+
+
+@main.command(name="queue")
+@click.option("--db", help=DB_HELP)
+@click.option("--json", "as_json", is_flag=True, help="machine-readable list")
+@friendly
+def queue_cmd(db: str | None, as_json: bool) -> None:
+    """List jobs (and whether a service is serving this database)."""
+    from runner.queue import JobQueue
+    from runner.store import Store
+
+    queue = JobQueue(Store(_db(db)))
+    rows = queue.jobs()
+    if as_json:
+        click.echo(json.dumps(rows, indent=1))
+        return
+    status = queue.service_status()
+    if status is None:
+        click.echo("service: never started on this database")
+    else:
+        where = f"pid {status['pid']} on {status['host']}, heartbeat {status['heartbeat_at']}"
+        click.echo(f"service: {'serving' if status['alive'] else 'not running'} ({where})")
+    if not rows:
+        click.echo("no jobs yet")
+    for r in rows:
+        run = f"run {r['run_id']}" if r["run_id"] else "-"
+        click.echo(f"{r['id']:5d}  {r['name']:<28} {r['state']:<12} {r['not_before']:<26} {run:<10} "
+                   f"{r['points_done']:>6}/{r['points_total']:<6}{'  ' + r['error'] if r['error'] else ''}")
+
+
+@main.command()
+@click.argument("job_id", metavar="JOB", type=int)
+@click.option("--db", help=DB_HELP)
+@click.option("--wait", "wait_s", type=click.FloatRange(0, 3600), default=15.0, show_default=True,
+              help="seconds to wait for a running job to stop")
+@friendly
+def cancel(job_id: int, db: str | None, wait_s: float) -> None:
+    """Remove a waiting JOB from the queue, or stop a running one safely (after the current
+    reading, RF off; its run stays interrupted and `resume` can continue it)."""
+    import time
+
+    from runner.queue import JobQueue
+    from runner.store import Store
+
+    queue = JobQueue(Store(_db(db), create=False))
+    if queue.cancel(job_id) == "cancelled":
+        run_id = queue.job(job_id).run_id
+        click.echo(f"job {job_id} cancelled: it will not run"
+                   + (f" again (run {run_id} stays interrupted; `nightbench resume {run_id}` continues it)"
+                      if run_id else ""))
+        return
+    status = queue.service_status()
+    if not (status and status["alive"]):
+        click.echo(f"job {job_id} will be cancelled: no service is running; the next `nightbench serve` "
+                   "switches its source off first and leaves its run interrupted")
+        return
+    end = time.monotonic() + wait_s
+    while (job := queue.job(job_id)).state == "running" and time.monotonic() < end:
+        time.sleep(0.1)
+    if job.state == "running":
+        _fail(f"job {job_id} asked to stop; the service has not confirmed within {wait_s:g} s", 1)
+    click.echo(f"job {job_id} {job.state}" + (f" (run {job.run_id} interrupted, RF off)"
+                                              if job.state == "cancelled" else " before the cancel took effect"))
+
+
+@main.command()
+@click.option("--db", help=DB_HELP)
+@click.option("--poll", "poll_s", type=click.FloatRange(0.05, 60), default=1.0, show_default=True,
+              help="seconds between looks at the queue when idle")
+@friendly
+def serve(db: str | None, poll_s: float) -> None:
+    """Run due jobs one at a time until SIGTERM/SIGINT; one service per database.
+
+    On start, runs left running by a process that is gone get RF off first, then resume. A
+    signal stops the run after the current reading, RF off, and exits 0; exit 2 if another
+    service already serves the database.
+    """
+    from runner.service import Service
+
+    sys.exit(Service(_db(db), poll_s=poll_s).serve())

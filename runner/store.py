@@ -18,7 +18,7 @@ from typing import Any
 
 from drivers.errors import InputError
 
-SCHEMA_VERSION = 2   # 2: fits, run_counts, and the v_points / v_fits views (docs/database.md)
+SCHEMA_VERSION = 3   # 2: fits, run_counts, and the v_points / v_fits views; 3: jobs, service (docs/database.md)
 STATES = ("queued", "running", "completed", "interrupted", "failed")
 
 SCHEMA = """
@@ -114,6 +114,31 @@ END;
 CREATE TRIGGER IF NOT EXISTS points_uncounted AFTER DELETE ON points BEGIN
     UPDATE run_counts SET points_done = points_done - 1 WHERE run_id = OLD.run_id;
 END;
+-- the overnight queue (runner/queue.py): a job is a plan snapshot waiting for `serve`, then its run
+CREATE TABLE IF NOT EXISTS jobs (
+    id INTEGER PRIMARY KEY,
+    plan_name TEXT NOT NULL,
+    plan_file TEXT,
+    plan_text TEXT NOT NULL,
+    files_json TEXT NOT NULL,
+    points_total INTEGER NOT NULL,
+    not_before TEXT NOT NULL,
+    not_before_ts REAL NOT NULL,
+    submitted_at TEXT NOT NULL,
+    state TEXT NOT NULL CHECK (state IN ('queued','running','completed','interrupted','failed','cancelled')),
+    run_id INTEGER REFERENCES runs(id),
+    cancel_requested INTEGER NOT NULL DEFAULT 0,
+    error TEXT
+);
+-- the one `serve` of this database and its heartbeat (runner/service.py)
+CREATE TABLE IF NOT EXISTS service (
+    id INTEGER PRIMARY KEY CHECK (id = 1),
+    pid INTEGER NOT NULL,
+    host TEXT NOT NULL,
+    state TEXT NOT NULL,
+    started_at TEXT NOT NULL,
+    heartbeat_at TEXT NOT NULL
+);
 """
 
 # run on every migration: the counts of a file written before run_counts existed
@@ -299,6 +324,8 @@ class Store:
 
     def _transaction(self) -> "_Tx":
         return _Tx(self.conn)
+
+    transaction = _transaction   # for the modules that keep their own tables here (runner/queue.py)
 
 
 class _Tx:

@@ -1,0 +1,185 @@
+"""`nightbench serve`: run due jobs one at a time until told to stop; one service per database.
+
+On start it takes the database's service lock (a second `serve` refuses, exit 2), makes the
+source of every abandoned run safe and queues those runs again (runner/recovery.py), then runs
+jobs in order: resumptions first, then by not-before, then by submission. SIGTERM/SIGINT stop the
+run after the reading in progress, with RF off, leaving it `interrupted` for the next `serve` to
+resume; the service then exits 0 (a signal is how a service is told to stop). Each event is one
+line on stderr (runner/eventlog.py).
+"""
+
+from __future__ import annotations
+
+import fcntl
+import os
+import signal
+import socket
+import sqlite3
+import threading
+import time
+from types import FrameType
+from typing import Any
+
+from drivers.errors import InputError, NightbenchError
+from runner.eventlog import log
+from runner.queue import Job, JobQueue, points_text
+from runner.signals import StopFlag
+from runner.store import Store
+
+CANCELLED = "cancel"          # the stop reason a `nightbench cancel` gives the engine
+WATCH_POLL_S = 0.2            # how often a running job looks for a cancel
+HEARTBEAT_S = 2.0             # how often the service and its run write their heartbeat
+
+
+class ServiceLock:
+    """An exclusive lock on a file beside the database, held while `serve` runs. The kernel drops
+    it when the process ends in any way (SIGKILL and power loss included), so there is never a
+    stale lock to clean up; the file itself stays (removing it would race with the next taker)."""
+
+    def __init__(self, db: str) -> None:
+        self.db = db
+        self.path = f"{db}.serve-lock"
+        self.fd: int | None = None
+
+    def acquire(self) -> "ServiceLock":
+        try:
+            fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
+        except OSError as exc:
+            raise InputError(f"cannot create the service lock {self.path}: {exc.strerror}", file=self.db) from None
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            holder = os.read(fd, 200).decode(errors="replace").strip() or "another process"
+            os.close(fd)
+            raise InputError(f"another `nightbench serve` ({holder}) is already serving this database; "
+                             "one service per bench, so this one does not start", file=self.db) from None
+        os.ftruncate(fd, 0)
+        os.write(fd, f"pid {os.getpid()} on {socket.gethostname()}\n".encode())
+        self.fd = fd
+        return self
+
+    def release(self) -> None:
+        if self.fd is not None:
+            os.close(self.fd)
+            self.fd = None
+
+
+class Watch(threading.Thread):
+    """Beside a running job: turns a `cancel` into the engine's stop flag (the engine then stops
+    after the current reading, RF off) and keeps the service's and the run's heartbeats fresh.
+    Its own connection, so it never waits on the engine's."""
+
+    def __init__(self, db: str, job_id: int, run_id: int, stop: StopFlag) -> None:
+        super().__init__(name=f"watch-job-{job_id}", daemon=True)
+        self.db, self.job_id, self.run_id, self.stop = db, job_id, run_id, stop
+        self.done = threading.Event()
+
+    def run(self) -> None:
+        store = Store(self.db)
+        queue = JobQueue(store)
+        last_beat = time.monotonic()
+        try:
+            while not self.done.wait(WATCH_POLL_S):
+                try:
+                    if queue.cancel_requested(self.job_id):
+                        self.stop.set(CANCELLED)
+                    if time.monotonic() - last_beat >= HEARTBEAT_S:
+                        queue.heartbeat(self.run_id)
+                        last_beat = time.monotonic()
+                except sqlite3.Error as exc:   # a busy database must not end the watch: try again
+                    log("watch", level="warning", job=self.job_id, error=str(exc))
+        finally:
+            store.close()
+
+    def __enter__(self) -> "Watch":
+        self.start()
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self.done.set()
+        self.join()
+
+
+class Service:
+    def __init__(self, db: str, poll_s: float = 1.0) -> None:
+        self.db = db
+        self.poll_s = poll_s
+        self.stop = StopFlag()
+        self.current: StopFlag | None = None   # the running job's own flag (a cancel stops only it)
+        self._waiting_for: int | None = None
+        self._last_beat = time.monotonic()
+
+    def _on_signal(self, signum: int, frame: FrameType | None) -> None:
+        name = signal.Signals(signum).name
+        self.stop.set(name)
+        if self.current is not None:
+            self.current.set(name)
+
+    def serve(self) -> int:
+        lock = ServiceLock(self.db).acquire()    # before anything is read, written or contacted
+        for sig in (signal.SIGINT, signal.SIGTERM):
+            signal.signal(sig, self._on_signal)
+        store = Store(self.db)
+        queue = JobQueue(store)
+        queue.service_started()
+        log("start", pid=os.getpid(), host=socket.gethostname(), db=os.path.abspath(self.db))
+        try:
+            from runner.recovery import recover
+
+            recover(store, queue, log)
+            while not self.stop.is_set():
+                job = queue.next_due(time.time())
+                if job is None:
+                    self._idle(queue)
+                    continue
+                self._waiting_for = None
+                self._run_job(store, queue, job)
+        finally:
+            queue.service_stopped()
+            store.close()
+            lock.release()
+            log("stop", reason=self.stop.reason or "error")
+        return 0
+
+    def _idle(self, queue: JobQueue) -> None:
+        later = queue.next_later()
+        wait = self.poll_s
+        if later is not None:
+            job, at = later
+            wait = max(0.0, min(wait, at - time.time()))
+            if job.id != self._waiting_for:
+                log("wait", job=job.id, plan=job.plan_name, not_before=job.not_before)
+                self._waiting_for = job.id
+        if time.monotonic() - self._last_beat >= HEARTBEAT_S:
+            queue.heartbeat()
+            self._last_beat = time.monotonic()
+        self.stop.wait(wait)
+
+    def _run_job(self, store: Store, queue: JobQueue, job: Job) -> None:
+        from runner.engine import Engine
+        from runner.runs import new_run, snapshot_plan, store_fits
+
+        try:
+            loaded = snapshot_plan(store, job.run_id) if job.run_id else queue.plan(job)
+            run_id = job.run_id or new_run(store, loaded)
+        except NightbenchError as exc:   # a snapshot this version cannot read: the job fails, the night goes on
+            queue.finish(job.id, "failed", str(exc))
+            log("job-end", level="error", job=job.id, state="failed", error=str(exc))
+            return
+        queue.start(job.id, run_id)
+        log("job-resume" if job.run_id else "job-start", job=job.id, run=run_id, plan=job.plan_name,
+            points=points_text(store, run_id))
+        run_stop = StopFlag()
+        self.current = run_stop
+        if self.stop.is_set():   # a signal that came before `current` was set
+            run_stop.set(self.stop.reason or "stop")
+        with Watch(self.db, job.id, run_id, run_stop):
+            state, error = Engine(loaded, store, run_id, run_stop).run()
+        self.current = None
+        if state == "completed":
+            store_fits(store, run_id)
+        if state == "interrupted" and run_stop.reason == CANCELLED:
+            state, error = "cancelled", f"cancelled while running; run {run_id} stays interrupted"
+        queue.finish(job.id, state, error)
+        log("job-end", level="error" if state == "failed" else "info", job=job.id, run=run_id, state=state,
+            points=points_text(store, run_id), error=error)
