@@ -35,13 +35,7 @@ def open_source(spec: SourceSpec) -> RfSource:
     """Open the source and make it safe before anything else (RF off, invariant 2)."""
     commands = merged(SOURCE_COMMANDS, spec.commands)
     session = _session(spec, "source", error_query=commands["error_query"])
-    source = RfSource(session, min_dbm=spec.min_dbm, max_dbm=spec.max_dbm, commands=commands)
-    try:
-        source.configure()
-    except NightbenchError:
-        session.transport.close()
-        raise
-    return source
+    return _configured(RfSource(session, min_dbm=spec.min_dbm, max_dbm=spec.max_dbm, commands=commands))
 
 
 def open_meter(spec: Any) -> ScpiDmm | SerialAdc:
@@ -53,12 +47,17 @@ def open_meter(spec: Any) -> ScpiDmm | SerialAdc:
         commands = merged(METER_COMMANDS, spec.commands)
         session = _session(spec, "meter", error_query=commands["error_query"])
         meter = ScpiDmm(session, nplc=spec.nplc, range_v=spec.range_v, commands=commands)
+    return _configured(meter)
+
+
+def _configured(role: Any) -> Any:
+    """Configure a freshly opened role; its link is closed if that fails."""
     try:
-        meter.configure()
+        role.configure()
     except NightbenchError:
-        session.transport.close()
+        role.session.transport.close()
         raise
-    return meter
+    return role
 
 
 @dataclass
