@@ -125,22 +125,22 @@ def build_path(spec: "PathSpec", files: PlanFiles) -> PathModel:
     if spec.elements is not None:
         return Chain(tuple(_element(e, files, ("path", "elements", i), f"element {i + 1}")
                            for i, e in enumerate(spec.elements)))
-    return _element(spec, files, ("path",), "path")
+    return _element(spec, files, ("path",), "")
 
 
 def _element(spec: "PathElementSpec", files: PlanFiles, key: Key, default_label: str) -> PathModel:
     if spec.loss_db is not None:
-        return Constant(spec.name or f"{default_label} loss_db", spec.loss_db, f"{spec.loss_db:g} dB")
+        return Constant(spec.name or f"{default_label} loss_db".strip(), spec.loss_db, f"{spec.loss_db:g} dB")
     if spec.coupler is not None:
         c = spec.coupler
         arm_loss = c.coupling_db if c.arm == "coupled" else mainline_loss_db(c.coupling_db)
         loss = arm_loss + c.excess_loss_db
         extra = f" + {c.excess_loss_db:g} dB excess" if c.excess_loss_db else ""
-        return Constant(spec.name or f"{default_label} coupler", loss,
+        return Constant(spec.name or f"{default_label} coupler".strip(), loss,
                         f"{c.coupling_db:g} dB coupler, {c.arm} arm{extra} = {loss:.4f} dB")
     if spec.table is not None:
         freqs, losses = _sorted_table(spec.table, key + ("table",))
-        return Interpolated(spec.name or f"{default_label} table", freqs, losses, spec.extrapolate,
+        return Interpolated(spec.name or f"{default_label} table".strip(), freqs, losses, spec.extrapolate,
                             key + ("table",), "table")
     assert spec.touchstone is not None
     from runner.touchstone import parse_touchstone

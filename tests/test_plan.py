@@ -150,3 +150,9 @@ def _yaml(plan):
     import yaml
 
     return yaml.safe_dump(plan, sort_keys=False)
+
+
+@pytest.mark.parametrize("name", sorted(p.name for p in (REPO / "plans").glob("*.yaml")))
+def test_every_shipped_plan_passes_check(name):
+    res = cli("check", str(REPO / "plans" / name))
+    assert res.returncode == 0, res.stderr
