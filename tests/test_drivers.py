@@ -223,3 +223,15 @@ def test_points_and_readings_stay_consistent_after_faults(tmp_path):
     orphans = conn.execute("SELECT COUNT(*) FROM readings r LEFT JOIN points p ON p.run_id=r.run_id AND p.idx=r.idx "
                            "WHERE p.idx IS NULL").fetchone()[0]
     assert orphans == 0, "no raw readings of a point that was not stored"
+
+
+def test_a_plan_can_name_the_visa_library(tmp_path):
+    with sim_with(tmp_path) as sim:
+        plan = plan_dict(sim.resources)
+        plan["instruments"]["source"]["visa_library"] = "@py"     # explicit pyvisa-py
+        state, error, rows, _ = run_plan(tmp_path, sim.resources, instruments=plan["instruments"])
+        assert state == "completed", error
+        plan["instruments"]["meter"]["visa_library"] = "@no-such-backend"
+        state, error, rows, _ = run_plan(tmp_path, sim.resources, instruments=plan["instruments"])
+    assert state == "failed" and "cannot load the VISA library '@no-such-backend'" in error
+    assert last_output(tmp_path) is False, "the source was opened first and is left safe"
