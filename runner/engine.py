@@ -8,7 +8,6 @@ from __future__ import annotations
 import math
 import statistics
 import time
-from dataclasses import dataclass
 from typing import Callable
 
 from drivers.errors import InstrumentError, NightbenchError, SafetyError

@@ -55,25 +55,19 @@ class _Link(_Strict):
     baud_rate: Annotated[int, Field(gt=0, le=10_000_000)] | None = None
 
 
-def _templates(defaults: dict[str, str]):
-    def check(value: dict[str, str] | None) -> dict[str, str] | None:
-        from drivers.dialect import merged
-
-        merged(defaults, value)
-        return value
-    return check
-
-
 def _source_commands(value: dict[str, str] | None) -> dict[str, str] | None:
-    from drivers.dialect import SOURCE_COMMANDS
+    """Command overrides must name known operations and format with their fields."""
+    from drivers.dialect import SOURCE_COMMANDS, merged
 
-    return _templates(SOURCE_COMMANDS)(value)
+    merged(SOURCE_COMMANDS, value)
+    return value
 
 
 def _meter_commands(value: dict[str, str] | None) -> dict[str, str] | None:
-    from drivers.dialect import METER_COMMANDS
+    from drivers.dialect import METER_COMMANDS, merged
 
-    return _templates(METER_COMMANDS)(value)
+    merged(METER_COMMANDS, value)
+    return value
 
 
 class SourceSpec(_Link):

@@ -6,7 +6,6 @@ import json
 import select
 import subprocess
 import sys
-import time
 from typing import Any
 
 from drivers.errors import InstrumentError
@@ -43,12 +42,3 @@ class SimProcess:
 
     def __exit__(self, *exc: Any) -> None:
         self.stop()
-
-
-def wait_closed(proc: subprocess.Popen[Any], timeout_s: float) -> bool:
-    end = time.monotonic() + timeout_s
-    while time.monotonic() < end:
-        if proc.poll() is not None:
-            return True
-        time.sleep(0.02)
-    return False
