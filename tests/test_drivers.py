@@ -235,3 +235,28 @@ def test_a_plan_can_name_the_visa_library(tmp_path):
         state, error, rows, _ = run_plan(tmp_path, sim.resources, instruments=plan["instruments"])
     assert state == "failed" and "cannot load the VISA library '@no-such-backend'" in error
     assert last_output(tmp_path) is False, "the source was opened first and is left safe"
+
+
+def test_meter_range_from_the_plan_reaches_the_meter(tmp_path):
+    # range_v 0.1: the detector's 0.4-1.6 V at these levels is beyond 120 % of range, so every
+    # point is an overload (SCPI-1999 overrange, 9.9E37), stored flagged and without a value.
+    with sim_with(tmp_path) as sim:
+        plan = plan_dict(sim.resources)
+        plan["instruments"]["meter"]["range_v"] = 0.1
+        state, error, rows, _ = run_plan(tmp_path, sim.resources, instruments=plan["instruments"])
+    assert state == "completed", error
+    assert rows and all(r["overload"] and r["value_v"] is None for r in rows)
+
+
+def test_socket_links_have_tcp_nodelay(inproc_bench):
+    # FIELD-NOTES trap 10: TCP_NODELAY on the session's socket (pyvisa-py ignores the VISA attribute).
+    import socket
+
+    from drivers.transport import open_transport
+
+    link = open_transport(inproc_bench().resources()["source"])
+    try:
+        sock = link._inst.visalib.sessions[link._inst.session].interface
+        assert sock.getsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY) != 0
+    finally:
+        link.close()

@@ -324,3 +324,16 @@ def test_a_point_that_times_out_is_stored_flagged_and_counted(tmp_path, write_pl
     assert len(rows) == 3 and all(r[0] == 0 and r[1] >= 0.05 and r[2] > 0 and r[3] == 4 for r in rows)
     report = yaml.safe_load(cli("report", "1", "--db", str(db), "--json").stdout)
     assert report["groups"][0]["unsettled_points"] == 3
+
+
+def test_min_wait_holds_off_acceptance_even_for_a_flat_stream():
+    # settle.min_wait_s: never accept sooner than this after a change, whatever the readings say.
+    det = SettleDetector(TOL, samples=SAMPLES, max_tau_s=0.01, min_wait_s=0.05)
+    det.begin("rise")
+    accepted_at = None
+    for i in range(200):
+        t = 0.001 * (i + 1)
+        if det.feed(t, 1.0):
+            accepted_at = t
+            break
+    assert accepted_at is not None and accepted_at >= 0.05
