@@ -174,7 +174,11 @@ FIT_COLUMNS = ("frequency_hz", "temperature_c", "slope_mv_per_db", "slope_u_mv_p
 
 
 def now_iso() -> str:
-    return time.strftime("%Y-%m-%dT%H:%M:%S", time.localtime()) + f".{int(time.time() * 1000) % 1000:03d}"
+    """Local time to the millisecond, from ONE clock reading (seconds and milliseconds taken
+    from two readings could straddle a second and come out a second early)."""
+    now = time.time()
+    ms = int(now * 1000) % 1000
+    return time.strftime("%Y-%m-%dT%H:%M:%S", time.localtime(int(now * 1000) // 1000)) + f".{ms:03d}"
 
 
 def default_db_path() -> str:

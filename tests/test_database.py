@@ -123,3 +123,17 @@ def test_every_worked_query_in_the_docs_runs(tmp_path):
         argv = [str(db) if a == "lab.db" else a for a in shlex.split(line)]
         res = subprocess.run([str(tool), *argv[1:]], capture_output=True, text=True, timeout=60)
         assert res.returncode == 0 and len(res.stdout.splitlines()) >= 2, (line, res.stderr)
+
+
+def test_timestamps_come_from_one_clock_reading(monkeypatch):
+    # A time just before a second boundary must not be written with the next reading's
+    # milliseconds under the earlier second (it came out a second early).
+    import time as real_time
+
+    from runner import store
+
+    readings = iter([1_800_000_000.999, 1_800_000_001.003])
+    monkeypatch.setattr(store.time, "time", lambda: next(readings))
+    stamp = store.now_iso()
+    expected = real_time.strftime("%Y-%m-%dT%H:%M:%S", real_time.localtime(1_800_000_000)) + ".999"
+    assert stamp == expected
