@@ -40,6 +40,9 @@ ALONE_DOF = 10             # local degrees of freedom needed before any noise ha
 LEARN_KEEP = 7             # recent points whose tau evidence is kept per direction
 NOISE_FLOOR = 1e-3         # noise below this share of the tolerance counts as this much (clean streams)
 NOISE_KEEP = 12            # recent points pooled for the noise prior
+STEP_Z = 3.9               # a step is real (has a direction) beyond this many standard errors:
+                           # the best of the grid's time constants is picked, and at 2.33 (one
+                           # t test at 99 %) about 9 % of pure-noise points showed a "step"
 
 # One-sided 99 % quantiles of Student's t for 1..30 degrees of freedom (from memory of the
 # standard table; tests/test_settle.py checks them against scipy.stats.t.ppf).
@@ -64,6 +67,14 @@ def t99(dof: float) -> float:
     if dof <= len(_T99):
         return _T99[int(dof) - 1]
     return _Z99 + (_Z99**3 + _Z99) / (4.0 * dof)
+
+
+def step_direction(c: float, se_c: float, dof: float) -> Direction | None:
+    """The direction of a fitted step (C > 0: the output was above its final value, a fall), or
+    None while noise could explain it. Stricter than one t test, since C is the best of a grid."""
+    if not math.isfinite(se_c) or abs(c) <= STEP_Z * t99(dof) / _Z99 * se_c:
+        return None
+    return "fall" if c > 0 else "rise"
 
 
 @dataclass(frozen=True)
@@ -161,9 +172,10 @@ class SettleDetector:
         self.noise.append((float(rss[best]), dof))
         s2 = max((float(rss[best]) + nu0 * s0) / (dof + nu0), (NOISE_FLOOR * self.tolerance_v) ** 2)
         k = t99(dof + nu0)
-        if not (sxx[best] > 0 and abs(c[best]) > k * math.sqrt(s2 / sxx[best])):
+        direction = step_direction(c[best], math.sqrt(s2 / sxx[best]) if sxx[best] > 0 else math.inf,
+                                   dof + nu0)
+        if direction is None:
             return None            # no step to learn from (or too small to tell its direction)
-        direction: Direction = "fall" if c[best] > 0 else "rise"
         if self.hint is not None:
             self.polarity = max(-3, min(3, self.polarity + (1 if self.hint == direction else -1)))
         profile = (rss - rss[best]) / s2          # deviance of each tau against the best one
@@ -204,7 +216,12 @@ class SettleDetector:
             joint = np.sum(profiles, axis=0)
             if joint.min() <= chi2_999(len(profiles) - 1):
                 inside = np.flatnonzero(joint <= joint.min() + COMPAT_SCALE * _Z99**2)
-                return float(self.grid[inside[0]]), float(self.grid[inside[-1]])
+                lo = float(self.grid[inside[0]])
+                if inside[-1] == len(self.grid) - 1:
+                    # the evidence cannot tell how slow: as before anything was learned, max_tau_s
+                    # caps it (weak evidence must never widen the prior it was meant to narrow)
+                    return lo, max(lo, self.max_tau_s)
+                return lo, float(self.grid[inside[-1]])
         if not facts:
             return GRID_MIN_S, self.max_tau_s
         return min(f.tau_lo_s for f in facts), max(f.tau_hi_s for f in facts)
@@ -239,10 +256,8 @@ class SettleDetector:
         k = t99(dof)
         with np.errstate(divide="ignore", invalid="ignore"):
             se_c = np.where(sxx > 0, np.sqrt(s2 / sxx), np.inf)
-        direction: Direction | None = None
-        if abs(c[best]) > k * se_c[best]:
-            direction = "fall" if c[best] > 0 else "rise"
-        elif self.hint is not None and self.polarity != 0:
+        direction = step_direction(c[best], float(se_c[best]), dof)
+        if direction is None and self.hint is not None and self.polarity != 0:
             direction = self.hint if self.polarity > 0 else ("fall" if self.hint == "rise" else "rise")
         compatible = rss <= rss[best] + COMPAT_SCALE * k * k * s2
         lo, hi = self.prior(direction)
