@@ -187,7 +187,12 @@ class Engine:
                 if attempt == POINT_ATTEMPTS:
                     raise
                 self.store.event(self.run_id, "fault", f"point {point.index}, attempt {attempt}: {exc}")
-                self._recover(exc)
+                try:
+                    self._recover(exc)
+                except NightbenchError:
+                    if self.stop.is_set():   # a signal cut the reconnect short: resumable, not failed
+                        raise Interrupted(self.stop.reason) from None
+                    raise
         raise AssertionError("unreachable")
 
     def _open_bench(self) -> Bench:

@@ -184,3 +184,30 @@ def test_faults_during_configuration_and_at_the_end(tmp_path, fault, phase):
         assert state == "failed" and error, "a failed run says why"
         assert source_log(log)[-1]["output"] is False or "could not switch RF off" in error
     assert state == "completed", f"{phase}: {error}"   # every one of these is transient
+
+
+def test_a_signal_during_a_reconnect_interrupts_the_run_instead_of_failing_it(tmp_path, write_plan, db):
+    """The meter's link drops for good; SIGTERM arrives while the engine is reconnecting. The run
+    is `interrupted` (resumable, exit 143 as for any SIGTERM), not `failed`, and RF is off."""
+    log = tmp_path / "source.jsonl"
+    with SimProcess("--log", str(log), "--fault", "drop@meter:after=12,duration_s=-1") as sim:
+        proc = start_run(write_plan(sweep_plan(sim.resources)), db)
+        end = time.monotonic() + 20
+        while True:
+            assert proc.poll() is None, proc.communicate()
+            assert time.monotonic() < end, "no reconnect seen"
+            try:
+                with sqlite3.connect(db, timeout=5) as conn:
+                    if conn.execute("SELECT COUNT(*) FROM events WHERE kind='reconnect'").fetchone()[0]:
+                        break
+            except sqlite3.OperationalError:
+                pass
+            time.sleep(0.02)
+        proc.send_signal(signal.SIGTERM)
+        out, err = proc.communicate(timeout=10)
+    assert proc.returncode == 143, err
+    assert "Traceback" not in err
+    runs = json.loads(cli("runs", "--db", str(db), "--json").stdout)
+    assert runs[0]["state"] == "interrupted"
+    assert source_log(log)[-1]["output"] is False
+    assert_never_above(log, 0.0)
