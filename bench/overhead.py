@@ -25,13 +25,13 @@ import yaml
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from drivers.visa import resource_manager, set_nodelay  # noqa: E402
-from runner.plan import parse_plan  # noqa: E402
-from runner.runs import new_run  # noqa: E402
-from runner.engine import Engine  # noqa: E402
-from runner.signals import StopFlag  # noqa: E402
-from runner.simproc import SimProcess  # noqa: E402
-from runner.store import Store  # noqa: E402
+from nightbench.drivers.visa import resource_manager, set_nodelay  # noqa: E402
+from nightbench.plan.model import parse_plan  # noqa: E402
+from nightbench.runs import new_run  # noqa: E402
+from nightbench.measure.engine import Engine  # noqa: E402
+from nightbench.measure.signals import StopFlag  # noqa: E402
+from nightbench.simproc import SimProcess  # noqa: E402
+from nightbench.store.db import Store  # noqa: E402
 
 ZERO_SETTLING = """
 [source]

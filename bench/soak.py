@@ -23,7 +23,7 @@ import yaml
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from runner.simproc import SimProcess  # noqa: E402
+from nightbench.simproc import SimProcess  # noqa: E402
 
 
 def main() -> int:
@@ -55,7 +55,7 @@ def main() -> int:
             for i in range(args.kills):
                 cmd = ["run", str(plan_path)] if i == 0 else ["resume", "1"]
                 mark = len(log.read_text().splitlines())
-                proc = subprocess.Popen([sys.executable, "-m", "runner", *cmd, "--db", str(db)],
+                proc = subprocess.Popen([sys.executable, "-m", "nightbench", *cmd, "--db", str(db)],
                                         stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
                 time.sleep(rng.uniform(0.2, 1.0))
                 proc.kill()
@@ -67,7 +67,7 @@ def main() -> int:
                 first = log.read_text().splitlines()[mark:mark + 1]
                 if i and first and json.loads(first[0])["output"] is not False:
                     bad_starts += 1
-            done = subprocess.run([sys.executable, "-m", "runner", "resume", "1", "--db", str(db)],
+            done = subprocess.run([sys.executable, "-m", "nightbench", "resume", "1", "--db", str(db)],
                                   capture_output=True, text=True)
             with sqlite3.connect(db) as conn:
                 idx = [r[0] for r in conn.execute("SELECT idx FROM points ORDER BY idx")]

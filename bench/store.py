@@ -27,9 +27,9 @@ import yaml
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from runner.plan import parse_plan  # noqa: E402
-from runner.runs import new_run  # noqa: E402
-from runner.store import Store  # noqa: E402
+from nightbench.plan.model import parse_plan  # noqa: E402
+from nightbench.runs import new_run  # noqa: E402
+from nightbench.store.db import Store  # noqa: E402
 
 FREQS = [round(100e6 * k) for k in range(1, 28)]          # 27 frequencies
 LEVELS = {"start": -95, "stop": 5, "step": 1}               # 101 levels
@@ -104,7 +104,7 @@ def time_cli(args: list[str], repeat: int) -> float:
     times = []
     for _ in range(repeat):
         t0 = time.perf_counter()
-        res = subprocess.run([sys.executable, "-m", "runner", *args], capture_output=True, text=True)
+        res = subprocess.run([sys.executable, "-m", "nightbench", *args], capture_output=True, text=True)
         times.append(time.perf_counter() - t0)
         if res.returncode != 0:
             raise SystemExit(f"{args} failed: {res.stderr}")
@@ -125,7 +125,7 @@ def main() -> None:
     parser.add_argument("--runs", type=int, default=365)
     parser.add_argument("--repeat", type=int, default=7)
     args = parser.parse_args()
-    from runner.report import build_report
+    from nightbench.analysis.report import build_report
 
     with tempfile.TemporaryDirectory(prefix="nightbench-bench-", dir="/tmp") as tmp:
         big, small = Path(tmp) / "year.db", Path(tmp) / "one.db"

@@ -5,9 +5,9 @@ from __future__ import annotations
 import math
 import re
 
-from drivers.dialect import METER_COMMANDS
-from drivers.errors import InstrumentError
-from drivers.scpi import ScpiSession
+from nightbench.drivers.dialect import METER_COMMANDS
+from nightbench.drivers.errors import InstrumentError
+from nightbench.drivers.scpi import ScpiSession
 
 # SCPI-1999 vol. 1, 7.2.1: +9.9E37 is the value an instrument returns for overrange.
 OVERRANGE = 9.9e37

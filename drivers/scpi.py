@@ -12,8 +12,8 @@ from __future__ import annotations
 import time
 from typing import Callable
 
-from drivers.errors import ConnectionLost, InstrumentError, ScpiError
-from drivers.transport import Transport
+from nightbench.drivers.errors import ConnectionLost, InstrumentError, ScpiError
+from nightbench.drivers.transport import Transport
 
 NO_ERROR_CODE = 0
 BACKOFF_S = (0.1, 0.3, 0.7, 1.5)   # waits before each reconnect attempt

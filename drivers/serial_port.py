@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from drivers.errors import ConnectionLost
+from nightbench.drivers.errors import ConnectionLost
 
 PREFIX = "serial:"
 

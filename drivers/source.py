@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import math
 
-from drivers.dialect import SOURCE_COMMANDS
-from drivers.errors import InstrumentError, SafetyError, ScpiError
-from drivers.scpi import ScpiSession
+from nightbench.drivers.dialect import SOURCE_COMMANDS
+from nightbench.drivers.errors import InstrumentError, SafetyError, ScpiError
+from nightbench.drivers.scpi import ScpiSession
 
 LEVEL_READBACK_DB = 0.01
 FREQ_READBACK_REL = 1e-9

@@ -35,7 +35,7 @@ def check_resource(resource: str) -> str | None:
     """
     from pyvisa import rname
 
-    from drivers.serial_port import PREFIX as SERIAL
+    from nightbench.drivers.serial_port import PREFIX as SERIAL
 
     text = resource.strip()
     if not text:
@@ -60,12 +60,12 @@ def check_resource(resource: str) -> str | None:
 def open_transport(resource: str, *, timeout_s: float = 2.0, visa_library: str = "@py",
                    baud_rate: int | None = None) -> Transport:
     """Open the transport that serves `resource` and return it, opened (not yet proven alive)."""
-    from drivers.serial_port import PREFIX as SERIAL
+    from nightbench.drivers.serial_port import PREFIX as SERIAL
 
     if resource.startswith(SERIAL):
-        from drivers.serial_port import SerialTransport
+        from nightbench.drivers.serial_port import SerialTransport
 
         return SerialTransport.open(resource, timeout_s=timeout_s, baud_rate=baud_rate or 9600)
-    from drivers.visa import VisaTransport
+    from nightbench.drivers.visa import VisaTransport
 
     return VisaTransport.open(resource, timeout_s=timeout_s, visa_library=visa_library, baud_rate=baud_rate)

@@ -10,7 +10,7 @@ from __future__ import annotations
 import os
 from typing import Any
 
-from drivers.errors import ConnectionLost, InstrumentError
+from nightbench.drivers.errors import ConnectionLost, InstrumentError
 
 _managers: dict[str, Any] = {}
 

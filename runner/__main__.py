@@ -1,5 +1,5 @@
-"""`python -m runner` is `nightbench` (handy where the console script is not on PATH)."""
+"""`python -m nightbench` is `nightbench` (handy where the console script is not on PATH)."""
 
-from runner.cli import main
+from nightbench.cli import main
 
 main(prog_name="nightbench")

@@ -15,7 +15,7 @@ from typing import Any, Callable
 
 import click
 
-from drivers.errors import NightbenchError
+from nightbench.drivers.errors import NightbenchError
 
 DB_HELP = "database file (default: $NIGHTBENCH_DB, else ./nightbench.db)"
 
@@ -37,7 +37,7 @@ def friendly(fn: Callable[..., Any]) -> Callable[..., Any]:
 
 
 def _db(path: str | None) -> str:
-    from runner.store import default_db_path
+    from nightbench.store.db import default_db_path
 
     return path or default_db_path()
 
@@ -53,8 +53,8 @@ def main() -> None:
 @friendly
 def check(plan: str) -> None:
     """Validate PLAN; touches no instrument and writes nothing."""
-    from runner.plan import load_plan
-    from runner.sweep import expand
+    from nightbench.plan.model import load_plan
+    from nightbench.measure.sweep import expand
 
     loaded = load_plan(plan)
     p = loaded.plan
@@ -75,9 +75,9 @@ def check(plan: str) -> None:
 
 def _execute(loaded: Any, db: str, run_id: int | None) -> None:
     """Run (or resume) and exit with the contract's code."""
-    from runner.runs import execute, new_run
-    from runner.signals import EXIT_CODES, StopFlag
-    from runner.store import Store
+    from nightbench.runs import execute, new_run
+    from nightbench.measure.signals import EXIT_CODES, StopFlag
+    from nightbench.store.db import Store
 
     store = Store(db)
     if run_id is None:
@@ -99,7 +99,7 @@ def _execute(loaded: Any, db: str, run_id: int | None) -> None:
 @friendly
 def run(plan: str, db: str | None) -> None:
     """Run PLAN now, in the foreground."""
-    from runner.plan import load_plan
+    from nightbench.plan.model import load_plan
 
     loaded = load_plan(plan)  # bad input stops here: nothing written, nothing contacted
     _execute(loaded, _db(db), None)
@@ -114,10 +114,10 @@ def resume(run_id: int, db: str | None) -> None:
 
     The source is made safe (RF off) before anything else, the plan comes from the run's own
     snapshot (never the file on disk), and points already stored are never measured again."""
-    from runner.runs import snapshot_plan
-    from runner.store import Store
+    from nightbench.runs import snapshot_plan
+    from nightbench.store.db import Store
 
-    from runner.runs import check_resumable
+    from nightbench.runs import check_resumable
 
     store = Store(_db(db), create=False)
     check_resumable(store, run_id)
@@ -132,7 +132,7 @@ def resume(run_id: int, db: str | None) -> None:
 @friendly
 def runs(db: str | None, as_json: bool) -> None:
     """List runs."""
-    from runner.store import Store
+    from nightbench.store.db import Store
 
     rows = Store(_db(db)).runs()
     if as_json:
@@ -156,14 +156,14 @@ def report(run_ids: tuple[int, ...], db: str | None, as_json: bool, out: str | N
 
     With a second run, RUN_B, both side by side and their differences (B minus A).
     """
-    from drivers.errors import InputError
-    from runner.report import build_report, render_table
-    from runner.store import Store
+    from nightbench.drivers.errors import InputError
+    from nightbench.analysis.report import build_report, render_table
+    from nightbench.store.db import Store
 
     if len(run_ids) > 2:
         raise InputError(f"report takes one run, or two to compare; got {len(run_ids)}")
     if out:
-        from runner.outputs import check_out_dir
+        from nightbench.output.files import check_out_dir
 
         check_out_dir(out)
     store = Store(_db(db), create=False)
@@ -172,7 +172,7 @@ def report(run_ids: tuple[int, ...], db: str | None, as_json: bool, out: str | N
     reports = [build_report(store, run_id) for run_id in run_ids]
     comparison_text = None
     if len(reports) == 2:
-        from runner.compare import compare_reports, render_comparison
+        from nightbench.analysis.compare import compare_reports, render_comparison
 
         cmp = compare_reports(*reports)
         comparison_text = render_comparison(cmp)
@@ -181,7 +181,7 @@ def report(run_ids: tuple[int, ...], db: str | None, as_json: bool, out: str | N
     else:
         click.echo(json.dumps(reports[0], indent=1) if as_json else render_table(reports[0]))
     if out:
-        from runner.outputs import prepare_dir, write_outputs
+        from nightbench.output.files import prepare_dir, write_outputs
 
         files = write_outputs(store, reports, comparison_text, prepare_dir(out))
         click.echo(f"wrote {len(files)} files to {out}: " + ", ".join(f.name for f in files), err=True)
@@ -195,8 +195,8 @@ def report(run_ids: tuple[int, ...], db: str | None, as_json: bool, out: str | N
 @friendly
 def export(run_id: int, fmt: str, db: str | None, output: str | None) -> None:
     """One row per point of RUN, as CSV or JSON."""
-    from runner.export import write_export
-    from runner.store import Store
+    from nightbench.output.export import write_export
+    from nightbench.store.db import Store
 
     store = Store(_db(db), create=False)
     if output:
@@ -215,7 +215,7 @@ def sim(ctx: click.Context) -> None:
     Options: --source-port N, --meter-port N (0 = any free), --config FILE (TOML), --log FILE,
     --fault KIND@INSTRUMENT[:key=value,...] (repeatable), --seed N; `nightbench sim --help` for more.
     """
-    from simulators.server import main as sim_main
+    from nightbench.simulators.server import main as sim_main
 
     sys.exit(sim_main(ctx.args, prog="nightbench sim"))
 
@@ -225,7 +225,7 @@ def sim(ctx: click.Context) -> None:
 @friendly
 def demo(db: str | None) -> None:
     """Start the simulated bench, run the demo plan on it, print the report."""
-    from runner.demo import run_demo
+    from nightbench.demo import run_demo
 
     sys.exit(run_demo(_db(db)))
 
@@ -241,10 +241,10 @@ def demo(db: str | None) -> None:
 def submit(plan: str, when: str | None, db: str | None) -> None:
     """Queue PLAN for `serve`: validated now, stored with the files it refers to, so later edits
     of the files do not change the job."""
-    from runner.plan import load_plan
-    from runner.queue import JobQueue
-    from runner.store import Store
-    from runner.when import parse_when
+    from nightbench.plan.model import load_plan
+    from nightbench.service.queue import JobQueue
+    from nightbench.store.db import Store
+    from nightbench.service.when import parse_when
 
     not_before = parse_when(when) if when else None
     loaded = load_plan(plan)   # bad input stops here: nothing written
@@ -258,8 +258,8 @@ def submit(plan: str, when: str | None, db: str | None) -> None:
 @friendly
 def queue_cmd(db: str | None, as_json: bool) -> None:
     """List jobs (and whether a service is serving this database)."""
-    from runner.queue import JobQueue
-    from runner.store import Store
+    from nightbench.service.queue import JobQueue
+    from nightbench.store.db import Store
 
     queue = JobQueue(Store(_db(db)))
     rows = queue.jobs()
@@ -291,8 +291,8 @@ def cancel(job_id: int, db: str | None, wait_s: float) -> None:
     reading, RF off; its run stays interrupted and `resume` can continue it)."""
     import time
 
-    from runner.queue import JobQueue
-    from runner.store import Store
+    from nightbench.service.queue import JobQueue
+    from nightbench.store.db import Store
 
     queue = JobQueue(Store(_db(db), create=False))
     if queue.cancel(job_id) == "cancelled":
@@ -327,6 +327,6 @@ def serve(db: str | None, poll_s: float) -> None:
     signal stops the run after the current reading, RF off, and exits 0; exit 2 if another
     service already serves the database.
     """
-    from runner.service import Service
+    from nightbench.service.serve import Service
 
     sys.exit(Service(_db(db), poll_s=poll_s).serve())

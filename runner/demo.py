@@ -12,17 +12,17 @@ DEMO_METER = "TCPIP::127.0.0.1::5026::SOCKET"
 
 def demo_plan_text(source: str, meter: str) -> str:
     """The packaged demo plan with its resources pointed at the running simulator."""
-    text = (resources.files("plans") / "demo.yaml").read_text(encoding="utf-8")
+    text = (resources.files("nightbench.plans") / "demo.yaml").read_text(encoding="utf-8")
     return text.replace(DEMO_SOURCE, source).replace(DEMO_METER, meter)
 
 
 def run_demo(db: str) -> int:
-    from runner.plan import parse_plan
-    from runner.report import build_report, render_table
-    from runner.runs import execute, new_run
-    from runner.signals import StopFlag
-    from runner.simproc import SimProcess
-    from runner.store import Store
+    from nightbench.plan.model import parse_plan
+    from nightbench.analysis.report import build_report, render_table
+    from nightbench.runs import execute, new_run
+    from nightbench.measure.signals import StopFlag
+    from nightbench.simproc import SimProcess
+    from nightbench.store.db import Store
 
     with SimProcess() as sim:
         click.echo(f"simulated bench: source {sim.resources['source']}, meter {sim.resources['meter']}", err=True)

@@ -2,12 +2,12 @@
 
 from __future__ import annotations
 
-from runner.engine import Engine
-from runner.plan import LoadedPlan, parse_plan
-from runner.progress import progress_printer
-from runner.signals import StopFlag
-from runner.store import Store
-from runner.sweep import expand
+from nightbench.measure.engine import Engine
+from nightbench.plan.model import LoadedPlan, parse_plan
+from nightbench.output.progress import progress_printer
+from nightbench.measure.signals import StopFlag
+from nightbench.store.db import Store
+from nightbench.measure.sweep import expand
 
 
 def new_run(store: Store, loaded: LoadedPlan) -> int:
@@ -46,7 +46,7 @@ def owner_alive(row: object) -> bool:
 def check_resumable(store: Store, run_id: int) -> None:
     """Refuse (InputError) a run that is completed, or still running in a live process, or whose
     snapshot no longer describes the points it has."""
-    from drivers.errors import InputError
+    from nightbench.drivers.errors import InputError
 
     row = store.run(run_id)
     if row["state"] == "completed":
@@ -74,7 +74,7 @@ def store_fits(store: Store, run_id: int) -> None:
     every completed run whether or not anyone ran `report`. The points are already durable and the
     run's state recorded, so a failure here must not turn a good night into a failed run (nor stop
     the service): it becomes an event, and `report` (which stores the fits again) shows the error."""
-    from runner.report import build_report
+    from nightbench.analysis.report import build_report
 
     try:
         build_report(store, run_id)

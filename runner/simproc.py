@@ -8,14 +8,14 @@ import subprocess
 import sys
 from typing import Any
 
-from drivers.errors import InstrumentError
+from nightbench.drivers.errors import InstrumentError
 
 
 class SimProcess:
     """`with SimProcess() as sim: sim.resources["source"]` - stopped (SIGTERM) on exit."""
 
     def __init__(self, *extra_args: str, startup_s: float = 15.0) -> None:
-        self.args = [sys.executable, "-m", "simulators.server", *extra_args]
+        self.args = [sys.executable, "-m", "nightbench.simulators.server", *extra_args]
         self.startup_s = startup_s
         self.proc: subprocess.Popen[str] | None = None
         self.resources: dict[str, Any] = {}

@@ -7,9 +7,9 @@ import math
 import time
 from typing import Callable, TextIO
 
-from simulators.faults import FaultInjector
-from simulators.physics import BenchModel, vrms_to_dbm
-from simulators.scpi import ScpiCommandError, ScpiInstrument, one_arg, parse_bool, parse_number
+from nightbench.simulators.faults import FaultInjector
+from nightbench.simulators.physics import BenchModel, vrms_to_dbm
+from nightbench.simulators.scpi import ScpiCommandError, ScpiInstrument, one_arg, parse_bool, parse_number
 
 Clock = Callable[[], float]
 OVERRANGE = "+9.90000000E+37"   # SCPI-1999 vol. 1, 7.2.1: the value returned for overrange

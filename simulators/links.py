@@ -15,8 +15,8 @@ import threading
 import time
 from typing import Protocol
 
-from simulators.faults import FaultInjector
-from simulators.scpi import ScpiInstrument
+from nightbench.simulators.faults import FaultInjector
+from nightbench.simulators.scpi import ScpiInstrument
 
 UNTERMINATED_S = 1.0   # a partial message older than this is dropped (-420 if it was a query)
 

@@ -1,6 +1,6 @@
 """Serve the simulated bench in its own process: TCP ports and pseudo-terminals.
 
-`python -m simulators.server` (or `nightbench sim`) prints one JSON line with the VISA resource
+`python -m nightbench.simulators.server` (or `nightbench sim`) prints one JSON line with the VISA resource
 strings, then serves until SIGTERM or SIGINT:
 
     {"source": "TCPIP::127.0.0.1::P::SOCKET", "meter": "TCPIP::127.0.0.1::Q::SOCKET",
@@ -23,10 +23,10 @@ import tomllib
 import tty
 from typing import Any, TextIO
 
-from simulators.faults import FaultInjector, parse_fault_flag
-from simulators.instruments import DIALECTS, SimAdc, SimMeter, SimSource
-from simulators.links import PtyStream, SocketStream, serve_stream
-from simulators.physics import BenchConfig, BenchModel
+from nightbench.simulators.faults import FaultInjector, parse_fault_flag
+from nightbench.simulators.instruments import DIALECTS, SimAdc, SimMeter, SimSource
+from nightbench.simulators.links import PtyStream, SocketStream, serve_stream
+from nightbench.simulators.physics import BenchConfig, BenchModel
 
 
 class TcpPort:
@@ -171,7 +171,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="command set: scpi (SCPI-1999) or alt (an older, non-standard set)")
 
 
-def main(argv: list[str] | None = None, prog: str = "simulators.server") -> int:
+def main(argv: list[str] | None = None, prog: str = "nightbench.simulators.server") -> int:
     parser = argparse.ArgumentParser(prog=prog, description="Serve the simulated bench.")
     add_arguments(parser)
     args = parser.parse_args(argv)
@@ -179,7 +179,7 @@ def main(argv: list[str] | None = None, prog: str = "simulators.server") -> int:
         return serve(source_port=args.source_port, meter_port=args.meter_port, config_path=args.config,
                      log_path=args.log, faults=args.fault, seed=args.seed, dialect=args.dialect)
     except (OSError, ValueError, tomllib.TOMLDecodeError) as exc:
-        print(f"simulators.server: cannot start the simulated bench: {exc}", file=sys.stderr)
+        print(f"nightbench.simulators.server: cannot start the simulated bench: {exc}", file=sys.stderr)
         return 2
 
 

@@ -11,7 +11,7 @@ from typing import Any, Callable
 import pytest
 import yaml
 
-from runner.simproc import SimProcess
+from nightbench.simproc import SimProcess
 
 DATA = Path(__file__).parent / "data"
 
@@ -88,7 +88,7 @@ def db(tmp_path: Path) -> Path:
 
 def cli(*args: str, timeout: float = 120, **kwargs: Any) -> subprocess.CompletedProcess[str]:
     """Run the real command line in a child process."""
-    return subprocess.run([sys.executable, "-m", "runner", *args], capture_output=True, text=True,
+    return subprocess.run([sys.executable, "-m", "nightbench", *args], capture_output=True, text=True,
                           timeout=timeout, **kwargs)
 
 
@@ -96,8 +96,8 @@ def cli(*args: str, timeout: float = 120, **kwargs: Any) -> subprocess.Completed
 def inproc_bench():
     """Factory: a simulated bench served from threads of this process (for simulator tests that
     need its internals); every bench made is stopped at the end of the test."""
-    from simulators.physics import BenchConfig
-    from simulators.server import Bench
+    from nightbench.simulators.physics import BenchConfig
+    from nightbench.simulators.server import Bench
 
     made = []
 
@@ -114,8 +114,8 @@ def inproc_bench():
 
 def session(resource: str, timeout_s: float = 2.0, name: str = "instrument"):
     """A real pyvisa-py session to a simulated instrument."""
-    from drivers.scpi import ScpiSession
-    from drivers.transport import open_transport
+    from nightbench.drivers.scpi import ScpiSession
+    from nightbench.drivers.transport import open_transport
 
     return ScpiSession(open_transport(resource, timeout_s=timeout_s), name)
 
@@ -128,10 +128,10 @@ def store_run(db: Path, law: Callable[[float, float], float], *, dut_id: str = "
     For checks whose expected values follow from the law by arithmetic (differences between two
     boards, what the views return); `status(P, f)` may mark a point "unsettled" or "overload".
     """
-    from runner.plan import parse_plan
-    from runner.runs import new_run
-    from runner.store import PointResult, Store
-    from runner.sweep import expand
+    from nightbench.plan.model import parse_plan
+    from nightbench.runs import new_run
+    from nightbench.store.db import PointResult, Store
+    from nightbench.measure.sweep import expand
 
     sweep = {"frequency_hz": frequencies or [100e6],
              "power_dbm": levels if levels is not None else {"start": -80, "stop": 0, "step": 2}}

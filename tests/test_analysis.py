@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from runner.analysis import analyse_group, fit_line, range_within
+from nightbench.analysis.fit import analyse_group, fit_line, range_within
 
 DATA = Path(__file__).parent / "data"
 

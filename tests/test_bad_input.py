@@ -14,9 +14,9 @@ from click.testing import CliRunner
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from drivers.errors import InputError
-from runner.cli import main
-from runner.plan import parse_plan
+from nightbench.drivers.errors import InputError
+from nightbench.cli import main
+from nightbench.plan.model import parse_plan
 from tests.conftest import plan_dict
 
 

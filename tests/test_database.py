@@ -11,7 +11,7 @@ from pathlib import Path
 
 import pytest
 
-from runner.store import SCHEMA_VERSION, Store
+from nightbench.store.db import SCHEMA_VERSION, Store
 from tests.conftest import cli, store_run
 
 DOC = Path(__file__).resolve().parent.parent / "docs" / "database.md"
@@ -130,7 +130,7 @@ def test_timestamps_come_from_one_clock_reading(monkeypatch):
     # milliseconds under the earlier second (it came out a second early).
     import time as real_time
 
-    from runner import store
+    from nightbench.store import db as store
 
     readings = iter([1_800_000_000.999, 1_800_000_001.003])
     monkeypatch.setattr(store.time, "time", lambda: next(readings))

@@ -11,14 +11,14 @@ from pathlib import Path
 import pytest
 import yaml
 
-from drivers.scpi import join_program, split_response
-from drivers.transport import check_resource
-from runner.plan import parse_plan
-from runner.runs import execute, new_run
-from runner.signals import StopFlag
-from runner.simproc import SimProcess
-from runner.store import Store
-from simulators.physics import BenchConfig, BenchModel
+from nightbench.drivers.scpi import join_program, split_response
+from nightbench.drivers.transport import check_resource
+from nightbench.plan.model import parse_plan
+from nightbench.runs import execute, new_run
+from nightbench.measure.signals import StopFlag
+from nightbench.simproc import SimProcess
+from nightbench.store.db import Store
+from nightbench.simulators.physics import BenchConfig, BenchModel
 from tests.conftest import assert_never_above, cli, plan_dict, source_log
 
 TRUTH = BenchModel(BenchConfig())
@@ -252,7 +252,7 @@ def test_socket_links_have_tcp_nodelay(inproc_bench):
     # FIELD-NOTES trap 10: TCP_NODELAY on the session's socket (pyvisa-py ignores the VISA attribute).
     import socket
 
-    from drivers.transport import open_transport
+    from nightbench.drivers.transport import open_transport
 
     link = open_transport(inproc_bench().resources()["source"])
     try:

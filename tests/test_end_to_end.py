@@ -13,8 +13,8 @@ import sqlite3
 
 import pytest
 
-from runner.analysis import analyse_group
-from simulators.physics import BenchConfig, BenchModel
+from nightbench.analysis.fit import analyse_group
+from nightbench.simulators.physics import BenchConfig, BenchModel
 from tests.conftest import cli, plan_dict
 
 REPORT_KEYS = {"frequency_hz", "temperature_c", "slope_mv_per_db", "slope_u_mv_per_db", "intercept_dbm",

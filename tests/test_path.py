@@ -19,14 +19,14 @@ import pytest
 import yaml
 from scipy.interpolate import interp1d
 
-from drivers.errors import InputError
-from runner.path import mainline_loss_db
-from runner.plan import load_plan, parse_plan
-from runner.runs import new_run, snapshot_plan
-from runner.store import Store
-from runner.sweep import expand
-from runner.touchstone import parse_touchstone
-from simulators.physics import BenchConfig
+from nightbench.drivers.errors import InputError
+from nightbench.plan.path import mainline_loss_db
+from nightbench.plan.model import load_plan, parse_plan
+from nightbench.runs import new_run, snapshot_plan
+from nightbench.store.db import Store
+from nightbench.measure.sweep import expand
+from nightbench.plan.touchstone import parse_touchstone
+from nightbench.simulators.physics import BenchConfig
 from tests.conftest import DATA, OFFLINE, cli, plan_dict
 
 TOUCHSTONE_FILES = sorted(DATA.glob("ts*.s2p"))

@@ -6,9 +6,9 @@ from pathlib import Path
 
 import pytest
 
-from drivers.errors import InputError
-from runner.plan import load_plan, parse_plan
-from runner.sweep import expand
+from nightbench.drivers.errors import InputError
+from nightbench.plan.model import load_plan, parse_plan
+from nightbench.measure.sweep import expand
 from tests.conftest import OFFLINE, cli, plan_dict
 
 REPO = Path(__file__).resolve().parent.parent

@@ -19,9 +19,9 @@ import pytest
 import yaml
 from matplotlib import image
 
-from runner.analysis import analyse_group
-from runner.simproc import SimProcess
-from simulators.physics import BenchConfig, BenchModel
+from nightbench.analysis.fit import analyse_group
+from nightbench.simproc import SimProcess
+from nightbench.simulators.physics import BenchConfig, BenchModel
 from tests.conftest import cli, plan_dict, store_run
 
 FREQS = [100e6, 900e6]

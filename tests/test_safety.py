@@ -14,7 +14,7 @@ from pathlib import Path
 
 import pytest
 
-from runner.simproc import SimProcess
+from nightbench.simproc import SimProcess
 from tests.conftest import assert_never_above, cli, plan_dict, source_log
 from tests.test_drivers import assert_points_are_real, run_plan
 
@@ -29,7 +29,7 @@ def sweep_plan(resources, levels=41, freqs=(100e6, 900e6)):
 
 
 def start_run(plan_path: Path, db: Path) -> subprocess.Popen:
-    return subprocess.Popen([sys.executable, "-m", "runner", "run", str(plan_path), "--db", str(db)],
+    return subprocess.Popen([sys.executable, "-m", "nightbench", "run", str(plan_path), "--db", str(db)],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
 
 
@@ -97,7 +97,7 @@ def test_sigkill_at_20_random_instants_then_resume_gives_every_point_once(bench,
             proc = start_run(path, db)
         else:
             mark = len(bench.events())
-            proc = subprocess.Popen([sys.executable, "-m", "runner", "resume", "1", "--db", str(db)],
+            proc = subprocess.Popen([sys.executable, "-m", "nightbench", "resume", "1", "--db", str(db)],
                                     stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
         time.sleep(rng.uniform(0.2, 0.9))                # from start-up to mid-sweep
         proc.kill()                                     # SIGKILL: no handler runs, RF stays on

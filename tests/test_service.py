@@ -21,10 +21,10 @@ from typing import Any, Callable
 
 import pytest
 
-from drivers.errors import InputError
-from runner.liveness import iso_ts, owner_gone
-from runner.when import parse_when
-from simulators.physics import BenchConfig, BenchModel
+from nightbench.drivers.errors import InputError
+from nightbench.service.liveness import iso_ts, owner_gone
+from nightbench.service.when import parse_when
+from nightbench.simulators.physics import BenchConfig, BenchModel
 from tests.conftest import cli, plan_dict
 
 SLOW_SWEEP = {"frequency_hz": [100e6], "power_dbm": {"start": -60, "stop": -15, "step": 3}}   # 16 points
@@ -97,7 +97,7 @@ class Services:
 
     def start(self) -> subprocess.Popen[str]:
         err = self.tmp_path / f"serve-{len(self.procs)}.log"
-        proc = subprocess.Popen([sys.executable, "-m", "runner", "serve", "--db", str(self.db), "--poll", "0.1"],
+        proc = subprocess.Popen([sys.executable, "-m", "nightbench", "serve", "--db", str(self.db), "--poll", "0.1"],
                                 stdout=subprocess.DEVNULL, stderr=err.open("w"), text=True)
         self.procs.append((proc, err))
         return proc
@@ -190,7 +190,7 @@ def test_a_killed_service_makes_the_source_safe_first_and_finishes_every_point_o
 
 
 def test_a_killed_foreground_run_is_found_and_resumed_by_serve(bench, write_plan, db, services):
-    run = subprocess.Popen([sys.executable, "-m", "runner", "run", str(write_plan(slow_plan(bench.resources))),
+    run = subprocess.Popen([sys.executable, "-m", "nightbench", "run", str(write_plan(slow_plan(bench.resources))),
                             "--db", str(db)], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     try:
         wait_for(lambda: db.exists() and points_done(db) >= 2, what="two points")
@@ -337,7 +337,7 @@ def test_a_process_is_gone_when_its_pid_is_dead_or_belongs_to_a_later_process():
 
 
 def test_log_lines_are_key_value_with_the_journal_priority_under_systemd(tmp_path, monkeypatch):
-    from runner.eventlog import log
+    from nightbench.service.log import log
 
     out = tmp_path / "stderr.txt"
     with out.open("w") as stream:

@@ -17,12 +17,12 @@ import yaml
 from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
-from drivers.errors import InputError
-from runner.order import fast_edge_order, faster_direction, next_level
-from runner.plan import parse_plan
-from runner.settle import SettleDetector, chi2_999, t99
-from runner.sweep import Point
-from simulators.physics import BenchConfig, BenchModel
+from nightbench.drivers.errors import InputError
+from nightbench.measure.order import fast_edge_order, faster_direction, next_level
+from nightbench.plan.model import parse_plan
+from nightbench.measure.settle import SettleDetector, chi2_999, t99
+from nightbench.measure.sweep import Point
+from nightbench.simulators.physics import BenchConfig, BenchModel
 from tests.conftest import cli, plan_dict
 
 TOL = 5e-4
@@ -317,7 +317,7 @@ def test_asymmetric_bench_with_noise_near_the_floor_meets_the_accuracy_target(tm
     the detector's floor (-82 dBm), where steps are far smaller than the noise, to well above it.
     Target (issue 5): >= 99 % of points within tolerance of the simulator's true settled value,
     allowing 3 standard errors of the averaging noise (the model's noise over the samples)."""
-    from runner.simproc import SimProcess
+    from nightbench.simproc import SimProcess
 
     detector_cfg = {"tau_rise_s": 0.002, "tau_fall_s": 0.012, "output_noise_v": 0.00015}
     truth = BenchModel(BenchConfig.from_dict({"detector": detector_cfg}))
@@ -348,7 +348,7 @@ def test_asymmetric_bench_with_noise_near_the_floor_meets_the_accuracy_target(tm
 
 
 def test_a_point_that_times_out_is_stored_flagged_and_counted(tmp_path, write_plan, db):
-    from runner.simproc import SimProcess
+    from nightbench.simproc import SimProcess
 
     with SimProcess("--config", str(sim_config(tmp_path, tau_rise_s=0.5, tau_fall_s=0.5))) as sim:
         plan = plan_dict(sim.resources, sweep={"frequency_hz": [100e6], "power_dbm": [-60, -40, -20]},

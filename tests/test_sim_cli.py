@@ -9,13 +9,13 @@ import sys
 
 import pytest
 
-from drivers.scpi import ScpiSession
-from drivers.transport import open_transport
+from nightbench.drivers.scpi import ScpiSession
+from nightbench.drivers.transport import open_transport
 
 
 @pytest.mark.parametrize("sig", [signal.SIGTERM, signal.SIGINT])
 def test_sim_prints_resources_serves_and_stops_cleanly(sig):
-    proc = subprocess.Popen([sys.executable, "-m", "runner", "sim"], stdout=subprocess.PIPE, text=True)
+    proc = subprocess.Popen([sys.executable, "-m", "nightbench", "sim"], stdout=subprocess.PIPE, text=True)
     try:
         line = proc.stdout.readline()
         resources = json.loads(line)
@@ -42,7 +42,7 @@ def test_sim_refuses_bad_config_plainly(tmp_path, args, words):
     config = tmp_path / "bad.toml"
     config.write_text("[detector]\nslpoe_v_per_db = 0.02\n")
     args = [str(config) if a == "CONFIG" else a for a in args]
-    res = subprocess.run([sys.executable, "-m", "runner", "sim", *args], capture_output=True, text=True, timeout=20)
+    res = subprocess.run([sys.executable, "-m", "nightbench", "sim", *args], capture_output=True, text=True, timeout=20)
     assert res.returncode == 2
     assert words in res.stderr and "Traceback" not in res.stderr
     assert res.stdout == ""
@@ -52,7 +52,7 @@ def test_sim_config_file_sets_the_physics(tmp_path):
     config = tmp_path / "sim.toml"
     config.write_text("seed = 5\n[detector]\ntau_rise_s = 0.05\n[meter]\nline_hz = 60\n"
                       "[[fault]]\nkind = 'delay'\ninstrument = 'meter'\nafter = 1\n")
-    from simulators.server import load_config
+    from nightbench.simulators.server import load_config
 
     cfg = load_config(str(config))
     assert cfg.seed == 5 and cfg.detector.tau_rise_s == 0.05 and cfg.meter.line_hz == 60

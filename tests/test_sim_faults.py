@@ -7,9 +7,9 @@ import time
 
 import pytest
 
-from drivers.errors import ConnectionLost
-from simulators.faults import FaultInjector, parse_fault_flag
-from simulators.physics import BenchConfig
+from nightbench.drivers.errors import ConnectionLost
+from nightbench.simulators.faults import FaultInjector, parse_fault_flag
+from nightbench.simulators.physics import BenchConfig
 from tests.conftest import session
 
 

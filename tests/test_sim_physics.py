@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from scipy import constants, integrate, signal
 
-from simulators.physics import (BenchConfig, BenchModel, DetectorConfig, FirstOrderOutput,
+from nightbench.simulators.physics import (BenchConfig, BenchModel, DetectorConfig, FirstOrderOutput,
                                 thermal_noise_dbm_per_hz, vrms_to_dbm)
 from tests.conftest import session
 

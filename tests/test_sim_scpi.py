@@ -7,9 +7,9 @@ from __future__ import annotations
 
 import pytest
 
-from simulators.instruments import SimMeter, SimSource
-from simulators.physics import BenchModel
-from simulators.scpi import QUEUE_DEPTH
+from nightbench.simulators.instruments import SimMeter, SimSource
+from nightbench.simulators.physics import BenchModel
+from nightbench.simulators.scpi import QUEUE_DEPTH
 
 
 @pytest.fixture

@@ -13,8 +13,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from runner.analysis import analyse_group, fit_line
-from runner.uncertainty import (
+from nightbench.analysis.fit import analyse_group, fit_line
+from nightbench.analysis.uncertainty import (
     K_EXPANSION,
     build_budget,
     combine,

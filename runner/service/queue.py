@@ -16,12 +16,12 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import TYPE_CHECKING, Any
 
-from drivers.errors import InputError
-from runner.liveness import owner_gone
-from runner.store import Store, now_iso
+from nightbench.drivers.errors import InputError
+from nightbench.service.liveness import owner_gone
+from nightbench.store.db import Store, now_iso
 
 if TYPE_CHECKING:   # the plan model (pydantic) is imported only where a plan is read: `queue` stays quick
-    from runner.plan import LoadedPlan
+    from nightbench.plan.model import LoadedPlan
 
 PENDING = ("queued", "interrupted")     # what serve still has to do
 FINISHED = ("completed", "failed", "cancelled")
@@ -46,7 +46,7 @@ class JobQueue:
     # -- submit, list ---------------------------------------------------------------------
     def submit(self, loaded: "LoadedPlan", not_before: datetime | None = None) -> tuple[int, str]:
         """Queue a validated plan; (job id, not-before as local ISO text). Default: due now."""
-        from runner.sweep import expand
+        from nightbench.measure.sweep import expand
 
         at = (not_before or datetime.now()).astimezone()
         shown = at.isoformat(timespec="seconds")
@@ -92,7 +92,7 @@ class JobQueue:
 
     def plan(self, job: Job) -> "LoadedPlan":
         """The job's plan exactly as submitted: its text and files, never the disk."""
-        from runner.plan import parse_plan
+        from nightbench.plan.model import parse_plan
 
         row = self.conn.execute("SELECT plan_text, files_json FROM jobs WHERE id=?", (job.id,)).fetchone()
         return parse_plan(row["plan_text"], job.plan_file or f"job {job.id} plan snapshot",

@@ -10,14 +10,14 @@ import statistics
 import time
 from typing import Callable
 
-from drivers.errors import InstrumentError, NightbenchError, SafetyError
-from runner.instruments import Bench
-from runner.order import fast_edge_order
-from runner.plan import LoadedPlan
-from runner.settle import Direction, SettleDetector
-from runner.signals import StopFlag
-from runner.store import PointResult, Store
-from runner.sweep import Point, expand
+from nightbench.drivers.errors import InstrumentError, NightbenchError, SafetyError
+from nightbench.measure.roles import Bench
+from nightbench.measure.order import fast_edge_order
+from nightbench.plan.model import LoadedPlan
+from nightbench.measure.settle import Direction, SettleDetector
+from nightbench.measure.signals import StopFlag
+from nightbench.store.db import PointResult, Store
+from nightbench.measure.sweep import Point, expand
 
 OVERLOAD_READINGS = 3  # consecutive overrange readings that end a point as overloaded
 CEILING_SLACK_DB = 1e-6

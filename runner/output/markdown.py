@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from runner.report import num, range_text, render_budget, render_excluded
+from nightbench.analysis.report import num, range_text, render_budget, render_excluded
 
 RESULT_HEADER = ("| frequency (MHz) | slope (mV/dB) | intercept (dBm) | range (dBm) | dynamic range (dB) "
                  "| max abs error in fit range (dB) | points | unsettled |\n"

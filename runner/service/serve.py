@@ -20,11 +20,11 @@ import time
 from types import FrameType
 from typing import Any
 
-from drivers.errors import InputError, NightbenchError
-from runner.eventlog import log
-from runner.queue import Job, JobQueue, points_text
-from runner.signals import StopFlag
-from runner.store import Store
+from nightbench.drivers.errors import InputError, NightbenchError
+from nightbench.service.log import log
+from nightbench.service.queue import Job, JobQueue, points_text
+from nightbench.measure.signals import StopFlag
+from nightbench.store.db import Store
 
 CANCELLED = "cancel"          # the stop reason a `nightbench cancel` gives the engine
 WATCH_POLL_S = 0.2            # how often a running job looks for a cancel
@@ -124,7 +124,7 @@ class Service:
         queue.service_started()
         log("start", pid=os.getpid(), host=socket.gethostname(), db=os.path.abspath(self.db))
         try:
-            from runner.recovery import recover
+            from nightbench.service.recovery import recover
 
             recover(store, queue, log)
             while not self.stop.is_set():
@@ -156,8 +156,8 @@ class Service:
         self.stop.wait(wait)
 
     def _run_job(self, store: Store, queue: JobQueue, job: Job) -> None:
-        from runner.engine import Engine
-        from runner.runs import new_run, snapshot_plan, store_fits
+        from nightbench.measure.engine import Engine
+        from nightbench.runs import new_run, snapshot_plan, store_fits
 
         try:
             loaded = snapshot_plan(store, job.run_id) if job.run_id else queue.plan(job)

@@ -16,7 +16,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from drivers.errors import InputError
+from nightbench.drivers.errors import InputError
 
 SCHEMA_VERSION = 3   # 2: fits, run_counts, and the v_points / v_fits views; 3: jobs, service (docs/database.md)
 STATES = ("queued", "running", "completed", "interrupted", "failed")

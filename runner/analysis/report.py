@@ -10,9 +10,9 @@ from __future__ import annotations
 import json
 from typing import Any
 
-from runner.analysis import GroupResult, analyse_run
-from runner.store import Store
-from runner.uncertainty import AFFECTS, K_EXPANSION, TERMS, describe_terms
+from nightbench.analysis.fit import GroupResult, analyse_run
+from nightbench.store.db import Store
+from nightbench.analysis.uncertainty import AFFECTS, K_EXPANSION, TERMS, describe_terms
 
 ACCURACY_KEYS = tuple(plan_key for _, plan_key, _ in TERMS.values() if plan_key)
 METHOD = ("JCGM 100:2008 (GUM): Type A from the fit and the reading scatter (the larger), Type B from "

@@ -13,7 +13,7 @@ import os
 import sys
 from typing import Any, TextIO
 
-from runner.store import now_iso
+from nightbench.store.db import now_iso
 
 PRIORITY = {"info": 6, "warning": 4, "error": 3}   # syslog severities (RFC 5424)
 

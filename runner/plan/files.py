@@ -12,8 +12,8 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any, Mapping
 
-from drivers.errors import InputError
-from runner.yamlfile import read_text
+from nightbench.drivers.errors import InputError
+from nightbench.plan.yamlfile import read_text
 
 MAX_REFERENCED_BYTES = 16 << 20   # a dense network-analyser sweep runs to a few MB
 

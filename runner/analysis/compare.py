@@ -11,7 +11,7 @@ from __future__ import annotations
 import math
 from typing import Any
 
-from runner.report import num, range_text
+from nightbench.analysis.report import num, range_text
 
 DIFFERENCES = (("slope_mv_per_db", "slope_diff_mv_per_db"), ("intercept_dbm", "intercept_diff_db"),
                ("range_low_dbm", "range_low_diff_db"), ("range_high_dbm", "range_high_diff_db"),

@@ -9,7 +9,7 @@ from __future__ import annotations
 import re
 from datetime import datetime, time, timedelta
 
-from drivers.errors import InputError
+from nightbench.drivers.errors import InputError
 
 _CLOCK = re.compile(r"^([01]?\d|2[0-3]):([0-5]\d)$")
 EXAMPLE = "give an ISO 8601 local date-time such as 2026-03-04T22:30, or HH:MM for the next such time"

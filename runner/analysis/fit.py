@@ -16,7 +16,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from runner.uncertainty import Budget, build_budget, expand, type_a_of_mean
+from nightbench.analysis.uncertainty import Budget, build_budget, expand, type_a_of_mean
 
 
 @dataclass

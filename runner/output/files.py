@@ -6,9 +6,9 @@ import csv
 from pathlib import Path
 from typing import Any
 
-from drivers.errors import InputError
-from runner.export import write_export
-from runner.store import Store
+from nightbench.drivers.errors import InputError
+from nightbench.output.export import write_export
+from nightbench.store.db import Store
 
 RESULT_COLUMNS = ("run_id", "frequency_hz", "temperature_c", "slope_mv_per_db", "slope_u_mv_per_db",
                   "intercept_dbm", "intercept_u_db", "range_low_dbm", "range_high_dbm", "dynamic_range_db",
@@ -47,8 +47,8 @@ def write_results_csv(reports: list[dict[str, Any]], path: Path) -> Path:
 
 def write_outputs(store: Store, reports: list[dict[str, Any]], comparison_text: str | None, out: Path) -> list[Path]:
     """Everything a design review wants in one folder; returns the files written."""
-    from runner.plots import write_plots
-    from runner.summary import markdown_summary
+    from nightbench.output.plots import write_plots
+    from nightbench.output.markdown import markdown_summary
 
     files = write_plots(reports, out)
     files.append(write_results_csv(reports, out / "results.csv"))

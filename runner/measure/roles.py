@@ -1,17 +1,17 @@
-"""Build the instrument roles a plan names: the one place where plan specs meet drivers."""
+"""Build the instrument roles a plan names: the one place where plan specs meet nightbench.drivers."""
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 from typing import Any
 
-from drivers.dialect import METER_COMMANDS, SOURCE_COMMANDS, merged
-from drivers.errors import ConnectionLost, InstrumentError, NightbenchError
-from drivers.meter import ScpiDmm, SerialAdc
-from drivers.scpi import ScpiSession
-from drivers.source import RfSource
-from drivers.transport import open_transport
-from runner.plan import AdcSpec, Plan, SourceSpec
+from nightbench.drivers.dialect import METER_COMMANDS, SOURCE_COMMANDS, merged
+from nightbench.drivers.errors import ConnectionLost, InstrumentError, NightbenchError
+from nightbench.drivers.meter import ScpiDmm, SerialAdc
+from nightbench.drivers.scpi import ScpiSession
+from nightbench.drivers.source import RfSource
+from nightbench.drivers.transport import open_transport
+from nightbench.plan.model import AdcSpec, Plan, SourceSpec
 
 
 def _session(spec: Any, name: str, **kwargs: Any) -> ScpiSession:

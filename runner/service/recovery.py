@@ -9,12 +9,12 @@ import socket
 import time
 from typing import Callable
 
-from drivers.errors import NightbenchError
-from runner.liveness import owner_gone
-from runner.plan import LoadedPlan
-from runner.queue import JobQueue, points_text
-from runner.runs import snapshot_plan
-from runner.store import Store
+from nightbench.drivers.errors import NightbenchError
+from nightbench.service.liveness import owner_gone
+from nightbench.plan.model import LoadedPlan
+from nightbench.service.queue import JobQueue, points_text
+from nightbench.runs import snapshot_plan
+from nightbench.store.db import Store
 
 Log = Callable[..., None]
 
@@ -22,7 +22,7 @@ Log = Callable[..., None]
 def make_source_safe(loaded: LoadedPlan) -> None:
     """Open only the source and switch RF off: opening it does exactly that first (its configure()
     sends nothing but error-queue queries before OUTPut OFF), and nothing else is sent."""
-    from runner.instruments import open_source
+    from nightbench.measure.roles import open_source
 
     source = open_source(loaded.plan.instruments.source)
     source.session.transport.close()

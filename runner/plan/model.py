@@ -13,10 +13,10 @@ from typing import Annotated, Any, Literal, Mapping
 from pydantic import (AfterValidator, BaseModel, ConfigDict, Field, PrivateAttr, ValidationError, field_validator,
                       model_validator)
 
-from drivers.errors import InputError
-from runner.path import build_path
-from runner.planfiles import PlanFiles, PlanProblem
-from runner.yamlfile import KeyPath, load_yaml_text, read_text
+from nightbench.drivers.errors import InputError
+from nightbench.plan.path import build_path
+from nightbench.plan.files import PlanFiles, PlanProblem
+from nightbench.plan.yamlfile import KeyPath, load_yaml_text, read_text
 
 MAX_POINTS = 200_000
 Finite = Annotated[float, Field(allow_inf_nan=False)]
@@ -26,7 +26,7 @@ NonNegative = Annotated[float, Field(ge=0, allow_inf_nan=False)]
 
 def _valid_resource(value: str) -> str:
     """Resource strings are checked at plan time, without opening anything."""
-    from drivers.transport import check_resource
+    from nightbench.drivers.transport import check_resource
 
     problem = check_resource(value)
     if problem:
@@ -57,14 +57,14 @@ class _Link(_Strict):
 
 def _source_commands(value: dict[str, str] | None) -> dict[str, str] | None:
     """Command overrides must name known operations and format with their fields."""
-    from drivers.dialect import SOURCE_COMMANDS, merged
+    from nightbench.drivers.dialect import SOURCE_COMMANDS, merged
 
     merged(SOURCE_COMMANDS, value)
     return value
 
 
 def _meter_commands(value: dict[str, str] | None) -> dict[str, str] | None:
-    from drivers.dialect import METER_COMMANDS, merged
+    from nightbench.drivers.dialect import METER_COMMANDS, merged
 
     merged(METER_COMMANDS, value)
     return value
@@ -170,7 +170,7 @@ class PathSpec(PathElementSpec):
     _model: Any = PrivateAttr(None)
 
     def attach(self, model: Any) -> None:
-        """Set the loss model built by runner.path (it may need files the keys only name)."""
+        """Set the loss model built by nightbench.plan.path (it may need files the keys only name)."""
         self._model = model
 
     def loss_model(self) -> Any:

@@ -28,7 +28,7 @@ import re
 from dataclasses import dataclass
 from pathlib import PurePath
 
-from drivers.errors import InputError
+from nightbench.drivers.errors import InputError
 
 UNITS = {"hz": 1.0, "khz": 1e3, "mhz": 1e6, "ghz": 1e9}
 PARAMETERS = ("s", "y", "z", "h", "g")

@@ -6,7 +6,7 @@ import itertools
 import math
 from dataclasses import dataclass
 
-from runner.plan import Plan
+from nightbench.plan.model import Plan
 
 
 @dataclass(frozen=True)

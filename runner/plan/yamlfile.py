@@ -14,7 +14,7 @@ from typing import Any
 
 import yaml
 
-from drivers.errors import InputError
+from nightbench.drivers.errors import InputError
 
 MAX_BYTES = 1 << 20
 MAX_NODES = 200_000

@@ -18,11 +18,11 @@ import math
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Protocol
 
-from drivers.errors import InputError
-from runner.planfiles import PlanFiles, PlanProblem
+from nightbench.drivers.errors import InputError
+from nightbench.plan.files import PlanFiles, PlanProblem
 
 if TYPE_CHECKING:
-    from runner.plan import PathElementSpec, PathSpec
+    from nightbench.plan.model import PathElementSpec, PathSpec
 
 Key = tuple[Any, ...]
 REL_SLACK = 1e-9     # a frequency this close to a table's end counts as on it (900e6 vs 9.0e8)
@@ -143,7 +143,7 @@ def _element(spec: "PathElementSpec", files: PlanFiles, key: Key, default_label:
         return Interpolated(spec.name or f"{default_label} table".strip(), freqs, losses, spec.extrapolate,
                             key + ("table",), "table")
     assert spec.touchstone is not None
-    from runner.touchstone import parse_touchstone
+    from nightbench.plan.touchstone import parse_touchstone
 
     text, name = files.read(spec.touchstone, key + ("touchstone",))
     try:

@@ -10,7 +10,7 @@ import csv
 import json
 from typing import TextIO
 
-from runner.store import Store
+from nightbench.store.db import Store
 
 COLUMNS = ["frequency_hz", "power_dbm", "source_dbm", "value_v", "stdev_v", "samples", "settle_s", "settled",
            "overload", "settle_readings", "idx", "measured_at"]

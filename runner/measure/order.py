@@ -16,7 +16,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Iterator
 
-from runner.sweep import Point
+from nightbench.measure.sweep import Point
 
 LEVEL_AXIS = "power_dbm"
 HYSTERESIS = 1.5
