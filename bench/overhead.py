@@ -25,13 +25,13 @@ import yaml
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from nightbench.drivers.visa import resource_manager, set_nodelay  # noqa: E402
-from nightbench.plan.model import parse_plan  # noqa: E402
-from nightbench.runs import new_run  # noqa: E402
-from nightbench.measure.engine import Engine  # noqa: E402
-from nightbench.measure.signals import StopFlag  # noqa: E402
-from nightbench.simproc import SimProcess  # noqa: E402
-from nightbench.store.db import Store  # noqa: E402
+from nightbench.drivers.visa import resource_manager, set_nodelay
+from nightbench.measure.engine import Engine
+from nightbench.measure.signals import StopFlag
+from nightbench.plan.model import parse_plan
+from nightbench.runs import new_run
+from nightbench.simproc import SimProcess
+from nightbench.store.db import Store
 
 ZERO_SETTLING = """
 [source]

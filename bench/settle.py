@@ -33,16 +33,16 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-import yaml  # noqa: E402
+import yaml
 
-from nightbench.measure.engine import Engine  # noqa: E402
-from nightbench.plan.model import parse_plan  # noqa: E402
-from nightbench.runs import new_run  # noqa: E402
-from nightbench.measure.signals import StopFlag  # noqa: E402
-from nightbench.simproc import SimProcess  # noqa: E402
-from nightbench.store.db import Store  # noqa: E402
-from nightbench.measure.sweep import Point, expand  # noqa: E402
-from nightbench.simulators.physics import BenchConfig, BenchModel  # noqa: E402
+from nightbench.measure.engine import Engine
+from nightbench.measure.signals import StopFlag
+from nightbench.measure.sweep import Point, expand
+from nightbench.plan.model import parse_plan
+from nightbench.runs import new_run
+from nightbench.simproc import SimProcess
+from nightbench.simulators.physics import BenchConfig, BenchModel
+from nightbench.store.db import Store
 
 TAUS_S = (0.001, 0.03, 0.3)
 NOISE_V = (0.05e-3, 0.3e-3)          # detector output noise, rms at a 20 ms window

@@ -23,7 +23,7 @@ import yaml
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from nightbench.simproc import SimProcess  # noqa: E402
+from nightbench.simproc import SimProcess
 
 
 def main() -> int:

@@ -27,9 +27,9 @@ import yaml
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from nightbench.plan.model import parse_plan  # noqa: E402
-from nightbench.runs import new_run  # noqa: E402
-from nightbench.store.db import Store  # noqa: E402
+from nightbench.plan.model import parse_plan
+from nightbench.runs import new_run
+from nightbench.store.db import Store
 
 FREQS = [round(100e6 * k) for k in range(1, 28)]          # 27 frequencies
 LEVELS = {"start": -95, "stop": 5, "step": 1}               # 101 levels

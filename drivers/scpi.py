@@ -10,7 +10,7 @@ have happened (invariant 4), and the caller gets ScpiError, never a silent succe
 from __future__ import annotations
 
 import time
-from typing import Callable
+from collections.abc import Callable
 
 from nightbench.drivers.errors import ConnectionLost, InstrumentError, ScpiError
 from nightbench.drivers.transport import Transport

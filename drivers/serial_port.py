@@ -20,7 +20,7 @@ class SerialTransport:
         self._port = port
 
     @classmethod
-    def open(cls, resource: str, *, timeout_s: float, baud_rate: int = 9600) -> "SerialTransport":
+    def open(cls, resource: str, *, timeout_s: float, baud_rate: int = 9600) -> SerialTransport:
         import serial
 
         url = resource[len(PREFIX):]

@@ -50,7 +50,7 @@ class VisaTransport:
 
     @classmethod
     def open(cls, resource: str, *, timeout_s: float, visa_library: str = "@py",
-             baud_rate: int | None = None) -> "VisaTransport":
+             baud_rate: int | None = None) -> VisaTransport:
         rm = resource_manager(visa_library)
         errors = _link_errors()
         try:

@@ -11,7 +11,8 @@ from __future__ import annotations
 import functools
 import json
 import sys
-from typing import Any, Callable
+from collections.abc import Callable
+from typing import Any
 
 import click
 
@@ -53,8 +54,8 @@ def main() -> None:
 @friendly
 def check(plan: str) -> None:
     """Validate PLAN; touches no instrument and writes nothing."""
-    from nightbench.plan.model import load_plan
     from nightbench.measure.sweep import expand
+    from nightbench.plan.model import load_plan
 
     loaded = load_plan(plan)
     p = loaded.plan
@@ -75,8 +76,8 @@ def check(plan: str) -> None:
 
 def _execute(loaded: Any, db: str, run_id: int | None) -> None:
     """Run (or resume) and exit with the contract's code."""
-    from nightbench.runs import execute, new_run
     from nightbench.measure.signals import EXIT_CODES, StopFlag
+    from nightbench.runs import execute, new_run
     from nightbench.store.db import Store
 
     store = Store(db)
@@ -114,10 +115,8 @@ def resume(run_id: int, db: str | None) -> None:
 
     The source is made safe (RF off) before anything else, the plan comes from the run's own
     snapshot (never the file on disk), and points already stored are never measured again."""
-    from nightbench.runs import snapshot_plan
+    from nightbench.runs import check_resumable, snapshot_plan
     from nightbench.store.db import Store
-
-    from nightbench.runs import check_resumable
 
     store = Store(_db(db), create=False)
     check_resumable(store, run_id)
@@ -156,8 +155,8 @@ def report(run_ids: tuple[int, ...], db: str | None, as_json: bool, out: str | N
 
     With a second run, RUN_B, both side by side and their differences (B minus A).
     """
-    from nightbench.drivers.errors import InputError
     from nightbench.analysis.report import build_report, render_table
+    from nightbench.drivers.errors import InputError
     from nightbench.store.db import Store
 
     if len(run_ids) > 2:
@@ -243,8 +242,8 @@ def submit(plan: str, when: str | None, db: str | None) -> None:
     of the files do not change the job."""
     from nightbench.plan.model import load_plan
     from nightbench.service.queue import JobQueue
-    from nightbench.store.db import Store
     from nightbench.service.when import parse_when
+    from nightbench.store.db import Store
 
     not_before = parse_when(when) if when else None
     loaded = load_plan(plan)   # bad input stops here: nothing written

@@ -17,10 +17,10 @@ def demo_plan_text(source: str, meter: str) -> str:
 
 
 def run_demo(db: str) -> int:
-    from nightbench.plan.model import parse_plan
     from nightbench.analysis.report import build_report, render_table
-    from nightbench.runs import execute, new_run
     from nightbench.measure.signals import StopFlag
+    from nightbench.plan.model import parse_plan
+    from nightbench.runs import execute, new_run
     from nightbench.simproc import SimProcess
     from nightbench.store.db import Store
 

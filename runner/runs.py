@@ -3,11 +3,11 @@
 from __future__ import annotations
 
 from nightbench.measure.engine import Engine
-from nightbench.plan.model import LoadedPlan, parse_plan
-from nightbench.output.progress import progress_printer
 from nightbench.measure.signals import StopFlag
-from nightbench.store.db import Store
 from nightbench.measure.sweep import expand
+from nightbench.output.progress import progress_printer
+from nightbench.plan.model import LoadedPlan, parse_plan
+from nightbench.store.db import Store
 
 
 def new_run(store: Store, loaded: LoadedPlan) -> int:

@@ -20,7 +20,7 @@ class SimProcess:
         self.proc: subprocess.Popen[str] | None = None
         self.resources: dict[str, Any] = {}
 
-    def __enter__(self) -> "SimProcess":
+    def __enter__(self) -> SimProcess:
         self.proc = subprocess.Popen(self.args, stdout=subprocess.PIPE, text=True)
         assert self.proc.stdout is not None
         ready, _, _ = select.select([self.proc.stdout], [], [], self.startup_s)

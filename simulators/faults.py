@@ -44,7 +44,7 @@ class Fault:
     rng: random.Random = field(default_factory=random.Random, repr=False)
 
     @classmethod
-    def from_dict(cls, data: dict, seed: int) -> "Fault":
+    def from_dict(cls, data: dict, seed: int) -> Fault:
         names = set(cls.__dataclass_fields__) - {"fired", "rng"}
         unknown = set(data) - names
         if unknown:

@@ -5,7 +5,8 @@ from __future__ import annotations
 import json
 import math
 import time
-from typing import Callable, TextIO
+from collections.abc import Callable
+from typing import TextIO
 
 from nightbench.simulators.faults import FaultInjector
 from nightbench.simulators.physics import BenchModel, vrms_to_dbm

@@ -153,7 +153,7 @@ class BenchConfig:
     faults: list[dict] = field(default_factory=list)
 
     @classmethod
-    def from_dict(cls, data: dict) -> "BenchConfig":
+    def from_dict(cls, data: dict) -> BenchConfig:
         """Build from a nested dict (a TOML file); unknown keys are errors."""
         config = cls()
         for section, values in data.items():

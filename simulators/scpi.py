@@ -11,8 +11,8 @@ from __future__ import annotations
 
 import re
 from collections import deque
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Callable
 
 # SCPI-1999 vol. 2, 21.8: error/event numbers and their standard messages.
 ERRORS = {

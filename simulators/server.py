@@ -32,7 +32,7 @@ from nightbench.simulators.physics import BenchConfig, BenchModel
 class TcpPort:
     """One listening loopback port for one instrument; a thread per client."""
 
-    def __init__(self, port: int, instrument: Any, name: str, bench: "Bench") -> None:
+    def __init__(self, port: int, instrument: Any, name: str, bench: Bench) -> None:
         self.sock = socket.create_server(("127.0.0.1", port), reuse_port=False)
         self.sock.settimeout(0.1)
         self.instrument, self.name, self.bench = instrument, name, bench
@@ -63,7 +63,7 @@ class TcpPort:
 class PtyPort:
     """A pseudo-terminal for one instrument; the path is what a client opens as ASRL<path>::INSTR."""
 
-    def __init__(self, instrument: Any, name: str, bench: "Bench") -> None:
+    def __init__(self, instrument: Any, name: str, bench: Bench) -> None:
         self.master, self.slave = pty.openpty()
         tty.setraw(self.slave)
         self.path = os.ttyname(self.slave)

@@ -5,8 +5,9 @@ from __future__ import annotations
 import json
 import subprocess
 import sys
+from collections.abc import Callable
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 import pytest
 import yaml
@@ -101,7 +102,7 @@ def inproc_bench():
 
     made = []
 
-    def make(config: "BenchConfig | None" = None, **kwargs: Any) -> "Bench":
+    def make(config: BenchConfig | None = None, **kwargs: Any) -> Bench:
         b = Bench(config or BenchConfig(), **kwargs)
         b.start()
         made.append(b)
@@ -128,10 +129,10 @@ def store_run(db: Path, law: Callable[[float, float], float], *, dut_id: str = "
     For checks whose expected values follow from the law by arithmetic (differences between two
     boards, what the views return); `status(P, f)` may mark a point "unsettled" or "overload".
     """
+    from nightbench.measure.sweep import expand
     from nightbench.plan.model import parse_plan
     from nightbench.runs import new_run
     from nightbench.store.db import PointResult, Store
-    from nightbench.measure.sweep import expand
 
     sweep = {"frequency_hz": frequencies or [100e6],
              "power_dbm": levels if levels is not None else {"start": -80, "stop": 0, "step": 2}}

@@ -14,8 +14,8 @@ from click.testing import CliRunner
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from nightbench.drivers.errors import InputError
 from nightbench.cli import main
+from nightbench.drivers.errors import InputError
 from nightbench.plan.model import parse_plan
 from tests.conftest import plan_dict
 
@@ -134,7 +134,7 @@ def test_bad_plan_is_refused_plainly_and_changes_nothing(tmp_path, tripwire, nam
         result = CliRunner().invoke(main, command)
         assert result.exit_code == 2, (name, result.output)
         message = result.stderr if hasattr(result, "stderr") else result.output
-        assert "Traceback" not in result.output and result.exception is None or isinstance(result.exception, SystemExit)
+        assert ("Traceback" not in result.output and result.exception is None) or isinstance(result.exception, SystemExit)
         assert message.startswith("nightbench: ") and str(plan) in message, message
         assert any(w in message for w in words.split("|")), (name, message)
     assert not db.exists(), "bad input must not create a database"

@@ -13,12 +13,12 @@ import yaml
 
 from nightbench.drivers.scpi import join_program, split_response
 from nightbench.drivers.transport import check_resource
+from nightbench.measure.signals import StopFlag
 from nightbench.plan.model import parse_plan
 from nightbench.runs import execute, new_run
-from nightbench.measure.signals import StopFlag
 from nightbench.simproc import SimProcess
-from nightbench.store.db import Store
 from nightbench.simulators.physics import BenchConfig, BenchModel
+from nightbench.store.db import Store
 from tests.conftest import assert_never_above, cli, plan_dict, source_log
 
 TRUTH = BenchModel(BenchConfig())

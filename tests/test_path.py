@@ -20,13 +20,13 @@ import yaml
 from scipy.interpolate import interp1d
 
 from nightbench.drivers.errors import InputError
-from nightbench.plan.path import mainline_loss_db
-from nightbench.plan.model import load_plan, parse_plan
-from nightbench.runs import new_run, snapshot_plan
-from nightbench.store.db import Store
 from nightbench.measure.sweep import expand
+from nightbench.plan.model import load_plan, parse_plan
+from nightbench.plan.path import mainline_loss_db
 from nightbench.plan.touchstone import parse_touchstone
+from nightbench.runs import new_run, snapshot_plan
 from nightbench.simulators.physics import BenchConfig
+from nightbench.store.db import Store
 from tests.conftest import DATA, OFFLINE, cli, plan_dict
 
 TOUCHSTONE_FILES = sorted(DATA.glob("ts*.s2p"))

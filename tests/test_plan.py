@@ -7,8 +7,8 @@ from pathlib import Path
 import pytest
 
 from nightbench.drivers.errors import InputError
-from nightbench.plan.model import load_plan, parse_plan
 from nightbench.measure.sweep import expand
+from nightbench.plan.model import load_plan, parse_plan
 from tests.conftest import OFFLINE, cli, plan_dict
 
 REPO = Path(__file__).resolve().parent.parent

@@ -73,7 +73,7 @@ def test_report_agrees_with_the_simulators_noiseless_law_analysed_the_same_way(m
         assert group["range_low_dbm"] == pytest.approx(ref.range_low_dbm, abs=1.0)
         assert group["range_high_dbm"] == pytest.approx(ref.range_high_dbm, abs=1.0)
         # the law's range ends are real crossings inside the sweep, so the check above tests interpolation
-        assert -90 < ref.range_low_dbm and ref.range_high_dbm < 0
+        assert ref.range_low_dbm > -90 and ref.range_high_dbm < 0
         assert group["dynamic_range_db"] == pytest.approx(group["range_high_dbm"] - group["range_low_dbm"])
 
 

@@ -19,9 +19,9 @@ from hypothesis import strategies as st
 
 from nightbench.drivers.errors import InputError
 from nightbench.measure.order import fast_edge_order, faster_direction, next_level
-from nightbench.plan.model import parse_plan
 from nightbench.measure.settle import SettleDetector, chi2_999, t99
 from nightbench.measure.sweep import Point
+from nightbench.plan.model import parse_plan
 from nightbench.simulators.physics import BenchConfig, BenchModel
 from tests.conftest import cli, plan_dict
 

@@ -10,8 +10,14 @@ import numpy as np
 import pytest
 from scipy import constants, integrate, signal
 
-from nightbench.simulators.physics import (BenchConfig, BenchModel, DetectorConfig, FirstOrderOutput,
-                                thermal_noise_dbm_per_hz, vrms_to_dbm)
+from nightbench.simulators.physics import (
+    BenchConfig,
+    BenchModel,
+    DetectorConfig,
+    FirstOrderOutput,
+    thermal_noise_dbm_per_hz,
+    vrms_to_dbm,
+)
 from tests.conftest import session
 
 

@@ -11,8 +11,8 @@ import json
 from typing import Any
 
 from nightbench.analysis.fit import GroupResult, analyse_run
-from nightbench.store.db import Store
 from nightbench.analysis.uncertainty import AFFECTS, K_EXPANSION, TERMS, describe_terms
+from nightbench.store.db import Store
 
 ACCURACY_KEYS = tuple(plan_key for _, plan_key, _ in TERMS.values() if plan_key)
 METHOD = ("JCGM 100:2008 (GUM): Type A from the fit and the reading scatter (the larger), Type B from "

@@ -14,8 +14,9 @@ half-widths a of rectangular distributions, u = a/sqrt(3).
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import Any, Sequence
+from typing import Any
 
 import numpy as np
 

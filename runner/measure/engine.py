@@ -8,16 +8,16 @@ from __future__ import annotations
 import math
 import statistics
 import time
-from typing import Callable
+from collections.abc import Callable
 
 from nightbench.drivers.errors import InstrumentError, NightbenchError, SafetyError
-from nightbench.measure.roles import Bench
 from nightbench.measure.order import fast_edge_order
-from nightbench.plan.model import LoadedPlan
+from nightbench.measure.roles import Bench
 from nightbench.measure.settle import Direction, SettleDetector
 from nightbench.measure.signals import StopFlag
-from nightbench.store.db import PointResult, Store
 from nightbench.measure.sweep import Point, expand
+from nightbench.plan.model import LoadedPlan
+from nightbench.store.db import PointResult, Store
 
 OVERLOAD_READINGS = 3  # consecutive overrange readings that end a point as overloaded
 CEILING_SLACK_DB = 1e-6

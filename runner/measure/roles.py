@@ -66,7 +66,7 @@ class Bench:
     meter: ScpiDmm | SerialAdc
 
     @classmethod
-    def open(cls, plan: Plan) -> "Bench":
+    def open(cls, plan: Plan) -> Bench:
         source = open_source(plan.instruments.source)
         try:
             meter = open_meter(plan.instruments.meter)

@@ -29,7 +29,7 @@ class StopFlag:
     def wait(self, seconds: float) -> bool:
         return self._event.wait(seconds)
 
-    def install(self) -> "StopFlag":
+    def install(self) -> StopFlag:
         """Route SIGINT and SIGTERM to this flag (main thread only)."""
         def handler(signum: int, frame: FrameType | None) -> None:
             self.set(signal.Signals(signum).name)

@@ -47,8 +47,8 @@ def write_results_csv(reports: list[dict[str, Any]], path: Path) -> Path:
 
 def write_outputs(store: Store, reports: list[dict[str, Any]], comparison_text: str | None, out: Path) -> list[Path]:
     """Everything a design review wants in one folder; returns the files written."""
-    from nightbench.output.plots import write_plots
     from nightbench.output.markdown import markdown_summary
+    from nightbench.output.plots import write_plots
 
     files = write_plots(reports, out)
     files.append(write_results_csv(reports, out / "results.csv"))

@@ -9,8 +9,9 @@ and never the disk.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any
 
 from nightbench.drivers.errors import InputError
 from nightbench.plan.yamlfile import read_text

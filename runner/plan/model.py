@@ -7,15 +7,24 @@ typo must not silently change a night's work. Numbers may be written `70e6` (see
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping
 from pathlib import Path
-from typing import Annotated, Any, Literal, Mapping
+from typing import Annotated, Any, Literal
 
-from pydantic import (AfterValidator, BaseModel, ConfigDict, Field, PrivateAttr, ValidationError, field_validator,
-                      model_validator)
+from pydantic import (
+    AfterValidator,
+    BaseModel,
+    ConfigDict,
+    Field,
+    PrivateAttr,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
 
 from nightbench.drivers.errors import InputError
-from nightbench.plan.path import build_path
 from nightbench.plan.files import PlanFiles, PlanProblem
+from nightbench.plan.path import build_path
 from nightbench.plan.yamlfile import KeyPath, load_yaml_text, read_text
 
 MAX_POINTS = 200_000
@@ -77,7 +86,7 @@ class SourceSpec(_Link):
     commands: Annotated[dict[str, str] | None, AfterValidator(_source_commands)] = None
 
     @model_validator(mode="after")
-    def _limits(self) -> "SourceSpec":
+    def _limits(self) -> SourceSpec:
         if self.min_dbm >= self.max_dbm:
             raise ValueError("min_dbm must be below max_dbm")
         return self
@@ -153,7 +162,7 @@ class PathElementSpec(_Strict):
     extrapolate: Extrapolate = "none"   # beyond a table or file: refused unless hold or linear
 
     @model_validator(mode="after")
-    def _one_form(self) -> "PathElementSpec":
+    def _one_form(self) -> PathElementSpec:
         forms = PATH_FORMS + (("elements",) if "elements" in type(self).model_fields else ())
         given = [k for k in forms if getattr(self, k) is not None]
         if len(given) != 1:
@@ -194,7 +203,7 @@ class Span(_Strict):
     points: Annotated[int, Field(ge=1, le=MAX_POINTS)] | None = None
 
     @model_validator(mode="after")
-    def _one_of(self) -> "Span":
+    def _one_of(self) -> Span:
         if (self.step is None) == (self.points is None):
             raise ValueError("give exactly one of step or points")
         if self.step is not None:

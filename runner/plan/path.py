@@ -120,7 +120,7 @@ class Chain:
         return [line for e in self.elements for line in e.describe()]
 
 
-def build_path(spec: "PathSpec", files: PlanFiles) -> PathModel:
+def build_path(spec: PathSpec, files: PlanFiles) -> PathModel:
     """The model for a validated `path` section; PlanProblem/InputError for what keys cannot say."""
     if spec.elements is not None:
         return Chain(tuple(_element(e, files, ("path", "elements", i), f"element {i + 1}")
@@ -128,7 +128,7 @@ def build_path(spec: "PathSpec", files: PlanFiles) -> PathModel:
     return _element(spec, files, ("path",), "")
 
 
-def _element(spec: "PathElementSpec", files: PlanFiles, key: Key, default_label: str) -> PathModel:
+def _element(spec: PathElementSpec, files: PlanFiles, key: Key, default_label: str) -> PathModel:
     if spec.loss_db is not None:
         return Constant(spec.name or f"{default_label} loss_db".strip(), spec.loss_db, f"{spec.loss_db:g} dB")
     if spec.coupler is not None:

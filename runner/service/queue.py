@@ -44,7 +44,7 @@ class JobQueue:
         self.conn = store.conn
 
     # -- submit, list ---------------------------------------------------------------------
-    def submit(self, loaded: "LoadedPlan", not_before: datetime | None = None) -> tuple[int, str]:
+    def submit(self, loaded: LoadedPlan, not_before: datetime | None = None) -> tuple[int, str]:
         """Queue a validated plan; (job id, not-before as local ISO text). Default: due now."""
         from nightbench.measure.sweep import expand
 
@@ -90,7 +90,7 @@ class JobQueue:
         row = self.conn.execute("SELECT * FROM jobs WHERE run_id=? ORDER BY id DESC", (run_id,)).fetchone()
         return _job(row) if row else None
 
-    def plan(self, job: Job) -> "LoadedPlan":
+    def plan(self, job: Job) -> LoadedPlan:
         """The job's plan exactly as submitted: its text and files, never the disk."""
         from nightbench.plan.model import parse_plan
 

@@ -7,13 +7,13 @@ from __future__ import annotations
 import os
 import socket
 import time
-from typing import Callable
+from collections.abc import Callable
 
 from nightbench.drivers.errors import NightbenchError
-from nightbench.service.liveness import owner_gone
 from nightbench.plan.model import LoadedPlan
-from nightbench.service.queue import JobQueue, points_text
 from nightbench.runs import snapshot_plan
+from nightbench.service.liveness import owner_gone
+from nightbench.service.queue import JobQueue, points_text
 from nightbench.store.db import Store
 
 Log = Callable[..., None]

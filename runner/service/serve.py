@@ -21,9 +21,9 @@ from types import FrameType
 from typing import Any
 
 from nightbench.drivers.errors import InputError, NightbenchError
+from nightbench.measure.signals import StopFlag
 from nightbench.service.log import log
 from nightbench.service.queue import Job, JobQueue, points_text
-from nightbench.measure.signals import StopFlag
 from nightbench.store.db import Store
 
 CANCELLED = "cancel"          # the stop reason a `nightbench cancel` gives the engine
@@ -41,7 +41,7 @@ class ServiceLock:
         self.path = f"{db}.serve-lock"
         self.fd: int | None = None
 
-    def acquire(self) -> "ServiceLock":
+    def acquire(self) -> ServiceLock:
         try:
             fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
         except OSError as exc:
@@ -91,7 +91,7 @@ class Watch(threading.Thread):
         finally:
             store.close()
 
-    def __enter__(self) -> "Watch":
+    def __enter__(self) -> Watch:
         self.start()
         return self
 

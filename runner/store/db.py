@@ -326,7 +326,7 @@ class Store:
         return self.conn.execute("SELECT * FROM fits WHERE run_id=? ORDER BY frequency_hz, temperature_c",
                                  (run_id,)).fetchall()
 
-    def _transaction(self) -> "_Tx":
+    def _transaction(self) -> _Tx:
         return _Tx(self.conn)
 
     transaction = _transaction   # for the modules that keep their own tables here (runner/queue.py)
