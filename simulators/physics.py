@@ -74,6 +74,8 @@ class DetectorConfig:
     ripple_period_db: float = 10.0        # with a period equal to the stage gain
     tau_rise_s: float = 0.002
     tau_fall_s: float = 0.006
+    tail_share: float = 0.0               # a slow part of every step (e.g. 0.01: 1 %, a thermal tail),
+    tau_tail_s: float = 0.2               # with its own time constant, the same both ways
     output_noise_v: float = 0.0001        # rms at a 20 ms integration window, strong signal
     floor_noise_v: float = 0.0004         # extra rms (20 ms window) as the input nears the floor
     slope_tc_per_c: float = -2e-4         # relative slope change per degree from 25 C
@@ -241,7 +243,9 @@ class BenchModel:
         self.frequency_hz = 100e6
         self.level_dbm = self.config.source.min_dbm
         self.output_on = False
-        self.output = FirstOrderOutput(self.steady_output_v(), t)
+        share = self.config.detector.tail_share
+        self.output = FirstOrderOutput(self.steady_output_v() * (1.0 - share), t)
+        self.tail = FirstOrderOutput(self.steady_output_v() * share, t)    # zero unless tail_share is set
         self._input_dbm = self.dut_dbm()
 
     # -- truth --------------------------------------------------------------------------
@@ -276,8 +280,9 @@ class BenchModel:
                 self.output_on = output_on
             det = self.config.detector
             self._input_dbm = self.dut_dbm()
-            self.output.retarget(self.steady_output_v(), t + self.config.source.level_settle_s,
-                                 det.tau_rise_s, det.tau_fall_s)
+            target, at = self.steady_output_v(), t + self.config.source.level_settle_s
+            self.output.retarget(target * (1.0 - det.tail_share), at, det.tau_rise_s, det.tau_fall_s)
+            self.tail.retarget(target * det.tail_share, at, det.tau_tail_s, det.tau_tail_s)
 
     # -- meter side ---------------------------------------------------------------------
     def integration_s(self, nplc: float) -> float:
@@ -287,7 +292,7 @@ class BenchModel:
     def reading(self, t_start: float, t_end: float) -> float:
         """Detector output integrated over [t_start, t_end]: the exact mean plus noise."""
         with self.lock:
-            mean = self.output.mean(t_start, t_end)
+            mean = self.output.mean(t_start, t_end) + self.tail.mean(t_start, t_end)
             window = max(t_end - t_start, 1e-5)
             sigma = self.config.detector.noise_v(self._input_dbm, window)
             return mean + self.rng.gauss(0.0, sigma)

@@ -26,6 +26,8 @@ from typing import Literal
 
 import numpy as np
 
+from nightbench.measure.tail import pooled_share, slow_amplitudes, tail_bound, tail_grid
+
 Direction = Literal["rise", "fall"]
 DIRECTIONS: tuple[Direction, Direction] = ("rise", "fall")
 
@@ -40,6 +42,9 @@ ALONE_DOF = 10             # local degrees of freedom needed before any noise ha
 LEARN_KEEP = 7             # recent points whose tau evidence is kept per direction
 NOISE_FLOOR = 1e-3         # noise below this share of the tolerance counts as this much (clean streams)
 NOISE_KEEP = 12            # recent points pooled for the noise prior
+TAIL_SHARE = 0.02          # default: a slow tail may be up to 2 % of a step until the run shows less
+TAIL_KEEP = 12             # recent points whose tail evidence is pooled
+TAIL_READINGS = 160        # at most this many readings enter a tail fit
 STEP_Z = 3.9               # a step is real (has a direction) beyond this many standard errors:
                            # the best of the grid's time constants is picked, and at 2.33 (one
                            # t test at 99 %) about 9 % of pure-noise points showed a "step"
@@ -87,6 +92,7 @@ class Assessment:
     tau_hi_s: float | None          # slowest time constant allowed for
     noise_v: float | None           # reading noise used (rms)
     direction: Direction | None     # output direction, if the data or the hint tells it
+    tail_v: float = 0.0             # the part of the bound a slow tail could still cause
 
 
 @dataclass(frozen=True)
@@ -109,7 +115,7 @@ class SettleDetector:
     """
 
     def __init__(self, tolerance_v: float, *, samples: int = 4, min_wait_s: float = 0.0,
-                 max_tau_s: float = 5.0) -> None:
+                 max_tau_s: float = 5.0, tail_share: float = TAIL_SHARE) -> None:
         if tolerance_v <= 0 or max_tau_s <= 0:
             raise ValueError("tolerance_v and max_tau_s must be positive")
         self.tolerance_v = tolerance_v
@@ -123,6 +129,11 @@ class SettleDetector:
         self.noise: deque[tuple[float, int]] = deque(maxlen=NOISE_KEEP)   # (rss, dof) per point
         self.polarity = 0          # +1: hints match the output's direction; -1: they are inverted
         self.last: Assessment | None = None
+        # slow tails (nightbench.measure.tail): the share allowed for, and what points proved about it
+        self.tail_share = tail_share
+        self.tail_taus = tail_grid(max_tau_s)
+        self.tail_evidence: deque[tuple[np.ndarray, np.ndarray]] = deque(maxlen=TAIL_KEEP)
+        self.settled_v: float | None = None      # the previous point's value: where this step started
         self.begin(None)
 
     # -- one point ------------------------------------------------------------------------
@@ -135,6 +146,8 @@ class SettleDetector:
         g = len(self.grid)
         self.sx, self.sxx, self.sxy = np.zeros(g), np.zeros(g), np.zeros(g)
         self.sy = self.syy = 0.0
+        self.ts: list[float] = []
+        self.ys: list[float] = []
         self.last = None
 
     def record(self, t: float, v: float) -> None:
@@ -150,6 +163,8 @@ class SettleDetector:
         self.syy += y * y
         self.n += 1
         self.t_last = t
+        self.ts.append(t)
+        self.ys.append(v)
 
     def feed(self, t: float, v: float) -> bool:
         """Add a reading taken `t` s after the change; True once the drift bound is small enough."""
@@ -164,6 +179,7 @@ class SettleDetector:
     def end(self) -> Learned | None:
         """The point is done: learn its noise and, if it showed a step, its time constant profile."""
         if self.n < 4:
+            self.settled_v = float(np.mean(self.ys)) if self.ys else None
             return None
         c, rss, sxx = self._fit()
         best = int(np.argmin(rss))
@@ -172,6 +188,7 @@ class SettleDetector:
         self.noise.append((float(rss[best]), dof))
         s2 = max((float(rss[best]) + nu0 * s0) / (dof + nu0), (NOISE_FLOOR * self.tolerance_v) ** 2)
         k = t99(dof + nu0)
+        self._learn_tail(best, s2, float(c[best]))
         direction = step_direction(c[best], math.sqrt(s2 / sxx[best]) if sxx[best] > 0 else math.inf,
                                    dof + nu0)
         if direction is None:
@@ -272,5 +289,59 @@ class SettleDetector:
         u = np.exp(-ahead / tau).mean(axis=0)
         with np.errstate(invalid="ignore"):
             bound = np.where(u > 0, (np.abs(c[allowed]) + k * se_c[allowed]) * u, 0.0)
-        return Assessment(self.n, float(bound.max()), float(self.grid[best]), float(tau.max()),
-                          math.sqrt(s2), direction)
+        main = float(bound.max())
+        tail = 0.0
+        if main <= DRIFT_SHARE * self.tolerance_v:     # only then can a tail be what holds the point
+            fast = int(np.flatnonzero(allowed)[np.argmin(rss[allowed])])
+            tail = self._tail_drift(fast, s2, k, float(c[fast]), ahead[:, 0])
+        return Assessment(self.n, main + tail, float(self.grid[best]), float(tau.max()),
+                          math.sqrt(s2), direction, tail)
+
+    # -- slow tails -----------------------------------------------------------------------
+    def _step_v(self, c_best: float, i: int) -> float:
+        """This point's step, signed: from the previous point's value to the fitted final value
+        (on the first point, what the readings themselves have shown: at least their own span)."""
+        final = self.y0 + (self.sy - c_best * self.sx[i]) / self.n if self.n else self.y0
+        seen = abs(self.ys[-1] - self.ys[0]) + abs(c_best) if self.ys else 0.0
+        if self.settled_v is None or abs(final - self.settled_v) < seen:
+            return -math.copysign(seen, c_best)    # C > 0: the output is above its final value, a fall
+        return final - self.settled_v
+
+    def _tail_caps(self, k: float) -> np.ndarray:
+        """Per tail time constant, the share of a step allowed for: the plan's, or less once the
+        pooled evidence of recent points proves less."""
+        proven = pooled_share(list(self.tail_evidence), k)
+        caps = np.full(len(self.tail_taus), self.tail_share)
+        return np.minimum(caps, proven) if proven.size else caps
+
+    def _tail_drift(self, fast: int, s2: float, k: float, c_fast: float, ahead: np.ndarray) -> float:
+        if self.tail_share <= 0:
+            return 0.0
+        fast_tau_s = float(self.grid[fast])
+        step = abs(self._step_v(c_fast, fast))
+        caps = self._tail_caps(k) * step
+        remaining = np.exp(-ahead[:, None] / self.tail_taus[None, :]).mean(axis=0)
+        remaining = np.where(self.tail_taus >= fast_tau_s * 3.0, remaining, 0.0)
+        if float((caps * remaining).max(initial=0.0)) <= 0.05 * self.tolerance_v:
+            return 0.0                 # the largest tail allowed for is negligible: no fit needed
+        t, y = self._tail_readings()
+        amp, se = slow_amplitudes(t, y, fast_tau_s, self.tail_taus, s2)
+        return tail_bound(amp, se, k, caps, remaining)
+
+    def _tail_readings(self) -> tuple[np.ndarray, np.ndarray]:
+        """The readings for a tail fit: all of them, or an even subset of a long point (a subset
+        knows less, so the bound only grows: safe, and the cost per judgement stays flat)."""
+        stride = max(1, len(self.ts) // TAIL_READINGS)
+        t = np.asarray(self.ts[::stride]) - self.t_first
+        return t, np.asarray(self.ys[::stride]) - self.y0
+
+    def _learn_tail(self, best: int, s2: float, c_best: float) -> None:
+        """Keep what this point's readings prove about a tail's share of its step, and its value."""
+        fast_tau_s = float(self.grid[best])
+        step = self._step_v(c_best, best)
+        self.settled_v = float(np.mean(self.ys[-self.samples:]))
+        if self.tail_share <= 0 or abs(step) < 20 * self.tolerance_v:
+            return                     # a small step says little about a share of it
+        t, y = self._tail_readings()
+        amp, se = slow_amplitudes(t, y, fast_tau_s, self.tail_taus, s2)
+        self.tail_evidence.append((amp / step, se / step))

@@ -1,0 +1,100 @@
+"""A slow tail behind a fast step: how much of it the readings since the change can still hide.
+
+Real detectors often settle in two parts: a fast main response and a small slow part (a thermal
+tail of a percent or so, tenths of a second long). Once the run has learned a fast time constant,
+a single-exponential fit explains the first few readings of a large step perfectly well, while a
+1 % tail of a 100 mV step (1 mV) is still twice a 0.5 mV tolerance away. No fit of a few
+milliseconds of data can see that tail; only watching longer can. So, for every slow time
+constant up to `max_tau_s`, the readings are fitted with both parts,
+
+    y(t) = A + C_f exp(-t / tau_f) + C_s exp(-t / tau_s),
+
+and the slow amplitude C_s is bounded by what the data allow (|C_s| + k se(C_s)), but never
+above `share` of the step unless the data show more. Large steps relative to the tolerance keep
+the point open until the tail is bounded or has decayed; small steps, whose largest plausible
+tail is within the tolerance anyway, cost nothing.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+TAIL_SEPARATION = 3.0    # a tail is at least this much slower than the main part's time constant
+TAIL_GRID_RATIO = 1.25   # coarse steps in tau_s: the bound varies slowly with it
+TAIL_GRID_MIN_S = 1e-3   # tails faster than this are done within a few readings: the main fit sees them
+
+
+def tail_grid(max_tau_s: float) -> np.ndarray:
+    """The slow time constants allowed for, fixed per run (so evidence from points can be pooled)."""
+    if max_tau_s <= TAIL_GRID_MIN_S:
+        return np.array([max_tau_s])
+    n = math.ceil(math.log(max_tau_s / TAIL_GRID_MIN_S, TAIL_GRID_RATIO))
+    return max_tau_s / TAIL_GRID_RATIO ** np.arange(n, -1, -1)
+
+
+def slow_amplitudes(t: np.ndarray, y: np.ndarray, fast_tau_s: float, taus: np.ndarray,
+                    s2: float) -> tuple[np.ndarray, np.ndarray]:
+    """Least-squares C_s and its standard error for each tau_s (t from the first reading).
+
+    Columns 1, exp(-t/tau_f), exp(-t/tau_s): a 3x3 normal-equation solve per tau_s. Where the
+    columns are nearly collinear (a window short against tau_s), or tau_s is not clearly slower
+    than tau_f, se is infinite: no evidence.
+    """
+    amp = np.zeros(len(taus))
+    se = np.full(len(taus), math.inf)
+    use = taus >= fast_tau_s * TAIL_SEPARATION
+    if len(t) < 4 or not use.any():
+        return amp, se
+    slow = taus[use]
+    xf = np.exp(-t / fast_tau_s)
+    xs = np.exp(-t[None, :] / slow[:, None])                  # (m, n)
+    g = np.empty((len(slow), 3, 3))
+    g[:, 0, 0] = float(len(t))
+    g[:, 0, 1] = g[:, 1, 0] = xf.sum()
+    g[:, 1, 1] = (xf * xf).sum()
+    g[:, 0, 2] = g[:, 2, 0] = xs.sum(axis=1)
+    g[:, 1, 2] = g[:, 2, 1] = (xs * xf).sum(axis=1)
+    g[:, 2, 2] = (xs * xs).sum(axis=1)
+    rhs = np.stack([np.full(len(slow), y.sum()), np.full(len(slow), (xf * y).sum()), (xs * y).sum(axis=1)], axis=1)
+    with np.errstate(all="ignore"):
+        cond = np.linalg.cond(g)
+    ok = np.isfinite(cond) & (cond < 1e12)
+    if ok.any():
+        inv = np.linalg.inv(g[ok])
+        a, s = np.zeros(len(slow)), np.full(len(slow), math.inf)
+        a[ok] = np.einsum("mij,mj->mi", inv, rhs[ok])[:, 2]
+        s[ok] = np.sqrt(np.maximum(inv[:, 2, 2], 0.0) * s2)
+        amp[use], se[use] = a, s
+    return amp, se
+
+
+def tail_bound(amp: np.ndarray, se: np.ndarray, k: float, cap_v: np.ndarray, remaining: np.ndarray) -> float:
+    """Upper bound on the mean drift a slow tail could still cause over the next readings.
+
+    Per tau_s: the amplitude the data allow (|C_s| + k se), but no more than `cap_v` (the share
+    of the step a tail may plausibly have) unless the data show more than that; times the share
+    of it still to come (`remaining`, the mean of exp(-t/tau_s) over the readings ahead).
+    """
+    hi = np.abs(amp) + k * se
+    shown = (np.abs(amp) - k * se) > cap_v          # the data show more tail than the cap: believe them
+    bounded = np.where(shown, hi, np.minimum(hi, cap_v))
+    with np.errstate(invalid="ignore"):
+        drift = np.where(remaining > 0, bounded * remaining, 0.0)
+    return float(drift.max()) if drift.size else 0.0
+
+
+def pooled_share(evidence: list[tuple[np.ndarray, np.ndarray]], k: float) -> np.ndarray:
+    """What recent points prove about the tail's share of a step, per tau_s: the inverse-variance
+    mean of their estimates C_s/step plus k standard errors (inf where none could tell)."""
+    if not evidence:
+        return np.full(0, math.inf)
+    r = np.array([e[0] for e in evidence])
+    s = np.array([e[1] for e in evidence])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        w = np.where(np.isfinite(s) & (s > 0), 1.0 / (s * s), 0.0)
+        total = w.sum(axis=0)
+        mean = np.where(total > 0, (w * np.where(w > 0, r, 0.0)).sum(axis=0) / total, 0.0)
+        se = np.where(total > 0, 1.0 / np.sqrt(total), math.inf)
+    return np.abs(mean) + k * se

@@ -1,0 +1,147 @@
+"""Settling with a slow tail: a fast main response plus a small slow part must not fool the detector.
+
+The output is the sum of two first-order responses (linear superposition: common practice), read
+by an integrating meter as the exact mean over each window. "A first-order output is within a
+fraction e of a step after tau ln(1/e)" is textbook first-order settling; the streams' helper is
+checked against scipy.signal's step response (reference library) below.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from nightbench.measure.settle import SettleDetector
+from nightbench.measure.tail import pooled_share, slow_amplitudes, tail_bound
+
+TOL = 5e-4
+CADENCE_S = 0.0021
+WINDOW_S = 0.002
+SAMPLES = 4
+SIGMA_V = 0.0005          # one 2 ms reading's noise
+MAX_TAU_S = 2.0 / math.log(100.0)
+FAST_TAU_S = 0.002
+
+
+class TwoPart:
+    """A main part (share 1 - rho, tau_f) and a tail (share rho, tau_s), each first order."""
+
+    def __init__(self, rho: float, tau_f: float, tau_s: float, v0: float) -> None:
+        self.parts = [[v0 * (1 - rho), v0 * (1 - rho), 0.0, tau_f, 1 - rho], [v0 * rho, v0 * rho, 0.0, tau_s, rho]]
+
+    @staticmethod
+    def _value(part: list[float], t: float) -> float:
+        start, target, t0, tau, _ = part
+        return target + (start - target) * math.exp(-max(0.0, t - t0) / tau)
+
+    def retarget(self, v: float, t: float) -> None:
+        for part in self.parts:
+            part[0], part[1], part[2] = self._value(part, t), v * part[4], t
+
+    def mean(self, a: float, b: float) -> float:
+        total = 0.0
+        for start, target, t0, tau, _ in self.parts:
+            total += target * (b - a) + (start - target) * tau * (math.exp(-(a - t0) / tau) - math.exp(-(b - t0) / tau))
+        return total / (b - a)
+
+    def final(self) -> float:
+        return sum(p[1] for p in self.parts)
+
+
+def test_two_part_stream_matches_scipy_step_response():
+    # reference library: scipy.signal.step of 1/(tau s + 1), weighted and summed
+    from scipy import signal
+
+    out = TwoPart(0.01, 0.002, 0.2, v0=0.0)
+    out.retarget(1.0, 0.0)
+    t = np.linspace(0.0, 0.5, 501)        # scipy simulates from T[0] as time zero
+    ref = np.zeros_like(t)
+    for share, tau in ((0.99, 0.002), (0.01, 0.2)):
+        _, y = signal.step(signal.lti([1.0], [tau, 1.0]), T=t)
+        ref += share * y
+    mine = np.array([out.mean(x - 1e-7, x + 1e-7) for x in t[1:]])
+    assert np.allclose(mine, ref[1:], atol=1e-5)
+
+
+def sweep_then_big_step(seed: int, rho: float, big_v: float) -> tuple[bool, float, float]:
+    """Small steps teach a fast time constant, then one large step; returns (accepted, error of
+    the reported mean from the final value, time spent on the large step)."""
+    rng = np.random.default_rng(seed)
+    tau_s = rng.uniform(0.1, 0.3)
+    det = SettleDetector(TOL, samples=SAMPLES, max_tau_s=MAX_TAU_S)
+    out = TwoPart(rho, FAST_TAU_S, tau_s, v0=0.2)
+    t, prev = 0.0, 0.2
+    accepted, err, spent = False, 0.0, 0.0
+    for v in [0.2 + 0.01 * i for i in range(1, 9)] + [big_v]:
+        out.retarget(v, t)
+        det.begin("rise" if v > prev else "fall")
+        t0, accepted = t, False
+        while t - t0 < 2.0:
+            t += CADENCE_S
+            if det.feed(t - t0, out.mean(t - WINDOW_S, t) + rng.normal(0.0, SIGMA_V)):
+                accepted = True
+                break
+        spent = t - t0
+        means = []
+        for _ in range(SAMPLES):
+            t += CADENCE_S
+            means.append(out.mean(t - WINDOW_S, t))
+            det.record(t - t0, means[-1] + rng.normal(0.0, SIGMA_V))
+        det.end()
+        err = float(np.mean(means)) - out.final()
+        prev = v
+    return accepted, err, spent
+
+
+def test_a_large_step_with_a_slow_tail_is_not_accepted_outside_tolerance():
+    # 1 % tail with tau 0.1-0.3 s on a 0.4-1.0 V step: 4-10 mV of tail, 8-20x the tolerance.
+    # Before the tail guard, these were accepted after a few readings (12-20x tolerance out).
+    outside = []
+    for seed in range(40):
+        big = 0.6 + 0.4 * (seed % 5) / 4
+        accepted, err, _ = sweep_then_big_step(seed, 0.01, big)
+        if accepted and abs(err) > TOL:
+            outside.append((seed, err))
+    assert not outside, outside
+
+
+def test_the_guard_costs_little_on_small_steps():
+    # a 10 mV step's largest tail allowed for (2 % = 0.2 mV) is inside the tolerance: no wait
+    det = SettleDetector(TOL, samples=SAMPLES, max_tau_s=MAX_TAU_S)
+    accepted, _, spent = sweep_then_big_step(3, 0.0, 0.29)
+    assert accepted
+    assert spent < 0.05, spent
+    assert det.tail_share > 0
+
+
+def test_tail_share_zero_turns_the_guard_off():
+    det = SettleDetector(TOL, samples=SAMPLES, max_tau_s=MAX_TAU_S, tail_share=0.0)
+    assert det._tail_drift(0, 1e-8, 2.0, 0.1, np.array([0.01])) == 0.0
+
+
+def test_slow_amplitude_recovers_a_known_tail():
+    # y = A + Cf exp(-t/tf) + Cs exp(-t/ts) exactly, no noise: the solve must give Cs back
+    t = np.arange(1, 400) * CADENCE_S
+    y = 0.3 - 0.05 * np.exp(-t / 0.002) - 0.004 * np.exp(-t / 0.2)
+    taus = np.array([0.05, 0.2, 0.4])
+    amp, se = slow_amplitudes(t, y - y[0], 0.002, taus, 1e-12)
+    assert amp[1] == pytest.approx(-0.004, rel=1e-3)
+    assert np.all(np.isfinite(se))
+
+
+def test_tail_bound_believes_data_over_the_cap_and_caps_weak_evidence():
+    remaining = np.array([1.0])
+    # weak evidence (infinite se): the cap decides
+    assert tail_bound(np.array([0.0]), np.array([math.inf]), 2.0, np.array([1e-3]), remaining) == 1e-3
+    # strong evidence of a tail larger than the cap: the data decide
+    assert tail_bound(np.array([5e-3]), np.array([1e-4]), 2.0, np.array([1e-3]), remaining) == pytest.approx(5.2e-3)
+
+
+def test_pooled_share_is_the_inverse_variance_mean():
+    # JCGM 100:2008 does not cover pooling; the weighted mean with weights 1/u^2 is common practice
+    ev = [(np.array([0.010]), np.array([0.002])), (np.array([0.006]), np.array([0.001]))]
+    w = np.array([1 / 0.002**2, 1 / 0.001**2])
+    mean = (w * np.array([0.010, 0.006])).sum() / w.sum()
+    assert pooled_share(ev, 2.0)[0] == pytest.approx(abs(mean) + 2.0 / math.sqrt(w.sum()))
