@@ -155,8 +155,9 @@ def report(run_ids: tuple[int, ...], db: str | None, as_json: bool, out: str | N
 
     With a second run, RUN_B, both side by side and their differences (B minus A).
     """
-    from nightbench.analysis.report import build_report, render_table
+    from nightbench.analysis.report import build_report
     from nightbench.drivers.errors import InputError
+    from nightbench.output.table import render_table
     from nightbench.store.db import Store
 
     if len(run_ids) > 2:
@@ -171,14 +172,15 @@ def report(run_ids: tuple[int, ...], db: str | None, as_json: bool, out: str | N
     reports = [build_report(store, run_id) for run_id in run_ids]
     comparison_text = None
     if len(reports) == 2:
-        from nightbench.analysis.compare import compare_reports, render_comparison
+        from nightbench.analysis.compare import compare_reports
+        from nightbench.output.table import render_comparison
 
         cmp = compare_reports(*reports)
         comparison_text = render_comparison(cmp)
-        click.echo(json.dumps(cmp, indent=1) if as_json
+        click.echo(json.dumps(cmp.to_json(), indent=1) if as_json
                    else "\n\n".join([comparison_text, *(render_table(r) for r in reports)]))
     else:
-        click.echo(json.dumps(reports[0], indent=1) if as_json else render_table(reports[0]))
+        click.echo(json.dumps(reports[0].to_json(), indent=1) if as_json else render_table(reports[0]))
     if out:
         from nightbench.output.files import prepare_dir, write_outputs
 

@@ -17,8 +17,9 @@ def demo_plan_text(source: str, meter: str) -> str:
 
 
 def run_demo(db: str) -> int:
-    from nightbench.analysis.report import build_report, render_table
+    from nightbench.analysis.report import build_report
     from nightbench.measure.signals import StopFlag
+    from nightbench.output.table import render_table
     from nightbench.plan.model import parse_plan
     from nightbench.runs import execute, new_run
     from nightbench.simproc import SimProcess

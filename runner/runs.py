@@ -70,13 +70,13 @@ def execute(loaded: LoadedPlan, store: Store, run_id: int, stop: StopFlag) -> tu
 
 
 def store_fits(store: Store, run_id: int) -> None:
-    """Fit results go into the database as soon as a run completes, so queries across runs see
-    every completed run whether or not anyone ran `report`. The points are already durable and the
+    """Fit results go into the database when a run completes (the one place they are written:
+    `report` only reads), so queries across runs see every completed run. The points are already durable and the
     run's state recorded, so a failure here must not turn a good night into a failed run (nor stop
-    the service): it becomes an event, and `report` (which stores the fits again) shows the error."""
-    from nightbench.analysis.report import build_report
+    the service): it becomes an event, and `report` (which analyses the same way) shows the error."""
+    from nightbench.analysis.report import build_report, save_fits
 
     try:
-        build_report(store, run_id)
+        save_fits(store, build_report(store, run_id))
     except Exception as exc:  # noqa: BLE001 - see the docstring
         store.event(run_id, "analysis", f"fit results not stored: {type(exc).__name__}: {exc}")

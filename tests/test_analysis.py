@@ -16,7 +16,7 @@ DATA = Path(__file__).parent / "data"
 
 
 def _norris():
-    lines = [l for l in (DATA / "nist-strd-norris.csv").read_text().splitlines() if not l.startswith("#")]
+    lines = [line for line in (DATA / "nist-strd-norris.csv").read_text().splitlines() if not line.startswith("#")]
     rows = list(csv.DictReader(lines))
     return [float(r["x"]) for r in rows], [float(r["y"]) for r in rows]
 

@@ -11,6 +11,7 @@ from pathlib import Path
 
 import pytest
 
+from nightbench.analysis.report import build_report, save_fits
 from nightbench.store.db import SCHEMA_VERSION, Store
 from tests.conftest import cli, store_run
 
@@ -27,8 +28,15 @@ V_FITS = ["run_id", "run_name", "dut_id", "run_state", "run_started_at", "run_fi
           "max_abs_error_db", "points", "unsettled_points", "overload_points", "analysed_at"]
 
 
+def _complete(db: Path, run_id: int) -> None:
+    """What a run does when it completes (runs.store_fits): analyse it and store its fits."""
+    store = Store(db)
+    save_fits(store, build_report(store, run_id))
+    store.close()
+
+
 def _batch(db: Path) -> None:
-    """Three invented boards, one of them twice, with known slopes; fits stored by `report`."""
+    """Three invented boards, one of them twice, with known slopes; fits stored as on completion."""
     def bad_top(p: float, f: float) -> str:   # board -01 overloads at the top and misses one point
         return "overload" if p == 0 else "unsettled" if (p, f) == (-40, 500e6) else "ok"
 
@@ -37,7 +45,7 @@ def _batch(db: Path) -> None:
         store_run(db, lambda p, f, s=slope, i=icpt: s * (max(p, -80.0) - i), dut_id=dut, frequencies=FREQS,
                   status=bad_top if dut == "B7-proto-01" else None)
     for run_id in range(1, 5):
-        assert cli("report", str(run_id), "--db", str(db)).returncode == 0
+        _complete(db, run_id)
 
 
 def _columns(conn: sqlite3.Connection, view: str) -> list[str]:
@@ -60,34 +68,39 @@ def test_views_have_the_documented_columns_and_one_row_per_point_and_per_group(t
     assert slope == pytest.approx(20.1) and icpt == pytest.approx(-91.5)
 
 
-def test_report_replaces_a_runs_fits_rather_than_adding_to_them(tmp_path):
+def test_saving_fits_replaces_a_runs_rows_rather_than_adding_to_them(tmp_path):
     db = tmp_path / "lab.db"
     store_run(db, lambda p, f: 0.02 * (p + 90.0), frequencies=FREQS)
     for _ in range(3):
-        assert cli("report", "1", "--db", str(db)).returncode == 0
+        _complete(db, 1)
     assert sqlite3.connect(db).execute("SELECT COUNT(*) FROM fits").fetchone()[0] == 3
 
 
 def test_points_done_is_kept_by_the_database(tmp_path):
     db = tmp_path / "lab.db"
     store_run(db, lambda p, f: 0.02 * (p + 90.0))
-    store_run(db, lambda p, f: 0.02 * (p + 90.0), levels=[-40, -30])
+    store_run(db, lambda p, f: 0.02 * (p + 90.0), levels=[-40, -35, -30])
     store = Store(db)
     counts = {r["id"]: r["points_done"] for r in store.runs()}
     truth = dict(store.conn.execute("SELECT run_id, COUNT(*) FROM points GROUP BY run_id").fetchall())
-    assert counts == truth == {1: 41, 2: 2}
+    assert counts == truth == {1: 41, 2: 3}
     store.conn.execute("DELETE FROM points WHERE run_id = 2 AND idx = 0")
-    assert {r["id"]: r["points_done"] for r in store.runs()} == {1: 41, 2: 1}
+    assert {r["id"]: r["points_done"] for r in store.runs()} == {1: 41, 2: 2}
+
+
+def _version_1(db: Path) -> None:
+    """A file as version 1 wrote it (before fits, run_counts, the views and the file snapshots)."""
+    store_run(db, lambda p, f: 0.02 * (p + 90.0))
+    conn = sqlite3.connect(db)
+    conn.executescript("DROP VIEW v_points; DROP VIEW v_fits; DROP TRIGGER points_counted; "
+                       "DROP TRIGGER points_uncounted; DROP TABLE run_counts; DROP TABLE fits; DROP TABLE run_files; "
+                       "DROP TABLE jobs; DROP TABLE service; UPDATE meta SET value = '1' WHERE key = 'schema_version';")
+    conn.close()
 
 
 def test_a_version_1_file_is_migrated_in_place(tmp_path):
     db = tmp_path / "old.db"
-    store_run(db, lambda p, f: 0.02 * (p + 90.0))
-    conn = sqlite3.connect(db)
-    conn.executescript("DROP VIEW v_points; DROP VIEW v_fits; DROP TRIGGER points_counted; "
-                       "DROP TRIGGER points_uncounted; DROP TABLE run_counts; DROP TABLE fits; "
-                       "UPDATE meta SET value = '1' WHERE key = 'schema_version';")
-    conn.close()
+    _version_1(db)
     store = Store(db, create=False)
     assert store.conn.execute("SELECT value FROM meta").fetchone()[0] == str(SCHEMA_VERSION)
     assert store.runs()[0]["points_done"] == 41

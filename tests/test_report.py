@@ -1,9 +1,10 @@
 """`nightbench report` on the simulated bench: numbers, plots, summary, comparison, exports.
 
 One wide sweep is run once for the module (a real simulator process, pyvisa-py over TCP, the
-CLI in a child process). The reference is the simulator's own noiseless law
-(`BenchModel.truth_v`) at the same levels, analysed by the same code: the report must agree
-with it, whatever the simulator's physics is (ripple, floor, compression).
+CLI in a child process). The reference is built without the code under test: the simulator's
+own noiseless law (`BenchModel.truth_v` at the true DUT level `BenchModel.dut_dbm`), fitted with
+`scipy.stats.linregress`, its conformance error evaluated on a dense numpy grid. The report must
+agree with it, whatever the simulator's physics is (ripple, floor, compression).
 """
 
 from __future__ import annotations
@@ -18,8 +19,8 @@ import numpy as np
 import pytest
 import yaml
 from matplotlib import image
+from scipy import stats
 
-from nightbench.analysis.fit import analyse_group
 from nightbench.simproc import SimProcess
 from nightbench.simulators.physics import BenchConfig, BenchModel
 from tests.conftest import cli, plan_dict, store_run
@@ -57,23 +58,55 @@ def _report(db: Path, *runs: str) -> dict:
     return json.loads(res.stdout)
 
 
-def test_report_agrees_with_the_simulators_noiseless_law_analysed_the_same_way(measured):
+def _stored_levels(db: Path, frequency_hz: float) -> tuple[np.ndarray, np.ndarray]:
+    """(DUT level the plan asked for, level the source was set to) of every stored point, read with sqlite3."""
+    conn = sqlite3.connect(db)
+    rows = conn.execute("SELECT power_dbm, source_dbm FROM v_points WHERE run_id = 1 AND frequency_hz = ? "
+                        "AND settled = 1 AND overload = 0 ORDER BY power_dbm", (frequency_hz,)).fetchall()
+    conn.close()
+    return np.array([r[0] for r in rows]), np.array([r[1] for r in rows])
+
+
+def _reference_range(truth: BenchModel, f: float, slope: float, intercept_v: float) -> tuple[float, float]:
+    """Ends of the span around the fit range where the noiseless law stays within 1 dB of the
+    reference line, on a 0.01 dB grid (numpy; the conformance error is (V - line)/slope, the
+    definition in the README)."""
+    loss = truth.config.path.loss(f)
+    grid = np.arange(-90.0, 0.0 + 1e-9, 0.01)
+    law = np.array([truth.truth_v(truth.dut_dbm(f, level_dbm=p + loss, output_on=True), f) for p in grid])
+    within = np.abs((law - (intercept_v + slope * grid)) / slope) <= 1.0
+    centre = int(np.argmin(np.abs(grid - np.mean(FIT))))
+    assert within[centre]
+    below = np.nonzero(~within[:centre])[0]
+    above = np.nonzero(~within[centre:])[0]
+    low = grid[below[-1] + 1] if below.size else grid[0]
+    high = grid[centre + above[0] - 1] if above.size else grid[-1]
+    return float(low), float(high)
+
+
+def test_report_agrees_with_the_simulators_noiseless_law(measured):
     report = _report(measured["db"], "1")
     truth = measured["truth"]
     assert [g["frequency_hz"] for g in report["groups"]] == FREQS
-    for group, detail in zip(report["groups"], report["details"]):
+    for group in report["groups"]:
         f = group["frequency_hz"]
-        levels = [c["power_dbm"] for c in detail["curve"] if c["error_db"] is not None]
-        ideal = [{"power_dbm": p, "value_v": truth.truth_v(p, f), "settled": 1, "overload": 0} for p in levels]
-        ref = analyse_group(f, ideal, tuple(FIT), 1.0)
-        # issue 6 acceptance: slope within 0.5 %, intercept within 0.3 dB, range ends within 1 dB
-        assert group["slope_mv_per_db"] == pytest.approx(ref.slope_mv_per_db, rel=0.005)
-        assert group["intercept_dbm"] == pytest.approx(ref.intercept_dbm, abs=0.3)
-        assert ref.range_low_dbm is not None and ref.range_high_dbm is not None
-        assert group["range_low_dbm"] == pytest.approx(ref.range_low_dbm, abs=1.0)
-        assert group["range_high_dbm"] == pytest.approx(ref.range_high_dbm, abs=1.0)
-        # the law's range ends are real crossings inside the sweep, so the check above tests interpolation
-        assert ref.range_low_dbm > -90 and ref.range_high_dbm < 0
+        # the noiseless output at the level each point really reached: the simulator's truth API
+        # (BenchModel.dut_dbm from the source setting the run stored, BenchModel.truth_v)
+        levels, source = _stored_levels(measured["db"], f)
+        ideal = np.array([truth.truth_v(truth.dut_dbm(f, level_dbm=s, output_on=True), f) for s in source])
+        in_fit = (levels >= FIT[0]) & (levels <= FIT[1])
+        # reference: scipy.stats.linregress over the plan's fit range
+        ref = stats.linregress(levels[in_fit], ideal[in_fit])
+        # issue 6 acceptance: slope within 0.5 %, intercept (where the line reaches 0 V: -a/b) within 0.3 dB
+        assert group["slope_mv_per_db"] == pytest.approx(ref.slope * 1e3, rel=0.005)
+        assert group["intercept_dbm"] == pytest.approx(-ref.intercept / ref.slope, abs=0.3)
+        # reference: the law's own |conformance error| <= 1 dB span on a dense numpy grid; ends within 1 dB
+        low, high = _reference_range(truth, f, ref.slope, ref.intercept)
+        # the law's range ends are real crossings inside the sweep, so the check tests interpolation
+        assert low > -90 and high < 0
+        assert group["range_low_dbm"] == pytest.approx(low, abs=1.0)
+        assert group["range_high_dbm"] == pytest.approx(high, abs=1.0)
+        # definition (README): the dynamic range is the span between the ends
         assert group["dynamic_range_db"] == pytest.approx(group["range_high_dbm"] - group["range_low_dbm"])
 
 
@@ -155,6 +188,34 @@ def test_two_runs_side_by_side_give_their_differences(tmp_path):
     assert res.returncode == 0, res.stderr
     _assert_real_plot(tmp_path / "cmp" / "slope-intercept.png")
     assert (tmp_path / "cmp" / "points-run2.csv").exists()
+
+
+# the JSON other programs rely on (docs/design.md, "JSON other programs rely on"), spelled out here
+# on purpose: the fields are declared once in the code, and this is what that declaration must give
+REPORT_KEYS = ["run_id", "name", "state", "dut_id", "started_at", "finished_at", "groups", "analysis", "details"]
+GROUP_KEYS = ["frequency_hz", "temperature_c", "slope_mv_per_db", "slope_u_mv_per_db", "intercept_dbm",
+              "intercept_u_db", "fit_dbm", "error_limit_db", "range_low_dbm", "range_high_dbm", "dynamic_range_db",
+              "max_abs_error_db", "points", "unsettled_points"]
+COMPARISON_KEYS = ["run_ids", "runs", "differences", "only_in_a_hz", "only_in_b_hz"]
+DIFFERENCE_KEYS = ["frequency_hz", "temperature_c", "slope_diff_mv_per_db", "intercept_diff_db", "range_low_diff_db",
+                   "range_high_diff_db", "dynamic_range_diff_db", "max_abs_error_diff_db", "slope_diff_u_mv_per_db",
+                   "intercept_diff_u_db", "slope_diff_u_type_a_mv_per_db", "intercept_diff_u_type_a_db"]
+
+
+def test_the_json_shapes_are_the_documented_ones(tmp_path):
+    db = tmp_path / "two.db"
+    store_run(db, lambda p, f: 0.0200 * (p + 90.0), dut_id="BRD-A", frequencies=[100e6, 500e6])
+    store_run(db, lambda p, f: 0.0205 * (p + 88.0), dut_id="BRD-B", frequencies=[500e6, 900e6])
+    report = _report(db, "1")
+    assert list(report) == REPORT_KEYS
+    assert [list(g) for g in report["groups"]] == [GROUP_KEYS, GROUP_KEYS]
+    assert report["groups"][0]["fit_dbm"] == [-60, -20] and report["dut_id"] == "BRD-A"
+    assert list(report["analysis"]) == ["fit_dbm", "error_limit_db", "k", "method", "uncertainty_terms"]
+    cmp = _report(db, "1", "2")
+    assert list(cmp) == COMPARISON_KEYS
+    assert [list(r) for r in cmp["runs"]] == [REPORT_KEYS, REPORT_KEYS]
+    assert [list(d) for d in cmp["differences"]] == [DIFFERENCE_KEYS]   # only 500 MHz is in both
+    assert cmp["only_in_a_hz"] == [100e6] and cmp["only_in_b_hz"] == [900e6]
 
 
 @pytest.mark.parametrize("args, message", [

@@ -4,22 +4,31 @@ The uncertainty of a difference combines both runs' expanded uncertainties as in
 (`*_diff_u_*`, right for two benches). On one bench with the same cables, the Type B terms are
 shared and largely cancel in a difference, so the Type A part alone (`*_diff_u_type_a_*`) is the
 fairer test of whether two boards differ; both are given, and the reader knows the bench.
+Which fields get a difference, and its key, is declared once in store/fields.py (`Field.diff`).
 """
 
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 from typing import Any
 
-from nightbench.analysis.report import num, range_text
+from nightbench.analysis.fit import GroupResult
+from nightbench.analysis.report import Report
+from nightbench.store.fields import FIELDS, Field
 
-DIFFERENCES = (("slope_mv_per_db", "slope_diff_mv_per_db"), ("intercept_dbm", "intercept_diff_db"),
-               ("range_low_dbm", "range_low_diff_db"), ("range_high_dbm", "range_high_diff_db"),
-               ("dynamic_range_db", "dynamic_range_diff_db"), ("max_abs_error_db", "max_abs_error_diff_db"))
+DIFFERENCES = tuple(f for f in FIELDS if f.diff)
+WITH_U = tuple(f for f in DIFFERENCES if f.with_u)
 
 
-def group_key(group: dict[str, Any]) -> tuple[float, float | None]:
-    return round(group["frequency_hz"], 3), group["temperature_c"]
+def u_key(f: Field, type_a: bool = False) -> str:
+    """slope_diff_mv_per_db -> slope_diff_u_mv_per_db, or slope_diff_u_type_a_mv_per_db."""
+    assert f.diff is not None
+    return f.diff.replace("_diff_", "_diff_u_type_a_" if type_a else "_diff_u_", 1)
+
+
+def group_key(group: GroupResult) -> tuple[float, float | None]:
+    return round(group.frequency_hz, 3), group.temperature_c
 
 
 def _minus(b: float | None, a: float | None) -> float | None:
@@ -27,72 +36,66 @@ def _minus(b: float | None, a: float | None) -> float | None:
 
 
 def _rss(*values: float | None) -> float | None:
-    return None if any(v is None for v in values) else math.sqrt(sum(v * v for v in values))  # type: ignore[operator]
+    present = [v for v in values if v is not None]
+    return None if len(present) < len(values) else math.sqrt(sum(v * v for v in present))
 
 
-def type_a_expanded(detail: dict[str, Any], field: str) -> float | None:
-    """Expanded uncertainty from the included Type A term alone (field: slope_u_mv_per_db or intercept_u_db)."""
-    u = detail.get("uncertainty")
-    if u is None:
+def type_a_expanded(group: GroupResult, u_field: str) -> float | None:
+    """Expanded uncertainty from the included Type A term alone (u_field: slope_u_mv_per_db or intercept_u_db,
+    the keys a budget's terms use too)."""
+    if group.budget is None:
         return None
-    a_terms = [t[field] for t in u["terms"] if t["type"] == "A" and t["included"]]
-    return u["k"] * math.sqrt(sum(x * x for x in a_terms))
+    u = group.budget.as_dict()
+    a_terms = [t[u_field] for t in u["terms"] if t["type"] == "A" and t["included"]]
+    return float(u["k"]) * math.sqrt(sum(x * x for x in a_terms))
 
 
-def compare_reports(a: dict[str, Any], b: dict[str, Any]) -> dict[str, Any]:
-    """The comparison object: both reports, the differences B - A, and groups found in one run only."""
-    in_b = {group_key(g): (g, d) for g, d in zip(b["groups"], b["details"])}
+@dataclass
+class Difference:
+    """B minus A for one group found in both runs, with the uncertainties of the differences."""
+
+    a: GroupResult
+    b: GroupResult
+    values: dict[str, float | None]   # by JSON key: each declared difference, then its uncertainties
+
+    @classmethod
+    def of(cls, a: GroupResult, b: GroupResult) -> Difference:
+        values: dict[str, float | None] = {f.diff: _minus(b.value(f.name), a.value(f.name))
+                                           for f in DIFFERENCES if f.diff}
+        for f in WITH_U:
+            assert f.with_u is not None
+            values[u_key(f)] = _rss(a.value(f.with_u), b.value(f.with_u))
+        for f in WITH_U:
+            assert f.with_u is not None
+            values[u_key(f, type_a=True)] = _rss(type_a_expanded(a, f.with_u), type_a_expanded(b, f.with_u))
+        return cls(a, b, values)
+
+    def to_json(self) -> dict[str, Any]:
+        return {"frequency_hz": self.a.frequency_hz, "temperature_c": self.a.temperature_c, **self.values}
+
+
+@dataclass
+class Comparison:
+    a: Report
+    b: Report
+    differences: list[Difference]
+    only_in_a_hz: list[float]
+    only_in_b_hz: list[float]
+
+    def to_json(self) -> dict[str, Any]:
+        """The `report A B --json` object: both reports, the differences B - A, groups found in one run only."""
+        return {"run_ids": [self.a.run_id, self.b.run_id], "runs": [self.a.to_json(), self.b.to_json()],
+                "differences": [d.to_json() for d in self.differences],
+                "only_in_a_hz": self.only_in_a_hz, "only_in_b_hz": self.only_in_b_hz}
+
+
+def compare_reports(a: Report, b: Report) -> Comparison:
+    in_b = {group_key(g): g for g in b.groups}
     rows, only_a = [], []
-    for ga, da in zip(a["groups"], a["details"]):
-        match = in_b.pop(group_key(ga), None)
-        if match is None:
-            only_a.append(ga["frequency_hz"])
-            continue
-        gb, db = match
-        row: dict[str, Any] = {"frequency_hz": ga["frequency_hz"], "temperature_c": ga["temperature_c"]}
-        for src, dst in DIFFERENCES:
-            row[dst] = _minus(gb[src], ga[src])
-        row["slope_diff_u_mv_per_db"] = _rss(ga["slope_u_mv_per_db"], gb["slope_u_mv_per_db"])
-        row["intercept_diff_u_db"] = _rss(ga["intercept_u_db"], gb["intercept_u_db"])
-        row["slope_diff_u_type_a_mv_per_db"] = _rss(type_a_expanded(da, "slope_u_mv_per_db"),
-                                                    type_a_expanded(db, "slope_u_mv_per_db"))
-        row["intercept_diff_u_type_a_db"] = _rss(type_a_expanded(da, "intercept_u_db"),
-                                                 type_a_expanded(db, "intercept_u_db"))
-        rows.append(row)
-    return {"run_ids": [a["run_id"], b["run_id"]], "runs": [a, b], "differences": rows,
-            "only_in_a_hz": only_a, "only_in_b_hz": [g["frequency_hz"] for g, _ in in_b.values()]}
-
-
-def _label(report: dict[str, Any]) -> str:
-    return f"run {report['run_id']} {report['name']}" + (f" (DUT {report['dut_id']})" if report.get("dut_id") else "")
-
-
-def _exceeds(diff: float | None, u: float | None) -> str:
-    return "!" if diff is not None and u is not None and abs(diff) > u else " "
-
-
-def render_comparison(cmp: dict[str, Any]) -> str:
-    a, b = cmp["runs"]
-    by_key = {group_key(g): (g, d) for g, d in zip(b["groups"], b["details"])}
-    lines = [f"A = {_label(a)}", f"B = {_label(b)}",
-             f"{'freq MHz':>10} {'slope A':>8} {'slope B':>8} {'B-A mV/dB':>17}  {'icpt A':>7} {'icpt B':>7} "
-             f"{'B-A dB':>14}  {'range A dBm':>17} {'range B dBm':>17} {'DR B-A':>7}"]
-    a_by_key = {group_key(g): (g, d) for g, d in zip(a["groups"], a["details"])}
-    for row in cmp["differences"]:
-        key = (round(row["frequency_hz"], 3), row["temperature_c"])
-        (ga, da), (gb, db) = a_by_key[key], by_key[key]
-        ds = (f"{num(row['slope_diff_mv_per_db'], '+.3f')} ±{num(row['slope_diff_u_type_a_mv_per_db'], '.3f')}"
-              + _exceeds(row["slope_diff_mv_per_db"], row["slope_diff_u_type_a_mv_per_db"]))
-        di = (f"{num(row['intercept_diff_db'], '+.2f')} ±{num(row['intercept_diff_u_type_a_db'], '.2f')}"
-              + _exceeds(row["intercept_diff_db"], row["intercept_diff_u_type_a_db"]))
-        lines.append(f"{row['frequency_hz'] / 1e6:10.3f} {num(ga['slope_mv_per_db'], '.3f'):>8} "
-                     f"{num(gb['slope_mv_per_db'], '.3f'):>8} {ds:>17}  {num(ga['intercept_dbm'], '.2f'):>7} "
-                     f"{num(gb['intercept_dbm'], '.2f'):>7} {di:>14}  {range_text(ga, da):>17} "
-                     f"{range_text(gb, db):>17} {num(row['dynamic_range_diff_db'], '+.1f'):>7}")
-    lines.append("± is the Type A part of both runs' expanded uncertainties (k = 2), right on one bench where the "
-                 "Type B terms are shared; '!' marks a difference larger than it. With all terms: "
-                 "slope_diff_u_* and intercept_diff_u_* in --json.")
-    for which, freqs in (("A", cmp["only_in_a_hz"]), ("B", cmp["only_in_b_hz"])):
-        if freqs:
-            lines.append(f"only in {which}: " + ", ".join(f"{f / 1e6:g} MHz" for f in freqs))
-    return "\n".join(lines)
+    for ga in a.groups:
+        gb = in_b.pop(group_key(ga), None)
+        if gb is None:
+            only_a.append(ga.frequency_hz)
+        else:
+            rows.append(Difference.of(ga, gb))
+    return Comparison(a, b, rows, only_a, [g.frequency_hz for g in in_b.values()])

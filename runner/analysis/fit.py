@@ -1,23 +1,26 @@
 """Characterisation numbers from stored points: fit, conformance, dynamic range, uncertainties.
 
-Reads the store only. Per group (one frequency): the least-squares line V = a + b*P over the
-plan's fit range, slope b (mV/dB), intercept -a/b (dBm, where the line reaches 0 V), the
-conformance error (V - a - b*P)/b (dB) of every point, and the contiguous range around the fit
-range where |error| stays within the limit. Uncertainties follow JCGM 100:2008
-(runner/uncertainty.py): Type A from the fit and the reading scatter, Type B from what the plan
+Pure: it takes point rows and returns results. Per group (one frequency): the least-squares line
+V = a + b*P over the plan's fit range, slope b (mV/dB), intercept -a/b (dBm, where the line
+reaches 0 V), the conformance error (V - a - b*P)/b (dB) of every point, and the contiguous range
+around the fit range where |error| stays within the limit. Uncertainties follow JCGM 100:2008
+(analysis/uncertainty.py): Type A from the fit and the reading scatter, Type B from what the plan
 states about the bench, expanded with k = 2.
 """
 
 from __future__ import annotations
 
+import json
 import math
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from nightbench.analysis.uncertainty import Budget, build_budget, expand, type_a_of_mean
+from nightbench.store.fields import BY_NAME, FIELDS, PUBLIC_KEYS, row_values
 
 
 @dataclass
@@ -44,7 +47,7 @@ class LineFit:
         return math.sqrt(max(var, 0.0))
 
 
-def fit_line(x: Sequence[float], y: Sequence[float]) -> LineFit:
+def fit_line(x: ArrayLike, y: ArrayLike) -> LineFit:
     """Ordinary least squares y = a + b x with the textbook standard errors."""
     xs, ys = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
     n = len(xs)
@@ -91,12 +94,7 @@ def range_within(levels: np.ndarray, errors: np.ndarray, fit_dbm: tuple[float, f
     return round(walk(-1), 1), round(walk(+1), 1)
 
 
-PUBLIC_KEYS = ("frequency_hz", "temperature_c", "slope_mv_per_db", "slope_u_mv_per_db", "intercept_dbm",
-               "intercept_u_db", "fit_dbm", "error_limit_db", "range_low_dbm", "range_high_dbm",
-               "dynamic_range_db", "max_abs_error_db", "points", "unsettled_points")
-
-
-def exclusion(row: dict[str, Any]) -> str | None:
+def exclusion(row: Mapping[str, Any]) -> str | None:
     """Why a stored point cannot be used (None if it can): overload first, then unsettled."""
     if row.get("overload"):
         return "overload"
@@ -109,27 +107,47 @@ def exclusion(row: dict[str, Any]) -> str | None:
 
 @dataclass
 class GroupResult:
+    """One group's results: an attribute (or property) for every declared field (store/fields.py),
+    plus what the details, the tables and the plots need besides."""
+
     frequency_hz: float
     temperature_c: float | None
-    slope_mv_per_db: float | None
-    slope_u_mv_per_db: float | None
-    intercept_dbm: float | None
-    intercept_u_db: float | None
     fit_dbm: list[float]
     error_limit_db: float
-    range_low_dbm: float | None
-    range_high_dbm: float | None
-    dynamic_range_db: float | None
-    max_abs_error_db: float | None
     points: int
     unsettled_points: int          # did not settle within settle.timeout_s (overloads counted apart)
     overload_points: int = 0
-    note: str | None = None
+    slope_mv_per_db: float | None = None
+    slope_u_mv_per_db: float | None = None
+    intercept_dbm: float | None = None
+    intercept_u_db: float | None = None
+    range_low_dbm: float | None = None
+    range_high_dbm: float | None = None
+    dynamic_range_db: float | None = None
+    max_abs_error_db: float | None = None
+    note: str | None = None        # why the group could not be fitted
     line: LineFit | None = None
     budget: Budget | None = None
     range_low_at_sweep_end: bool = False    # the range end is the last point swept, not a crossing
     range_high_at_sweep_end: bool = False
     curve: list[dict[str, Any]] = field(default_factory=list)   # every point: level, value, error, status
+
+    @property
+    def residual_sd_v(self) -> float | None:
+        return None if self.line is None else self.line.residual_sd_v
+
+    @property
+    def uncertainty_json(self) -> str | None:
+        return None if self.budget is None else json.dumps(self.budget.as_dict())
+
+    def value(self, name: str) -> Any:
+        """A declared field's value by name."""
+        return getattr(self, BY_NAME[name].name)
+
+    def at_sweep_end(self, name: str) -> bool:
+        """Whether a range end (range_low_dbm or range_high_dbm) is the end of the sweep, not a crossing."""
+        return {"range_low_dbm": self.range_low_at_sweep_end,
+                "range_high_dbm": self.range_high_at_sweep_end}.get(name, False)
 
     @property
     def errors_db(self) -> list[tuple[float, float]]:
@@ -141,8 +159,12 @@ class GroupResult:
                 if c["status"] not in ("in_fit", "outside_fit")]
 
     def public(self) -> dict[str, Any]:
-        """The report --json group shape from DESIGN.md, exactly."""
-        return {k: getattr(self, k) for k in PUBLIC_KEYS}
+        """The `report --json` group: exactly the public fields (docs/design.md)."""
+        return {k: self.value(k) for k in PUBLIC_KEYS}
+
+    def stored(self) -> dict[str, Any]:
+        """One row of the fits table, by column (store/fields.py FIT_COLUMNS)."""
+        return row_values({f.name: self.value(f.name) for f in FIELDS})
 
     def detail(self) -> dict[str, Any]:
         """Everything else a reader or a plot needs: the line, the budget, every point and why."""
@@ -157,17 +179,17 @@ class GroupResult:
                 "excluded": self.excluded, "curve": self.curve}
 
 
-def analyse_group(frequency_hz: float, rows: list[dict[str, Any]], fit_dbm: tuple[float, float],
+def analyse_group(frequency_hz: float, rows: Sequence[Mapping[str, Any]], fit_dbm: tuple[float, float],
                   limit_db: float, accuracy: dict[str, float] | None = None,
                   temperature_c: float | None = None) -> GroupResult:
-    """Fit one group of stored points (dicts with power_dbm, value_v, settled, overload and,
+    """Fit one group of stored points (mappings with power_dbm, value_v, settled, overload and,
     for the reading-scatter term, stdev_v and samples)."""
     rows = sorted(rows, key=lambda r: r["power_dbm"])
     reasons = [exclusion(r) for r in rows]
     usable = [r for r, why in zip(rows, reasons) if why is None]
-    base = dict(frequency_hz=frequency_hz, temperature_c=temperature_c, fit_dbm=list(fit_dbm),
-                error_limit_db=limit_db, points=len(rows), unsettled_points=reasons.count("unsettled"),
-                overload_points=reasons.count("overload"))
+    group = GroupResult(frequency_hz=frequency_hz, temperature_c=temperature_c, fit_dbm=list(fit_dbm),
+                        error_limit_db=limit_db, points=len(rows), unsettled_points=reasons.count("unsettled"),
+                        overload_points=reasons.count("overload"))
     levels = np.array([r["power_dbm"] for r in usable], dtype=float)
     values = np.array([r["value_v"] for r in usable], dtype=float)
     in_fit = (levels >= fit_dbm[0] - 1e-9) & (levels <= fit_dbm[1] + 1e-9)
@@ -186,38 +208,37 @@ def analyse_group(frequency_hz: float, rows: list[dict[str, Any]], fit_dbm: tupl
     try:
         fit = fit_line(levels[in_fit], values[in_fit])
     except ValueError as exc:
-        return GroupResult(slope_mv_per_db=None, slope_u_mv_per_db=None, intercept_dbm=None, intercept_u_db=None,
-                           range_low_dbm=None, range_high_dbm=None, dynamic_range_db=None,
-                           max_abs_error_db=None, note=str(exc), curve=curve(None), **base)
+        group.note, group.curve = str(exc), curve(None)
+        return group
     errors = conformance_db(fit, levels, values)
     low, high = range_within(levels, errors, fit_dbm, limit_db)
     u_y = [_u_mean(r) for r, ok in zip(usable, in_fit) if ok]
     budget = build_budget(slope_v_per_db=fit.slope_v_per_db, intercept_v=fit.intercept_v,
                           u_slope_fit=fit.u_slope_v_per_db, u_intercept_fit_db=fit.u_intercept_dbm,
                           residual_sd_v=fit.residual_sd_v, x=levels[in_fit], u_y=u_y, accuracy=accuracy or {})
-    return GroupResult(
-        slope_mv_per_db=fit.slope_v_per_db * 1e3,
-        slope_u_mv_per_db=expand(budget.slope_u_mv_per_db),
-        intercept_dbm=fit.intercept_dbm,
-        intercept_u_db=expand(budget.intercept_u_db),
-        range_low_dbm=low, range_high_dbm=high,
-        dynamic_range_db=None if low is None or high is None else round(high - low, 1),
-        max_abs_error_db=float(np.max(np.abs(errors[in_fit]))),
-        line=fit, budget=budget,
-        range_low_at_sweep_end=low is not None and low == round(float(levels.min()), 1),
-        range_high_at_sweep_end=high is not None and high == round(float(levels.max()), 1),
-        curve=curve(errors), **base)
+    group.slope_mv_per_db = fit.slope_v_per_db * 1e3
+    group.slope_u_mv_per_db = expand(budget.slope_u_mv_per_db)
+    group.intercept_dbm = fit.intercept_dbm
+    group.intercept_u_db = expand(budget.intercept_u_db)
+    group.range_low_dbm, group.range_high_dbm = low, high
+    group.dynamic_range_db = None if low is None or high is None else round(high - low, 1)
+    group.max_abs_error_db = float(np.max(np.abs(errors[in_fit])))
+    group.line, group.budget = fit, budget
+    group.range_low_at_sweep_end = low is not None and low == round(float(levels.min()), 1)
+    group.range_high_at_sweep_end = high is not None and high == round(float(levels.max()), 1)
+    group.curve = curve(errors)
+    return group
 
 
-def _u_mean(row: dict[str, Any]) -> float | None:
+def _u_mean(row: Mapping[str, Any]) -> float | None:
     stdev, n = row.get("stdev_v"), row.get("samples") or 0
     return None if stdev is None or n < 2 else type_a_of_mean(stdev, n)
 
 
-def analyse_run(points: list[dict[str, Any]], fit_dbm: tuple[float, float], limit_db: float,
+def analyse_run(points: Sequence[Mapping[str, Any]], fit_dbm: tuple[float, float], limit_db: float,
                 accuracy: dict[str, float] | None = None) -> list[GroupResult]:
     """One result per group: each frequency (and, once points carry it, each temperature)."""
-    groups: dict[tuple[float, float | None], list[dict[str, Any]]] = {}
+    groups: dict[tuple[float, float | None], list[Mapping[str, Any]]] = {}
     for row in points:
         groups.setdefault((row["frequency_hz"], row.get("temperature_c")), []).append(row)
     return [analyse_group(f, rows, fit_dbm, limit_db, accuracy, temperature_c=t)

@@ -19,6 +19,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 K_EXPANSION = 2.0
 
@@ -121,7 +122,7 @@ def propagate_through_fit(x: np.ndarray, u_y: np.ndarray, intercept_v: float,
 
 
 def build_budget(*, slope_v_per_db: float, intercept_v: float, u_slope_fit: float, u_intercept_fit_db: float,
-                 residual_sd_v: float, x: Sequence[float], u_y: Sequence[float | None],
+                 residual_sd_v: float, x: ArrayLike, u_y: Sequence[float | None],
                  accuracy: dict[str, float]) -> Budget:
     """The budget of one fitted group; `accuracy` holds the plan's Type B half-widths by plan key."""
     b_mv = abs(slope_v_per_db) * 1e3

@@ -1,4 +1,4 @@
-"""One row per point, as CSV or JSON (DESIGN.md export columns first).
+"""One row per point, as CSV or JSON (the export columns of docs/design.md first).
 
 CSV is only the table (header row first, so any reader takes it); JSON adds the run's metadata
 and its stored plan, so an export alone says what was measured, on what, and how.

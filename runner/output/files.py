@@ -4,15 +4,15 @@ from __future__ import annotations
 
 import csv
 from pathlib import Path
-from typing import Any
 
+from nightbench.analysis.report import Report
 from nightbench.drivers.errors import InputError
 from nightbench.output.export import write_export
 from nightbench.store.db import Store
+from nightbench.store.fields import CSV_COLUMNS, FIELDS, row_values
 
-RESULT_COLUMNS = ("run_id", "frequency_hz", "temperature_c", "slope_mv_per_db", "slope_u_mv_per_db",
-                  "intercept_dbm", "intercept_u_db", "range_low_dbm", "range_high_dbm", "dynamic_range_db",
-                  "max_abs_error_db", "points", "unsettled_points", "overload_points")
+# results.csv: the run, then the declared fields meant for a spreadsheet (store/fields.py)
+RESULT_COLUMNS = ("run_id", *CSV_COLUMNS)
 
 
 def check_out_dir(out: str) -> Path:
@@ -33,19 +33,20 @@ def prepare_dir(out: str) -> Path:
     return path
 
 
-def write_results_csv(reports: list[dict[str, Any]], path: Path) -> Path:
+def write_results_csv(reports: list[Report], path: Path) -> Path:
+    """One row per group of every report."""
+    fields = [f for f in FIELDS if f.csv]
     with path.open("w", encoding="utf-8", newline="") as fh:
         writer = csv.DictWriter(fh, fieldnames=RESULT_COLUMNS, lineterminator="\n")
         writer.writeheader()
         for report in reports:
-            for g, d in zip(report["groups"], report["details"]):
-                row = {k: g.get(k) for k in RESULT_COLUMNS}
-                row.update(run_id=report["run_id"], overload_points=d["overload_points"])
-                writer.writerow(row)
+            for g in report.groups:
+                writer.writerow({"run_id": report.run_id,
+                                 **row_values({f.name: g.value(f.name) for f in fields}, fields)})
     return path
 
 
-def write_outputs(store: Store, reports: list[dict[str, Any]], comparison_text: str | None, out: Path) -> list[Path]:
+def write_outputs(store: Store, reports: list[Report], comparison_text: str | None, out: Path) -> list[Path]:
     """Everything a design review wants in one folder; returns the files written."""
     from nightbench.output.markdown import markdown_summary
     from nightbench.output.plots import write_plots
@@ -53,9 +54,9 @@ def write_outputs(store: Store, reports: list[dict[str, Any]], comparison_text: 
     files = write_plots(reports, out)
     files.append(write_results_csv(reports, out / "results.csv"))
     for report in reports:
-        path = out / f"points-run{report['run_id']}.csv"
+        path = out / f"points-run{report.run_id}.csv"
         with path.open("w", encoding="utf-8", newline="") as fh:
-            write_export(store, report["run_id"], "csv", fh)
+            write_export(store, report.run_id, "csv", fh)
         files.append(path)
     summary = out / "summary.md"
     summary.write_text(markdown_summary(reports, comparison_text, [f.name for f in files]), encoding="utf-8")

@@ -17,11 +17,12 @@ from pathlib import Path
 from typing import Any
 
 from nightbench.drivers.errors import InputError
+from nightbench.store.fields import FIT_COLUMNS, VIEW_COLUMNS, fits_table_sql
 
 SCHEMA_VERSION = 3   # 2: fits, run_counts, and the v_points / v_fits views; 3: jobs, service (docs/database.md)
 STATES = ("queued", "running", "completed", "interrupted", "failed")
 
-SCHEMA = """
+SCHEMA = f"""
 CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
 CREATE TABLE IF NOT EXISTS runs (
     id INTEGER PRIMARY KEY,
@@ -80,30 +81,7 @@ CREATE TABLE IF NOT EXISTS events (
     kind TEXT NOT NULL,
     message TEXT NOT NULL
 );
-CREATE TABLE IF NOT EXISTS fits (
-    run_id INTEGER NOT NULL REFERENCES runs(id),
-    frequency_hz REAL NOT NULL,
-    temperature_c REAL,
-    slope_mv_per_db REAL,
-    slope_u_mv_per_db REAL,
-    intercept_dbm REAL,
-    intercept_u_db REAL,
-    fit_low_dbm REAL NOT NULL,
-    fit_high_dbm REAL NOT NULL,
-    error_limit_db REAL NOT NULL,
-    range_low_dbm REAL,
-    range_high_dbm REAL,
-    dynamic_range_db REAL,
-    max_abs_error_db REAL,
-    points INTEGER NOT NULL,
-    unsettled_points INTEGER NOT NULL,
-    overload_points INTEGER NOT NULL,
-    residual_sd_v REAL,
-    note TEXT,
-    uncertainty_json TEXT,
-    analysed_at TEXT NOT NULL
-);
-CREATE INDEX IF NOT EXISTS fits_run ON fits(run_id);
+{fits_table_sql()}CREATE INDEX IF NOT EXISTS fits_run ON fits(run_id);
 -- points per run, kept by the database itself in the same transaction as each point, so listing
 -- runs costs one row per run instead of counting every point of a year (bench/store.py)
 CREATE TABLE IF NOT EXISTS run_counts (run_id INTEGER PRIMARY KEY, points_done INTEGER NOT NULL);
@@ -114,7 +92,7 @@ END;
 CREATE TRIGGER IF NOT EXISTS points_uncounted AFTER DELETE ON points BEGIN
     UPDATE run_counts SET points_done = points_done - 1 WHERE run_id = OLD.run_id;
 END;
--- the overnight queue (runner/queue.py): a job is a plan snapshot waiting for `serve`, then its run
+-- the overnight queue (service/queue.py): a job is a plan snapshot waiting for `serve`, then its run
 CREATE TABLE IF NOT EXISTS jobs (
     id INTEGER PRIMARY KEY,
     plan_name TEXT NOT NULL,
@@ -130,7 +108,7 @@ CREATE TABLE IF NOT EXISTS jobs (
     cancel_requested INTEGER NOT NULL DEFAULT 0,
     error TEXT
 );
--- the one `serve` of this database and its heartbeat (runner/service.py)
+-- the one `serve` of this database and its heartbeat (service/serve.py)
 CREATE TABLE IF NOT EXISTS service (
     id INTEGER PRIMARY KEY CHECK (id = 1),
     pid INTEGER NOT NULL,
@@ -148,7 +126,8 @@ INSERT OR REPLACE INTO run_counts (run_id, points_done) SELECT run_id, COUNT(*) 
 
 # The stable views: their names and columns are a documented contract (docs/database.md); the
 # tables under them may change, so they are dropped and re-created whenever the schema version moves.
-VIEWS = """
+# v_fits lists the declared result fields (store/fields.py) in their order.
+VIEWS = f"""
 DROP VIEW IF EXISTS v_points;
 CREATE VIEW v_points AS
 SELECT p.run_id, r.name AS run_name, r.dut_id, r.state AS run_state, r.started_at AS run_started_at,
@@ -159,18 +138,10 @@ FROM points p JOIN runs r ON r.id = p.run_id;
 DROP VIEW IF EXISTS v_fits;
 CREATE VIEW v_fits AS
 SELECT f.run_id, r.name AS run_name, r.dut_id, r.state AS run_state, r.started_at AS run_started_at,
-       r.finished_at AS run_finished_at, f.frequency_hz, f.temperature_c,
-       f.slope_mv_per_db, f.slope_u_mv_per_db, f.intercept_dbm, f.intercept_u_db,
-       f.fit_low_dbm, f.fit_high_dbm, f.error_limit_db, f.range_low_dbm, f.range_high_dbm,
-       f.dynamic_range_db, f.max_abs_error_db, f.points, f.unsettled_points, f.overload_points,
-       f.analysed_at
+       r.finished_at AS run_finished_at, {", ".join(f"f.{c}" for c in (*VIEW_COLUMNS, "analysed_at"))}
 FROM fits f JOIN runs r ON r.id = f.run_id;
 """
 
-FIT_COLUMNS = ("frequency_hz", "temperature_c", "slope_mv_per_db", "slope_u_mv_per_db", "intercept_dbm",
-               "intercept_u_db", "fit_low_dbm", "fit_high_dbm", "error_limit_db", "range_low_dbm",
-               "range_high_dbm", "dynamic_range_db", "max_abs_error_db", "points", "unsettled_points",
-               "overload_points", "residual_sd_v", "note", "uncertainty_json")
 
 
 def now_iso() -> str:
@@ -313,8 +284,9 @@ class Store:
         return self.conn.execute("SELECT * FROM points WHERE run_id=? ORDER BY idx", (run_id,)).fetchall()
 
     # -- fits ------------------------------------------------------------------------------
-    def save_fits(self, run_id: int, rows: list[dict[str, Any]]) -> None:
-        """Replace the stored fit results of a run (one row per group) in one transaction."""
+    def replace_fits(self, run_id: int, rows: list[dict[str, Any]]) -> None:
+        """Replace the stored fit results of a run (one row per group, keyed by FIT_COLUMNS) in one
+        transaction; analysis.report.save_fits builds the rows."""
         with self._transaction():
             self.conn.execute("DELETE FROM fits WHERE run_id=?", (run_id,))
             self.conn.executemany(

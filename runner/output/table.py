@@ -1,0 +1,184 @@
+"""Plain-text tables of a report and of a comparison, for the terminal.
+
+The columns are the declared result fields that have a header (store/fields.py): their labels,
+units and number formats come from there, so a field added there shows up here, in the Markdown
+summary and in the CSV without touching this module. Widths follow the content.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from typing import Any
+
+from nightbench.analysis.compare import Comparison, u_key
+from nightbench.analysis.fit import GroupResult
+from nightbench.analysis.report import Report
+from nightbench.analysis.uncertainty import AFFECTS, TERMS
+from nightbench.store.fields import BY_NAME, TABLE_FIELDS, Field
+
+FREQUENCY = BY_NAME["frequency_hz"]
+
+
+def num(value: float | None, fmt: str) -> str:
+    return "-" if value is None else format(value, fmt)
+
+
+def header(f: Field) -> str:
+    """'slope mV/dB': the label and the unit the tables show."""
+    return f"{f.header} {f.table_unit}".strip()
+
+
+def shown(f: Field, g: GroupResult, name: str | None = None, fmt: str | None = None) -> str:
+    """One value of a group as the tables show it (scaled, formatted; '-' for none)."""
+    value = g.value(name or f.name)
+    if value is not None and f.scale != 1.0:
+        value = value * f.scale
+    return num(value, fmt or f.fmt)
+
+
+def cell(f: Field, g: GroupResult) -> str:
+    """A table cell: 'value ±U' for a field with an uncertainty, 'low .. high' for a span (a '<=' or
+    '>=' marks an end that is the end of the sweep, not a crossing), else the value."""
+    text = shown(f, g)
+    if f.with_u:
+        return f"{text} ±{shown(f, g, f.with_u)}"
+    if f.to:
+        low = ("<=" if g.at_sweep_end(f.name) else "") + text
+        high = (">=" if g.at_sweep_end(f.to) else "") + shown(f, g, f.to)
+        return f"{low} .. {high}"
+    return text
+
+
+def align(rows: Sequence[Sequence[str]]) -> list[str]:
+    """Right-aligned columns as wide as their widest cell."""
+    widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]
+    return ["  ".join(c.rjust(w) for c, w in zip(r, widths)) for r in rows]
+
+
+def title(report: Report) -> str:
+    return (f"run {report.run_id} {report.name} ({report.state})"
+            + (f", DUT {report.dut_id}" if report.dut_id else ""))
+
+
+def render_table(report: Report) -> str:
+    rows = [[header(f) for f in TABLE_FIELDS]] + [[cell(f, g) for f in TABLE_FIELDS] for g in report.groups]
+    table = align(rows)
+    width = max(len(r[0]) for r in rows)
+    lines = [title(report), table[0]]
+    for line, g in zip(table[1:], report.groups):
+        lines.append(line)
+        if g.note:
+            lines.append(f"{'':{width}} not fitted: {g.note}")
+    if not report.groups:
+        lines.append(f"{'':{width}} no points stored for this run")
+    s = report.settings
+    lines.append(f"fit over {s.fit_dbm[0]:g} .. {s.fit_dbm[1]:g} dBm; range where |error| <= "
+                 f"{s.error_limit_db:g} dB ('<=', '>=': the sweep ends first); "
+                 f"± is the expanded uncertainty U (k = {s.k:g})")
+    lines += ["", *render_budget(report), "", *render_excluded(report)]
+    return "\n".join(lines)
+
+
+def render_budget(report: Report) -> list[str]:
+    """Two small tables (slope, intercept): one row per group, one column per term."""
+    keys = list(TERMS)
+    out = []
+    for quantity, unit, fmt in (("slope", "mV/dB", ".4f"), ("intercept", "dB", ".3f")):
+        term_key = "slope_u_mv_per_db" if quantity == "slope" else "intercept_u_db"
+        out.append(f"{quantity} budget: standard uncertainties in {unit} (* = combined)")
+        widths = [max(len(k), 7) + 1 for k in keys]
+        out.append(f"{header(FREQUENCY):>10} " + " ".join(f"{k:>{w}}" for k, w in zip(keys, widths))
+                   + f" {'u_c':>8} {'U (k=2)':>8}")
+        for g in report.groups:
+            if g.budget is None:
+                continue
+            u = g.budget.as_dict()
+            terms = {t["key"]: t for t in u["terms"]}
+            cells = [f"{_term(terms.get(k), term_key, fmt, quantity in AFFECTS[k]):>{w}}"
+                     for k, w in zip(keys, widths)]
+            uc = u["slope_uc_mv_per_db"] if quantity == "slope" else u["intercept_uc_db"]
+            big = u["slope_U_mv_per_db"] if quantity == "slope" else u["intercept_U_db"]
+            out.append(f"{shown(FREQUENCY, g):>10} " + " ".join(cells) + f" {uc:8{fmt}} {big:8{fmt}}")
+    out.append("terms:")
+    for t in report.settings.to_json()["uncertainty_terms"]:
+        stated = ""
+        if "plan_key" in t:
+            stated = (f", ±{t['half_width']:g} from {t['plan_key']}" if t["half_width"]
+                      else f", not stated ({t['plan_key']} = 0)")
+        out.append(f"  {t['key']} (Type {t['type']}{stated}): {t['what']}")
+    return out
+
+
+def _term(term: dict[str, Any] | None, key: str, fmt: str, affects: bool) -> str:
+    if term is None:
+        return "n/a "    # e.g. no reading scatter when a point has a single sample
+    if not affects:
+        return "- "
+    return num(term[key], fmt) + ("*" if term["included"] else " ")
+
+
+def render_excluded(report: Report, shown_levels: int = 12) -> list[str]:
+    """Points left out of the analysis and why, per group."""
+    out = ["points left out of the fit and the range:"]
+    for g in report.groups:
+        by_reason: dict[str, list[float]] = {}
+        for e in g.excluded:
+            by_reason.setdefault(e["reason"], []).append(e["power_dbm"])
+        for reason, levels in by_reason.items():
+            listed = ", ".join(f"{p:g}" for p in levels[:shown_levels])
+            if len(levels) > shown_levels:
+                listed += f" and {len(levels) - shown_levels} more"
+            out.append(f"  {shown(FREQUENCY, g)} MHz: {len(levels)} {reason} at {listed} dBm")
+    if len(out) == 1:
+        out[0] += " none"
+    return out
+
+
+# -- two runs ---------------------------------------------------------------------------------
+
+def _label(report: Report) -> str:
+    return f"run {report.run_id} {report.name}" + (f" (DUT {report.dut_id})" if report.dut_id else "")
+
+
+def _diff_unit(f: Field) -> str:
+    return "dB" if f.unit == "dBm" else f.unit   # a difference of two levels is a ratio
+
+
+def _exceeds(diff: float | None, u: float | None) -> str:
+    return "!" if diff is not None and u is not None and abs(diff) > u else " "
+
+
+def render_comparison(cmp: Comparison) -> str:
+    """Per matching group: A, B and B - A ± its Type A uncertainty for a field with one; both
+    ranges; B - A for the other compared fields."""
+    fields = [f for f in TABLE_FIELDS if f.diff]
+    head = [header(FREQUENCY)]
+    for f in fields:
+        if f.with_u:
+            head += [f"{f.header} A", f"{f.header} B", f"B-A {_diff_unit(f)}"]
+        elif f.to:
+            head += [f"{f.header} A {f.unit}", f"{f.header} B {f.unit}"]
+        else:
+            head.append(f"{f.header} B-A")
+    rows = [head]
+    for d in cmp.differences:
+        row = [shown(FREQUENCY, d.a)]
+        for f in fields:
+            assert f.diff is not None
+            if f.with_u:
+                diff, u = d.values[f.diff], d.values[u_key(f, type_a=True)]
+                row += [shown(f, d.a), shown(f, d.b), f"{num(diff, '+' + f.fmt)} ±{num(u, f.fmt)}" + _exceeds(diff, u)]
+            elif f.to:
+                row += [cell(f, d.a), cell(f, d.b)]
+            else:
+                row.append(num(d.values[f.diff], "+" + f.fmt))
+        rows.append(row)
+    lines = [f"A = {_label(cmp.a)}", f"B = {_label(cmp.b)}", *align(rows)]
+    lines.append("± is the Type A part of both runs' expanded uncertainties (k = 2), right on one bench where the "
+                 "Type B terms are shared; '!' marks a difference larger than it. With all terms: "
+                 "slope_diff_u_* and intercept_diff_u_* in --json.")
+    for which, freqs in (("A", cmp.only_in_a_hz), ("B", cmp.only_in_b_hz)):
+        if freqs:
+            lines.append(f"only in {which}: " + ", ".join(f"{f / 1e6:g} MHz" for f in freqs))
+    return "\n".join(lines)
+

@@ -1,0 +1,93 @@
+"""The result fields of one fitted group, declared once.
+
+The same list drives the `report --json` groups, the terminal and Markdown tables, results.csv,
+the B - A comparison, and the SQL of the `fits` table and the `v_fits` view. It lives in the
+store because the store is the lowest layer that needs it (the store imports nothing above it);
+analysis and output import it from here.
+
+The JSON group keys (docs/design.md) and the v_fits columns (docs/database.md) are contracts:
+add fields at the end of their kind, never rename one. A new stored field also needs a schema
+version and a migration (store/schema.py), because `CREATE TABLE IF NOT EXISTS` leaves old files as
+they are.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+
+@dataclass(frozen=True)
+class Field:
+    name: str                 # JSON key; also the SQL and CSV column unless `columns` says otherwise
+    unit: str                 # of the value as stored and in JSON ('' for counts and text)
+    fmt: str = ""             # format spec of a value in the tables
+    header: str | None = None  # column label in the tables; None: no column of its own
+    public: bool = True       # in the `report --json` groups
+    sql: str = "REAL"         # type (and constraint) in the fits table
+    view: bool = True         # a column of v_fits
+    csv: bool = True          # a column of results.csv
+    columns: tuple[str, ...] = ()  # SQL/CSV columns of a pair value (fit_dbm is stored as low, high)
+    scale: float = 1.0        # the tables show value * scale ...
+    shown_unit: str | None = None  # ... in this unit (default: `unit`)
+    with_u: str | None = None  # the field of its expanded uncertainty: shown as 'value ±U'
+    to: str | None = None     # the other end of a span: shown as 'low .. high'
+    diff: str | None = None   # its key in the B - A comparison
+
+    @property
+    def sql_columns(self) -> tuple[str, ...]:
+        return self.columns or (self.name,)
+
+    @property
+    def table_unit(self) -> str:
+        return self.unit if self.shown_unit is None else self.shown_unit
+
+    def split(self, value: Any) -> tuple[Any, ...]:
+        """The value as its SQL columns: a pair becomes two, anything else stays one."""
+        if self.columns:
+            values = tuple(value)
+            assert len(values) == len(self.columns), (self.name, value)
+            return values
+        return (value,)
+
+
+FIELDS: tuple[Field, ...] = (
+    Field("frequency_hz", "Hz", ".3f", "freq", sql="REAL NOT NULL", scale=1e-6, shown_unit="MHz"),
+    Field("temperature_c", "C", ".1f"),
+    Field("slope_mv_per_db", "mV/dB", ".3f", "slope", with_u="slope_u_mv_per_db", diff="slope_diff_mv_per_db"),
+    Field("slope_u_mv_per_db", "mV/dB", ".3f"),
+    Field("intercept_dbm", "dBm", ".2f", "intercept", with_u="intercept_u_db", diff="intercept_diff_db"),
+    Field("intercept_u_db", "dB", ".2f"),
+    Field("fit_dbm", "dBm", "g", sql="REAL NOT NULL", csv=False, columns=("fit_low_dbm", "fit_high_dbm")),
+    Field("error_limit_db", "dB", "g", sql="REAL NOT NULL", csv=False),
+    Field("range_low_dbm", "dBm", ".1f", "range", to="range_high_dbm", diff="range_low_diff_db"),
+    Field("range_high_dbm", "dBm", ".1f", diff="range_high_diff_db"),
+    Field("dynamic_range_db", "dB", ".1f", "DR", diff="dynamic_range_diff_db"),
+    Field("max_abs_error_db", "dB", ".3f", "max|err|", diff="max_abs_error_diff_db"),
+    Field("points", "", "d", "points", sql="INTEGER NOT NULL"),
+    Field("unsettled_points", "", "d", "unsettled", sql="INTEGER NOT NULL"),
+    Field("overload_points", "", "d", public=False, sql="INTEGER NOT NULL"),
+    Field("residual_sd_v", "V", ".3g", public=False, view=False, csv=False),
+    Field("note", "", "s", public=False, sql="TEXT", view=False, csv=False),
+    Field("uncertainty_json", "", "s", public=False, sql="TEXT", view=False, csv=False),
+)
+
+BY_NAME = {f.name: f for f in FIELDS}
+PUBLIC_KEYS = tuple(f.name for f in FIELDS if f.public)
+FIT_COLUMNS = tuple(c for f in FIELDS for c in f.sql_columns)
+VIEW_COLUMNS = tuple(c for f in FIELDS if f.view for c in f.sql_columns)
+CSV_COLUMNS = tuple(c for f in FIELDS if f.csv for c in f.sql_columns)
+TABLE_FIELDS = tuple(f for f in FIELDS if f.header is not None)
+
+
+def row_values(values: dict[str, Any], fields: Sequence[Field] = FIELDS) -> dict[str, Any]:
+    """Field values by name -> values by SQL/CSV column (pairs split)."""
+    return {c: v for f in fields for c, v in zip(f.sql_columns, f.split(values[f.name]))}
+
+
+def fits_table_sql() -> str:
+    """`CREATE TABLE fits`: the run, every stored column in declaration order, when it was analysed."""
+    cols = [f"    {c} {f.sql}" for f in FIELDS for c in f.sql_columns]
+    return ("CREATE TABLE IF NOT EXISTS fits (\n    run_id INTEGER NOT NULL REFERENCES runs(id),\n"
+            + ",\n".join(cols) + ",\n    analysed_at TEXT NOT NULL\n);\n")
