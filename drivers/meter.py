@@ -4,24 +4,38 @@ from __future__ import annotations
 
 import math
 import re
+from collections.abc import Callable, Sequence
 
 from nightbench.drivers.dialect import METER_COMMANDS
 from nightbench.drivers.errors import InstrumentError
+from nightbench.drivers.line import LineSession, SessionRole
 from nightbench.drivers.scpi import ScpiSession
+from nightbench.drivers.transport import Link
 
 # SCPI-1999 vol. 1, 7.2.1: +9.9E37 is the value an instrument returns for overrange.
 OVERRANGE = 9.9e37
 
 
-class ScpiDmm:
+class ScpiDmm(SessionRole):
     """A DMM read one triggered reading at a time (READ? by default)."""
 
     def __init__(self, session: ScpiSession, *, nplc: float | None = None, range_v: float | None = None,
                  commands: dict[str, str] | None = None) -> None:
-        self.session = session
+        self.session: ScpiSession = session
         self.nplc = nplc
         self.range_v = range_v
         self.commands = commands or dict(METER_COMMANDS)
+
+    @classmethod
+    def open(cls, link: Link, *, nplc: float | None = None, range_v: float | None = None,
+             commands: dict[str, str] | None = None) -> ScpiDmm:
+        """A DMM on a new link (not yet proven to answer: see `prove`)."""
+        table = commands or dict(METER_COMMANDS)
+        session = ScpiSession(link.open(), "meter", opener=link.open, error_query=table["error_query"])
+        return cls(session, nplc=nplc, range_v=range_v, commands=table)
+
+    def prove(self) -> None:
+        self.session.identify()
 
     def configure(self) -> None:
         c = self.commands
@@ -33,12 +47,15 @@ class ScpiDmm:
             commands.append(c["set_nplc"].format(nplc=self.nplc))
         self.session.apply(commands)
 
+    def reconnect(self, should_stop: Callable[[], bool]) -> None:
+        self.session.reconnect(should_stop)
+
     def read(self, *, checked: bool = False) -> float:
         """One reading in volts; +/-inf for an overrange reading. `checked` asks the error queue
         in the same round trip (ScpiError if the meter reported anything)."""
         command = self.commands["read"]
         reply = self.session.query_checked(command) if checked else self.session.query(command)
-        return _volts(reply, self.session.resource, command)
+        return _volts(reply, self.resource, command)
 
 
 def _volts(reply: str, resource: str, command: str) -> float:
@@ -51,13 +68,17 @@ def _volts(reply: str, resource: str, command: str) -> float:
     return value
 
 
-class SerialAdc:
+class SerialAdc(SessionRole):
     """An ADC board with a line protocol: send `query`, pull the number out of the reply with
     `pattern` (first group), volts = counts * scale + offset. A reply containing `overload`
-    reads as overrange. No error queue: a reply that does not match is an InstrumentError."""
+    reads as overrange. No error queue: a reply that does not match is an InstrumentError.
 
-    def __init__(self, session: ScpiSession, *, query: str, pattern: str, scale: float, offset: float = 0.0,
-                 setup: list[str] = (), overload: str | None = None) -> None:
+    The session's identity query is optional; a board without one is proven alive, when opened
+    and after a reconnect, by answering `query` with a reading `pattern` can parse.
+    """
+
+    def __init__(self, session: LineSession, *, query: str, pattern: str, scale: float, offset: float = 0.0,
+                 setup: Sequence[str] = (), overload: str | None = None) -> None:
         self.session = session
         self.query_text = query
         self.pattern = re.compile(pattern)
@@ -66,9 +87,28 @@ class SerialAdc:
         self.setup = list(setup)
         self.overload = overload
 
+    @classmethod
+    def open(cls, link: Link, *, query: str, pattern: str, scale: float, offset: float = 0.0,
+             identify: str | None = None, setup: Sequence[str] = (), overload: str | None = None) -> SerialAdc:
+        """A board on a new link, with `identify` as its identity query if it has one."""
+        session = LineSession(link.open(), "meter", opener=link.open, idn_query=identify)
+        return cls(session, query=query, pattern=pattern, scale=scale, offset=offset, setup=setup,
+                   overload=overload)
+
     def configure(self) -> None:
         for command in self.setup:
             self.session.query(command)
+
+    def prove(self) -> None:
+        """Show the board is there and in step: its identity if it has a query for it, else one
+        reading that parses (InstrumentError otherwise)."""
+        if self.session.idn_query is not None:
+            self.session.identify()
+        else:
+            self.read()
+
+    def reconnect(self, should_stop: Callable[[], bool]) -> None:
+        self.session.reconnect(should_stop, proof=self.read)
 
     def read(self, *, checked: bool = False) -> float:
         reply = self.session.query(self.query_text)
@@ -77,9 +117,10 @@ class SerialAdc:
         match = self.pattern.search(reply)
         if not match:
             raise InstrumentError(f"ADC reply {reply!r} does not match {self.pattern.pattern!r}",
-                                  resource=self.session.resource, command=self.query_text)
+                                  resource=self.resource, command=self.query_text)
         try:
             counts = float(match.group(1) if match.groups() else match.group(0))
         except ValueError as exc:
-            raise InstrumentError(f"ADC reply {reply!r} holds no number", resource=self.session.resource) from exc
+            raise InstrumentError(f"ADC reply {reply!r} holds no number", resource=self.resource,
+                                  command=self.query_text) from exc
         return counts * self.scale + self.offset

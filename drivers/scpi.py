@@ -1,5 +1,5 @@
-"""A SCPI session over any transport: identification, synchronised settings, the error queue,
-and reconnects.
+"""A SCPI session: a line session (drivers/line.py) plus `*IDN?`, synchronised settings and the
+error queue.
 
 Settings go out as ONE program message, `<settings>;<readbacks>;*OPC?;<error query>`, so a batch
 costs one round trip (no Nagle stall between small writes), is known to be finished (`*OPC?`),
@@ -9,14 +9,13 @@ have happened (invariant 4), and the caller gets ScpiError, never a silent succe
 
 from __future__ import annotations
 
-import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 
-from nightbench.drivers.errors import ConnectionLost, InstrumentError, ScpiError
+from nightbench.drivers.errors import InstrumentError, ScpiError
+from nightbench.drivers.line import LineSession
 from nightbench.drivers.transport import Transport
 
 NO_ERROR_CODE = 0
-BACKOFF_S = (0.1, 0.3, 0.7, 1.5)   # waits before each reconnect attempt
 
 
 def join_program(commands: list[str]) -> str:
@@ -27,7 +26,9 @@ def join_program(commands: list[str]) -> str:
 
 def split_response(reply: str) -> list[str]:
     """Split a response message into its units at ';' outside quoted strings (IEEE 488.2 8.4)."""
-    units, current, quote = [], [], ""
+    units: list[str] = []
+    current: list[str] = []
+    quote = ""
     for ch in reply:
         if quote:
             current.append(ch)
@@ -55,47 +56,36 @@ def parse_error(entry: str) -> tuple[int, str]:
     return code, message.strip().strip('"')
 
 
-class ScpiSession:
-    """SCPI discipline on top of a transport; knows nothing about what the instrument is.
+def _is_error_entry(unit: str) -> bool:
+    """Whether a response unit reads as an error-queue entry other than 0,"No error"."""
+    try:
+        code, _ = parse_error(unit)
+    except InstrumentError:
+        return False
+    return code != NO_ERROR_CODE and '"' in unit
 
-    `opener` makes a NEW transport for a reconnect (reopening the same pyvisa object silently
-    resets its timeout and terminations: FIELD-NOTES trap 5).
-    """
+
+class ScpiSession(LineSession):
+    """SCPI discipline on top of a transport; knows nothing about what the instrument is. The
+    identity query is not optional: every SCPI instrument answers `*IDN?` (IEEE 488.2 10.14)."""
 
     MAX_DRAIN = 32  # an error queue deeper than this is itself a fault
 
     def __init__(self, transport: Transport, name: str, *, opener: Callable[[], Transport] | None = None,
                  error_query: str = ":SYSTem:ERRor?", idn_query: str = "*IDN?") -> None:
-        self.transport = transport
-        self.name = name
-        self.opener = opener
+        super().__init__(transport, name, opener=opener, idn_query=idn_query)
         self.error_query = error_query
-        self.idn_query = idn_query
-        self.idn = ""
 
-    @property
-    def resource(self) -> str:
-        return self.transport.resource
-
-    def identify(self) -> str:
-        """Ask for the identity (opening a socket proves nothing; the first reply does)."""
-        reply = self.transport.query(self.idn_query)
-        if not reply:
-            raise InstrumentError(f"empty reply to {self.idn_query}", resource=self.resource,
-                                  command=self.idn_query)
-        self.idn = reply
-        return reply
-
-    def query(self, command: str) -> str:
-        return self.transport.query(command)
-
-    def apply(self, commands: list[str], readbacks: list[str] = ()) -> list[str]:
+    def apply(self, commands: Sequence[str], readbacks: Sequence[str] = ()) -> list[str]:
         """Send settings, read back `readbacks`, wait for completion; ScpiError if refused."""
         program = join_program(list(commands) + list(readbacks))
         reply = self.transport.query(f"{program};*OPC?;{self.error_query}")
         units = split_response(reply)
         n = len(readbacks)
         if len(units) != n + 2 or units[n] not in ("1", "+1"):
+            # a refused query (e.g. an unknown header) leaves its unit out: the error says why
+            if _is_error_entry(units[-1]):
+                self._raise_if_error(units[-1], program, "refused a setting")
             raise InstrumentError(f"unexpected reply {reply!r} to a synchronised setting",
                                   resource=self.resource, command=program)
         self._raise_if_error(units[n + 1], program, "refused a setting")
@@ -120,42 +110,10 @@ class ScpiSession:
 
     def drain_errors(self) -> list[tuple[int, str]]:
         """Read the error queue until it says 0; return what was in it."""
-        found = []
+        found: list[tuple[int, str]] = []
         for _ in range(self.MAX_DRAIN):
             code, message = parse_error(self.transport.query(self.error_query))
             if code == NO_ERROR_CODE:
                 return found
             found.append((code, message))
         raise InstrumentError("error queue does not empty", resource=self.resource)
-
-    def reconnect(self, should_stop: Callable[[], bool] = lambda: False) -> None:
-        """Drop the link and open a new one, with backoff, until the instrument answers with the
-        identity it had; ConnectionLost if it never does.
-
-        A reply that arrives late, after its query timed out, lands on the next query (FIELD-NOTES
-        trap 4; on a serial line even across a reopen), so the identity is compared, not just read.
-        """
-        if self.opener is None:
-            raise ConnectionLost("lost and cannot be reopened", resource=self.resource)
-        known = self.idn
-        self.transport.close()
-        last: Exception | None = None
-        for wait in BACKOFF_S:
-            if should_stop():
-                break
-            time.sleep(wait)
-            try:
-                self.transport = self.opener()
-                self.transport.flush_input()
-                if known and self.identify() != known:
-                    raise InstrumentError(f"answered {self.idn!r} instead of its identity (a stale reply?)",
-                                          resource=self.resource)
-                if not known:
-                    self.identify()
-                return
-            except InstrumentError as exc:   # ConnectionLost included
-                last = exc
-                self.idn = known
-                self.transport.close()
-        raise ConnectionLost(f"the {self.name} did not come back after {len(BACKOFF_S)} reconnect attempts ({last})",
-                             resource=self.resource) from last

@@ -3,26 +3,50 @@
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 
 from nightbench.drivers.dialect import SOURCE_COMMANDS
 from nightbench.drivers.errors import InstrumentError, SafetyError, ScpiError
+from nightbench.drivers.line import SessionRole
 from nightbench.drivers.scpi import ScpiSession
+from nightbench.drivers.transport import Link
 
 LEVEL_READBACK_DB = 0.01
 FREQ_READBACK_REL = 1e-9
+# The source's own level limits when a plan names none (plan/model.py SourceSpec uses these too):
+# wide enough for any generator's range, and plans beyond a source's real limits name them.
+DEFAULT_MIN_DBM = -130.0
+DEFAULT_MAX_DBM = 20.0
 
 
-class RfSource:
+class RfSource(SessionRole):
     """An RF signal generator. Refuses levels outside its configured limits before sending, and
     reads every setting back in the same message, so what is stored is what the source has."""
 
-    def __init__(self, session: ScpiSession, *, min_dbm: float = -140.0, max_dbm: float = 20.0,
+    def __init__(self, session: ScpiSession, *, min_dbm: float = DEFAULT_MIN_DBM, max_dbm: float = DEFAULT_MAX_DBM,
                  commands: dict[str, str] | None = None) -> None:
-        self.session = session
+        self.session: ScpiSession = session
         self.min_dbm = min_dbm
         self.max_dbm = max_dbm
         self.commands = commands or dict(SOURCE_COMMANDS)
         self.forget()
+
+    @classmethod
+    def open(cls, link: Link, *, min_dbm: float = DEFAULT_MIN_DBM, max_dbm: float = DEFAULT_MAX_DBM,
+             commands: dict[str, str] | None = None) -> RfSource:
+        """A source on a new link (not yet proven to answer: see `prove`)."""
+        table = commands or dict(SOURCE_COMMANDS)
+        session = ScpiSession(link.open(), "source", opener=link.open, error_query=table["error_query"])
+        return cls(session, min_dbm=min_dbm, max_dbm=max_dbm, commands=table)
+
+    def prove(self) -> None:
+        """Ask for the identity: opening a link proves nothing, the first reply does."""
+        self.session.identify()
+
+    def reconnect(self, should_stop: Callable[[], bool]) -> None:
+        """A new link to the same source; nothing is assumed about its state afterwards."""
+        self.forget()
+        self.session.reconnect(should_stop)
 
     def forget(self) -> None:
         """State unknown (after a reconnect): nothing is assumed about the instrument."""
@@ -45,12 +69,13 @@ class RfSource:
         """Apply any of the three in one synchronised, error-checked, read-back message, level
         first: a caller that lowers the level for a frequency change gets it applied first."""
         c = self.commands
-        commands, readbacks = [], []
+        commands: list[str] = []
+        readbacks: list[str] = []
         if level_dbm is not None:
             if not (self.min_dbm <= level_dbm <= self.max_dbm):
                 raise SafetyError(
                     f"source level {level_dbm:.2f} dBm is outside the source's limits "
-                    f"[{self.min_dbm}, {self.max_dbm}] dBm", resource=self.session.resource)
+                    f"[{self.min_dbm}, {self.max_dbm}] dBm", resource=self.resource)
             commands.append(c["set_level"].format(level_dbm=level_dbm))
             readbacks.append(c["query_level"])
         if frequency_hz is not None:
@@ -72,17 +97,17 @@ class RfSource:
             got = next(values).strip().upper()
             if got not in (("1", "ON") if output else ("0", "OFF")):
                 raise InstrumentError(f"source output reads back {got!r}, not {'ON' if output else 'OFF'}",
-                                      resource=self.session.resource)
+                                      resource=self.resource)
             self.output_on = output
 
     def _check(self, what: str, wanted: float, reply: str, *, abs_tol: float = 0.0, rel_tol: float = 0.0) -> None:
         try:
             got = float(reply)
         except ValueError as exc:
-            raise InstrumentError(f"source {what} reads back {reply!r}", resource=self.session.resource) from exc
+            raise InstrumentError(f"source {what} reads back {reply!r}", resource=self.resource) from exc
         if not math.isclose(got, wanted, abs_tol=abs_tol, rel_tol=rel_tol):
             raise InstrumentError(f"source {what} reads back {got:g}, not the {wanted:g} that was set",
-                                  resource=self.session.resource)
+                                  resource=self.resource)
 
     def rf_off(self) -> None:
         self.set(output=False)

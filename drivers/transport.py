@@ -7,6 +7,7 @@ decided here, so pointing a plan at a simulator or a real instrument changes onl
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import Protocol
 
 
@@ -23,6 +24,21 @@ class Transport(Protocol):
         """Throw away anything already received (a late reply after a timeout)."""
 
     def close(self) -> None: ...
+
+
+@dataclass(frozen=True)
+class Link:
+    """How to reach an instrument; `open()` makes a new transport each time (a reconnect needs a
+    NEW one: reopening the same pyvisa object resets its settings, FIELD-NOTES trap 5)."""
+
+    resource: str
+    timeout_s: float = 2.0
+    visa_library: str = "@py"
+    baud_rate: int | None = None
+
+    def open(self) -> Transport:
+        return open_transport(self.resource, timeout_s=self.timeout_s, visa_library=self.visa_library,
+                              baud_rate=self.baud_rate)
 
 
 VISA_PREFIXES = ("TCPIP", "ASRL", "GPIB", "USB")

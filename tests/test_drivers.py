@@ -11,10 +11,12 @@ from pathlib import Path
 import pytest
 import yaml
 
+from nightbench.drivers.errors import ConnectionLost, InputError, ScpiError
 from nightbench.drivers.scpi import join_program, split_response
 from nightbench.drivers.transport import check_resource
+from nightbench.measure.roles import open_source
 from nightbench.measure.signals import StopFlag
-from nightbench.plan.model import parse_plan
+from nightbench.plan.model import SourceSpec, parse_plan
 from nightbench.runs import execute, new_run
 from nightbench.simproc import SimProcess
 from nightbench.simulators.physics import BenchConfig, BenchModel
@@ -118,7 +120,9 @@ def test_permanent_faults_fail_clearly_with_rf_off(tmp_path, fault, words):
 
 
 def test_meter_overload_is_stored_flagged_not_as_a_value(tmp_path):
-    with sim_with(tmp_path, "overload@meter:after=40,count=0") as sim:
+    # three overrange readings in a row (OVERLOAD_READINGS) end one point as overloaded, wherever
+    # they fall: independent of how many readings the settle detector takes per point
+    with sim_with(tmp_path, "overload@meter:after=40,count=3") as sim:
         state, error, rows, _ = run_plan(tmp_path, sim.resources)
     assert state == "completed", error
     assert any(r["overload"] for r in rows) and not all(r["overload"] for r in rows)
@@ -136,6 +140,29 @@ def test_serial_adc_board_plan_completes(tmp_path):
     assert state == "completed", error
     assert len(rows) == len(LEVELS)
     assert_points_are_real(rows)
+
+
+def adc_meter(resource: str, **keys) -> dict:
+    adc = TRUTH.config.adc
+    return {"driver": "serial-adc", "resource": resource, "setup": ["A 2"], "query": "R",
+            "pattern": r"R=([+-]\d+)", "overload": "OVER", "scale": adc.lsb_v,
+            "offset": -adc.offset_counts * adc.lsb_v, "baud_rate": 115200, **keys}
+
+
+# A pty cannot hang up, so `drop` makes the board go quiet for a while (see simulators/links.py).
+@pytest.mark.parametrize("fault", ["drop@adc:after=12,duration_s=0.6", "garbage@adc:after=12"])
+def test_serial_adc_without_identify_reconnects_after_a_fault(tmp_path, fault):
+    """A board with no identity query is proven back by a reading it answers, not by comparing
+    identities: its "identity" would be a reading, which never repeats."""
+    with sim_with(tmp_path, fault) as sim:
+        instruments = {"source": {"driver": "scpi-source", "resource": sim.resources["source"]},
+                       "meter": adc_meter(sim.resources["adc_serial"])}
+        state, error, rows, events = run_plan(tmp_path, sim.resources, instruments=instruments)
+    assert state == "completed", error
+    assert [e["message"] for e in events if e["kind"] == "reconnect"] == ["reconnecting the meter"]
+    assert [r["power_dbm"] for r in rows] == LEVELS
+    assert_points_are_real(rows)
+    assert last_output(tmp_path) is False
 
 
 def test_plain_pyserial_transport_plan_completes(tmp_path):
@@ -166,6 +193,36 @@ def test_dialect_override_completes_against_a_simulator_in_that_dialect(tmp_path
     assert state == "completed", error
     assert_points_are_real(rows)
     assert last_output(tmp_path) is False
+
+
+@pytest.mark.parametrize("sim_args, commands, kind, code, step, command", [
+    # a plan that overrides only the error query for the alternative dialect: the RF-off of
+    # configure() is refused (-113, undefined header) and the error queue says so
+    (["--dialect", "alt"], {"error_query": ALT_SOURCE["error_query"]}, ScpiError, -113,
+     "the source could not be configured", ":OUTPut:STATe OFF"),
+    (["--fault", "silence@source"], None, ConnectionLost, None, "the source did not identify itself", "*IDN?"),
+])
+def test_an_error_while_opening_keeps_its_type_and_fields(sim_args, commands, kind, code, step, command):
+    with SimProcess(*sim_args) as sim:
+        spec = SourceSpec(driver="scpi-source", resource=sim.resources["source"], timeout_s=0.5, commands=commands)
+        with pytest.raises(kind) as info:
+            open_source(spec)
+    err = info.value
+    assert type(err) is kind and err.scpi_code == code
+    assert err.resource == sim.resources["source"] and command in (err.command or "")
+    assert str(err).startswith(step + ": "), "what was being done comes first"
+
+
+def test_adding_context_keeps_the_object_its_type_and_its_fields():
+    err = ScpiError("source refused a setting", resource="TCPIP::h::1::SOCKET", scpi_code=-222)
+    same = err.add_context("the source could not be configured", resource="other", command=":POW 5")
+    assert same is err and type(same) is ScpiError
+    assert (err.resource, err.command, err.scpi_code) == ("TCPIP::h::1::SOCKET", ":POW 5", -222), \
+        "a field already set is kept; an unset one is filled"
+    assert err.args == (err.message,) == ("the source could not be configured: source refused a setting",)
+    plan_error = InputError("no such file", file="plan.yaml").add_context("path", resource="ignored", key="path")
+    assert (plan_error.file, plan_error.key) == ("plan.yaml", "path") and not hasattr(plan_error, "resource")
+    assert str(plan_error) == "plan.yaml, key 'path': path: no such file"
 
 
 def test_bad_command_templates_are_refused_at_check(write_plan, db):
@@ -204,7 +261,8 @@ def test_program_and_response_messages():
     # IEEE 488.2 7.3.4 (program message units joined by ';') and 8.4 (response units joined by
     # ';', strings quoted), from memory.
     assert join_program(["FREQ 1", ":POW -3", "*OPC?"]) == ":FREQ 1;:POW -3;*OPC?"
-    assert split_response('1;-222,"Data out of range; 99 > 20";+4.5E-1') == ['1', '-222,"Data out of range; 99 > 20"', '+4.5E-1']
+    assert split_response('1;-222,"Data out of range; 99 > 20";+4.5E-1') == [
+        '1', '-222,"Data out of range; 99 > 20"', '+4.5E-1']
 
 
 def test_unreachable_source_is_named_and_nothing_stored(tmp_path):
@@ -217,7 +275,7 @@ def test_unreachable_source_is_named_and_nothing_stored(tmp_path):
 
 def test_points_and_readings_stay_consistent_after_faults(tmp_path):
     with sim_with(tmp_path, "garbage@meter:after=9", "drop@meter:after=20") as sim:
-        state, error, rows, _ = run_plan(tmp_path, sim.resources)
+        state, error, _, _ = run_plan(tmp_path, sim.resources)
     assert state == "completed", error
     conn = sqlite3.connect(tmp_path / "faults.db")
     orphans = conn.execute("SELECT COUNT(*) FROM readings r LEFT JOIN points p ON p.run_id=r.run_id AND p.idx=r.idx "
@@ -229,10 +287,10 @@ def test_a_plan_can_name_the_visa_library(tmp_path):
     with sim_with(tmp_path) as sim:
         plan = plan_dict(sim.resources)
         plan["instruments"]["source"]["visa_library"] = "@py"     # explicit pyvisa-py
-        state, error, rows, _ = run_plan(tmp_path, sim.resources, instruments=plan["instruments"])
+        state, error, _, _ = run_plan(tmp_path, sim.resources, instruments=plan["instruments"])
         assert state == "completed", error
         plan["instruments"]["meter"]["visa_library"] = "@no-such-backend"
-        state, error, rows, _ = run_plan(tmp_path, sim.resources, instruments=plan["instruments"])
+        state, error, _, _ = run_plan(tmp_path, sim.resources, instruments=plan["instruments"])
     assert state == "failed" and "cannot load the VISA library '@no-such-backend'" in error
     assert last_output(tmp_path) is False, "the source was opened first and is left safe"
 

@@ -143,7 +143,7 @@ class Engine:
             if self.stop.is_set():
                 raise Interrupted(self.stop.reason)
             self.bench = self._open_bench()
-            store.set_identities(run_id, self.bench.source.session.idn, self.bench.meter.session.idn)
+            store.set_identities(run_id, self.bench.source.identity, self.bench.meter.identity)
             visit = (fast_edge_order(todo, self.plan.sweep.order, self.detector.level_taus)
                      if self.plan.settle.level_order == "fast-edge" else todo)
             for point in visit:
@@ -231,7 +231,7 @@ class Engine:
             return None
         source = self.bench.source
         try:
-            source.session.transport.flush_input()
+            source.flush()
             source.rf_off()
             return None
         except InstrumentError as first:

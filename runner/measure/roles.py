@@ -1,69 +1,73 @@
-"""Build the instrument roles a plan names: the one place where plan specs meet nightbench.drivers."""
+"""Build the instrument roles a plan names: the one place where plan specs meet nightbench.drivers.
+
+Above this module the engine and recovery see roles (drivers/roles.py), never a transport or a
+session: how a role talks to its instrument is the driver's business.
+"""
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any
+from typing import TypeVar
 
 from nightbench.drivers.dialect import METER_COMMANDS, SOURCE_COMMANDS, merged
 from nightbench.drivers.errors import ConnectionLost, InstrumentError, NightbenchError
 from nightbench.drivers.meter import ScpiDmm, SerialAdc
-from nightbench.drivers.scpi import ScpiSession
+from nightbench.drivers.roles import MeterRole, Role, SourceRole
 from nightbench.drivers.source import RfSource
-from nightbench.drivers.transport import open_transport
-from nightbench.plan.model import AdcSpec, Plan, SourceSpec
+from nightbench.drivers.transport import Link
+from nightbench.plan.model import AdcSpec, DmmSpec, Plan, SourceSpec
+
+R = TypeVar("R", bound=Role)
 
 
-def _session(spec: Any, name: str, **kwargs: Any) -> ScpiSession:
-    def opener() -> Any:
-        return open_transport(spec.resource, timeout_s=spec.timeout_s, visa_library=spec.visa_library,
-                              baud_rate=spec.baud_rate)
+def _link(spec: SourceSpec | DmmSpec | AdcSpec) -> Link:
+    return Link(spec.resource, timeout_s=spec.timeout_s, visa_library=spec.visa_library, baud_rate=spec.baud_rate)
+
+
+def _open(name: str, spec: SourceSpec | DmmSpec | AdcSpec, build: Callable[[Link], R]) -> R:
+    """Open a role, prove the instrument answers, then configure it; the link is closed if a step
+    fails, and the error says which step (its type and fields kept)."""
     try:
-        session = ScpiSession(opener(), name, opener=opener, **kwargs)
+        role = build(_link(spec))
     except NightbenchError as exc:
-        raise type(exc)(f"the {name} cannot be opened: {exc.message}", resource=spec.resource) from exc
-    try:
-        session.identify()
-    except NightbenchError as exc:
-        session.transport.close()
-        raise type(exc)(f"the {name} did not identify itself: {exc.message}", resource=spec.resource,
-                        command=exc.command) from exc
-    return session
+        exc.add_context(f"the {name} cannot be opened", resource=spec.resource)
+        raise
+    steps: tuple[tuple[str, Callable[[], None]], ...] = (
+        ("did not identify itself", role.prove), ("could not be configured", role.configure))
+    for failed, step in steps:
+        try:
+            step()
+        except NightbenchError as exc:
+            role.close()
+            exc.add_context(f"the {name} {failed}", resource=spec.resource)
+            raise
+    return role
 
 
-def open_source(spec: SourceSpec) -> RfSource:
+def open_source(spec: SourceSpec) -> SourceRole:
     """Open the source and make it safe before anything else (RF off, invariant 2)."""
     commands = merged(SOURCE_COMMANDS, spec.commands)
-    session = _session(spec, "source", error_query=commands["error_query"])
-    return _configured(RfSource(session, min_dbm=spec.min_dbm, max_dbm=spec.max_dbm, commands=commands))
+    return _open("source", spec, lambda link: RfSource.open(link, min_dbm=spec.min_dbm, max_dbm=spec.max_dbm,
+                                                             commands=commands))
 
 
-def open_meter(spec: Any) -> ScpiDmm | SerialAdc:
+def open_meter(spec: DmmSpec | AdcSpec) -> MeterRole:
     if isinstance(spec, AdcSpec):
-        session = _session(spec, "meter", idn_query=spec.identify or spec.query)
-        meter: ScpiDmm | SerialAdc = SerialAdc(session, query=spec.query, pattern=spec.pattern, scale=spec.scale,
-                                               offset=spec.offset, setup=spec.setup, overload=spec.overload)
-    else:
-        commands = merged(METER_COMMANDS, spec.commands)
-        session = _session(spec, "meter", error_query=commands["error_query"])
-        meter = ScpiDmm(session, nplc=spec.nplc, range_v=spec.range_v, commands=commands)
-    return _configured(meter)
-
-
-def _configured(role: Any) -> Any:
-    """Configure a freshly opened role; its link is closed if that fails."""
-    try:
-        role.configure()
-    except NightbenchError:
-        role.session.transport.close()
-        raise
-    return role
+        adc = spec
+        return _open("meter", adc, lambda link: SerialAdc.open(
+            link, query=adc.query, pattern=adc.pattern, scale=adc.scale, offset=adc.offset, identify=adc.identify,
+            setup=adc.setup, overload=adc.overload))
+    commands = merged(METER_COMMANDS, spec.commands)
+    dmm = spec
+    return _open("meter", dmm, lambda link: ScpiDmm.open(link, nplc=dmm.nplc, range_v=dmm.range_v,
+                                                         commands=commands))
 
 
 @dataclass
 class Bench:
-    source: RfSource
-    meter: ScpiDmm | SerialAdc
+    source: SourceRole
+    meter: MeterRole
 
     @classmethod
     def open(cls, plan: Plan) -> Bench:
@@ -71,26 +75,27 @@ class Bench:
         try:
             meter = open_meter(plan.instruments.meter)
         except BaseException:
-            source.session.transport.close()
+            source.close()
             raise
         return cls(source, meter)
+
+    def role(self, name: str) -> Role:
+        return {"source": self.source, "meter": self.meter}[name]
 
     def role_of(self, exc: InstrumentError) -> str | None:
         """Which instrument an error came from ('source', 'meter'), by its resource."""
         for name in ("source", "meter"):
-            if exc.resource and exc.resource == getattr(self, name).session.resource:
+            if exc.resource and exc.resource == self.role(name).resource:
                 return name
         return None
 
-    def reconnect(self, name: str, should_stop: Any, attempts: int = 3) -> None:
+    def reconnect(self, name: str, should_stop: Callable[[], bool], attempts: int = 3) -> None:
         """A NEW link to one instrument, then its known state again (the source: RF off first).
         A link that comes back out of step (a late reply) is reopened again."""
-        role = getattr(self, name)
-        if name == "source":
-            self.source.forget()
+        role = self.role(name)
         for attempt in range(1, attempts + 1):
             try:
-                role.session.reconnect(should_stop)
+                role.reconnect(should_stop)
                 role.configure()
                 return
             except ConnectionLost:
@@ -101,4 +106,5 @@ class Bench:
 
     def close(self) -> None:
         for role in (self.source, self.meter):
-            role.session.transport.close()
+            role.close()
+

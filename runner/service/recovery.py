@@ -25,7 +25,7 @@ def make_source_safe(loaded: LoadedPlan) -> None:
     from nightbench.measure.roles import open_source
 
     source = open_source(loaded.plan.instruments.source)
-    source.session.transport.close()
+    source.close()
 
 
 def abandoned_runs(store: Store) -> list[int]:
