@@ -7,6 +7,7 @@ Resource strings: `serial:<port>` where <port> is a device path or any pyserial 
 
 from __future__ import annotations
 
+import contextlib
 from typing import Any
 
 from nightbench.drivers.errors import ConnectionLost
@@ -57,13 +58,14 @@ class SerialTransport:
         return raw.decode("ascii", errors="replace").strip()
 
     def flush_input(self) -> None:
-        try:
+        import serial
+
+        with contextlib.suppress(serial.SerialException, OSError):
             self._port.reset_input_buffer()
-        except Exception:
-            pass
 
     def close(self) -> None:
-        try:
+        """Closing a dead link must never mask the error that made the caller close it."""
+        import serial
+
+        with contextlib.suppress(serial.SerialException, OSError):
             self._port.close()
-        except Exception:
-            pass

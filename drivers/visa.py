@@ -7,6 +7,7 @@ ASRL faults leak pyserial/OS exceptions. All of it is mapped to `ConnectionLost`
 
 from __future__ import annotations
 
+import contextlib
 import os
 from typing import Any
 
@@ -90,36 +91,29 @@ class VisaTransport:
             session = None
         link = getattr(session, "interface", None)
         if session is None or link is None:
-            try:
+            with contextlib.suppress(*self._errors):
                 self._inst.clear()
-            except self._errors:
-                pass
             return
         if hasattr(session, "_pending_buffer"):
             session._pending_buffer.clear()
         if hasattr(link, "reset_input_buffer"):        # pyserial port behind ASRL
-            try:
+            with contextlib.suppress(*self._errors):
                 link.reset_input_buffer()
-            except Exception:
-                pass
             return
         try:
             link.setblocking(False)
             while link.recv(65536):
                 pass
-        except (BlockingIOError, OSError):
+        except OSError:   # BlockingIOError included: nothing more to read
             pass
         finally:
-            try:
+            with contextlib.suppress(OSError):
                 link.setblocking(True)
-            except OSError:
-                pass
 
     def close(self) -> None:
-        try:
+        """Closing a dead link must never mask the error that made the caller close it."""
+        with contextlib.suppress(*self._errors):
             self._inst.close()
-        except Exception:  # closing a dead link must never mask the real error
-            pass
 
 
 def set_nodelay(inst: Any, on: bool = True) -> bool:
@@ -135,11 +129,12 @@ def set_nodelay(inst: Any, on: bool = True) -> bool:
         pass
     from pyvisa import constants
 
+    unsupported: tuple[type[BaseException], ...] = (*_link_errors(), NotImplementedError, AttributeError)
     try:
         inst.set_visa_attribute(constants.VI_ATTR_TCPIP_NODELAY, constants.VI_TRUE if on else constants.VI_FALSE)
         return True
-    except Exception:  # not every backend has it; joined messages avoid the stall anyway
-        return False
+    except unsupported:
+        return False   # not every backend has it; joined messages avoid the stall anyway
 
 
 def _describe(exc: BaseException) -> str:
