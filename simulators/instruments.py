@@ -71,7 +71,7 @@ class SimSource(ScpiInstrument):
         text = one_arg(args).strip()
         upper = text.upper()
         if upper.endswith(("MV", "UV", "V")) and not upper.endswith("DBM"):
-            volts = parse_number(text, ("V", "MV", "UV"), minimum=0.0)
+            volts = parse_number(text, ("V", "MV", "UV"))
             if volts <= 0:
                 raise ScpiCommandError(-222, "a level in volts must be positive")
             value = vrms_to_dbm(volts)

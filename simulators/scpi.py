@@ -9,6 +9,7 @@ commands, and an error queue with the standard codes and format.
 
 from __future__ import annotations
 
+import math
 import re
 from collections import deque
 from collections.abc import Callable
@@ -23,6 +24,7 @@ ERRORS = {
     -108: "Parameter not allowed",
     -109: "Missing parameter",
     -113: "Undefined header",
+    -121: "Invalid character in number",
     -131: "Invalid suffix",
     -221: "Settings conflict",
     -222: "Data out of range",
@@ -59,8 +61,8 @@ class _Node:
 def _parse_pattern(pattern: str) -> list[_Node]:
     """'[SOURce]:FREQuency[:CW]' -> nodes; the upper-case part of each mnemonic is its short form."""
     nodes = []
-    for optional, name in re.findall(r"(\[?):?([A-Za-z*][A-Za-z0-9]*\??)\]?", pattern):
-        name = name.rstrip("?")
+    for optional, mnemonic in re.findall(r"(\[?):?([A-Za-z*][A-Za-z0-9]*\??)\]?", pattern):
+        name = mnemonic.rstrip("?")
         short = "".join(ch for ch in name if ch.isupper() or ch.isdigit() or ch == "*")
         nodes.append(_Node(short=short, long=name.upper(), optional=bool(optional)))
     return nodes
@@ -86,27 +88,43 @@ SUFFIX_SCALE = {
     "V": 1.0, "MV": 1e-3, "UV": 1e-6, "KV": 1e3,
     "S": 1.0, "MS": 1e-3, "US": 1e-6,
 }
-_NUMBER = re.compile(r"^\s*([+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?)\s*([A-Za-z]*)\s*$")
+_MANTISSA = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:\s*[eE]\s*[+-]?\d+)?")
+_SUFFIX = re.compile(r"[A-Za-z]+")
+_BROKEN_EXPONENT = re.compile(r"[eE]\s*([+-]|$)")   # an exponent begun, its digits missing
 
 
 def parse_number(text: str, units: tuple[str, ...] = (), *, minimum: float | None = None,
                  maximum: float | None = None) -> float:
-    """Decimal numeric program data with an optional suffix from `units`; MIN/MAX allowed."""
-    word = text.strip().upper()
-    if word in ("MIN", "MINIMUM") and minimum is not None:
+    """Decimal numeric program data (IEEE 488.2 7.7.2) with an optional suffix from `units`, or
+    MIN/MAX where limits exist. Every malformed form is a ScpiCommandError with its standard code:
+    -104 not numeric data at all, -121 a bad character in the number, -131 a suffix not allowed,
+    -222 a value outside the limits."""
+    word = text.strip()
+    if word.upper() in ("MIN", "MINIMUM") and minimum is not None:
         return minimum
-    if word in ("MAX", "MAXIMUM") and maximum is not None:
+    if word.upper() in ("MAX", "MAXIMUM") and maximum is not None:
         return maximum
-    m = _NUMBER.match(text)
-    if not m:
-        raise ScpiCommandError(-104, f"not a number: {text!r}")
-    value, suffix = float(m.group(1)), m.group(2).upper()
+    m = _MANTISSA.match(word)
+    if m is None:
+        if word[:1] in ("+", "-", ".") or word[:1].isdigit():
+            raise ScpiCommandError(-121, f"not a number: {text!r}")
+        raise ScpiCommandError(-104, f"expected a number, got {text!r}")
+    rest = word[m.end():].lstrip()
+    if _BROKEN_EXPONENT.match(rest):
+        raise ScpiCommandError(-121, f"exponent without digits in {text!r}")
+    if rest and not _SUFFIX.fullmatch(rest):
+        code = -131 if rest[0].isalpha() else -121
+        raise ScpiCommandError(code, f"cannot read {rest!r} in {text!r}")
+    value, suffix = float(re.sub(r"\s", "", m.group(0))), rest.upper()
     if suffix:
         if suffix not in units or suffix not in SUFFIX_SCALE:
             raise ScpiCommandError(-131, f"suffix {suffix!r} not allowed here")
         value *= SUFFIX_SCALE[suffix]
-    if (minimum is not None and value < minimum) or (maximum is not None and value > maximum):
-        raise ScpiCommandError(-222, f"{value:g} outside [{minimum:g}, {maximum:g}]")
+    if not math.isfinite(value) or (minimum is not None and value < minimum) or (
+            maximum is not None and value > maximum):
+        low = "" if minimum is None else f"{minimum:g}"
+        high = "" if maximum is None else f"{maximum:g}"
+        raise ScpiCommandError(-222, f"{value:g} outside [{low}, {high}]")
     return value
 
 
@@ -202,8 +220,8 @@ class ScpiInstrument:
         """Run one program message; return the response message, or None if it had no query."""
         responses: list[str] = []
         path: list[str] = []
-        for unit in split_outside_quotes(message.strip(), ";"):
-            unit = unit.strip()
+        for raw in split_outside_quotes(message.strip(), ";"):
+            unit = raw.strip()
             if not unit:
                 continue
             header, _, params = unit.partition(" ")

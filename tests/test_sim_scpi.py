@@ -6,10 +6,12 @@ Where a rule is cited from the standards without the text at hand, it is marked 
 from __future__ import annotations
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from nightbench.simulators.instruments import SimMeter, SimSource
 from nightbench.simulators.physics import BenchModel
-from nightbench.simulators.scpi import QUEUE_DEPTH
+from nightbench.simulators.scpi import ERRORS, QUEUE_DEPTH
 
 
 @pytest.fixture
@@ -122,3 +124,57 @@ def test_meter_settings_and_queries():
     assert errors(meter) == []
     meter.execute("VOLT:DC:NPLC 1000")
     assert errors(meter) == [-222]
+
+
+@pytest.mark.parametrize("value, code", [
+    ("-1V", -222),          # a valid number and suffix, but no rms voltage is negative
+    ("-1 MV", -222),
+    ("1.2.3", -121),        # invalid character in number
+    ("-", -121),
+    ("1e", -121),           # an exponent without digits
+    ("1e+", -121),
+    ("5 XYZ", -131),        # invalid suffix
+    ("1V2", -131),
+    ("lots", -104),         # character data where a number belongs: data type error
+    ('"-10"', -104),        # string data
+])
+def test_malformed_numbers_get_their_code_and_the_instrument_keeps_answering(inproc_bench, value, code):
+    # IEEE 488.2 7.7.2 / 7.7.3 (decimal numeric program data and its suffix) and SCPI-1999 vol. 2,
+    # 21.8 (-104 data type error, -121 invalid character in number, -131 invalid suffix, -222 data
+    # out of range), from memory. Over a real socket: a parser fault must not end the connection.
+    import socket
+
+    bench = inproc_bench(serial=False)
+    port = int(bench.resources()["source"].split("::")[2])
+    with socket.create_connection(("127.0.0.1", port), timeout=2.0) as sock:
+        replies = sock.makefile("rb")
+        sock.sendall(f":POW {value}\n*IDN?\n".encode())
+        assert replies.readline().decode().startswith(SimSource.idn)
+        sock.sendall(b":SYST:ERR?\n")
+        assert int(replies.readline().split(b",")[0]) == code
+        sock.sendall(b":SYST:ERR?\n")
+        assert replies.readline().startswith(b"0,"), "exactly one error for one bad parameter"
+
+
+NUMBER_HEADERS = ["FREQ", "POW", "OUTP", "SENS:VOLT:DC:NPLC", "VOLT:RANG", "CONF:VOLT:DC", "TRIG:SOUR"]
+
+
+NUMBERISH = st.builds("".join, st.tuples(   # decimal numeric program data, right and wrong
+    st.sampled_from(["", "+", "-"]), st.sampled_from(["", "0", "1", "25", "1.5", ".5", "1.", "1.2.3", "MIN"]),
+    st.sampled_from(["", "e", "E3", "e-2", "e+", "e999"]), st.sampled_from(["", " "]),
+    st.sampled_from(["", "V", "MV", "uv", "DBM", "HZ", "MHZ", "X", "V2", "#", "-"])))
+ANY_TEXT = st.text(alphabet=st.characters(min_codepoint=32, max_codepoint=126, exclude_characters=";\""), max_size=12)
+
+
+@settings(max_examples=400, deadline=None, derandomize=True)
+@given(header=st.sampled_from(NUMBER_HEADERS), text=st.one_of(NUMBERISH, ANY_TEXT))
+def test_no_parameter_text_can_break_the_parser(header, text):
+    # Whatever follows a header, the instrument answers with an error-queue entry or obeys: it
+    # never raises (a raise in a simulator kills its client's thread: the instrument goes silent).
+    source = SimSource(BenchModel(), clock=lambda: 0.0)
+    meter = SimMeter(BenchModel(), clock=lambda: 0.0, sleep=lambda s: None)
+    for inst in (source, meter):
+        inst.execute(f"{header} {text}")
+        codes = errors(inst)
+        assert all(c in ERRORS for c in codes), codes
+        assert inst.execute("*OPC?") == "1"
