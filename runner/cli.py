@@ -166,7 +166,7 @@ def report(run_ids: tuple[int, ...], db: str | None, as_json: bool, out: str | N
         from nightbench.output.files import check_out_dir
 
         check_out_dir(out)
-    store = Store(_db(db), create=False)
+    store = Store.open_readonly(_db(db))   # reads only: never creates, migrates or writes the file
     for run_id in run_ids:
         store.run(run_id)  # every run must exist before anything is written
     reports = [build_report(store, run_id) for run_id in run_ids]
@@ -199,7 +199,7 @@ def export(run_id: int, fmt: str, db: str | None, output: str | None) -> None:
     from nightbench.output.export import write_export
     from nightbench.store.db import Store
 
-    store = Store(_db(db), create=False)
+    store = Store.open_readonly(_db(db))
     if output:
         with open(output, "w", encoding="utf-8", newline="") as fh:
             write_export(store, run_id, fmt, fh)

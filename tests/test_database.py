@@ -1,7 +1,10 @@
-"""The result database as a product: stable views, stored fits, counts, migration, documented queries."""
+"""The result database as a product: stable views, stored fits, counts, migration, read-only opens,
+errors that name the file, documented queries."""
 
 from __future__ import annotations
 
+import hashlib
+import json
 import re
 import shlex
 import sqlite3
@@ -12,6 +15,7 @@ from pathlib import Path
 import pytest
 
 from nightbench.analysis.report import build_report, save_fits
+from nightbench.drivers.errors import InputError, NightbenchError
 from nightbench.store.db import SCHEMA_VERSION, Store
 from tests.conftest import cli, store_run
 
@@ -98,6 +102,13 @@ def _version_1(db: Path) -> None:
     conn.close()
 
 
+def _fingerprint(db: Path) -> tuple[str, str]:
+    """sha256 of the file and of its write-ahead log (an absent log reads as empty)."""
+    wal = Path(f"{db}-wal")
+    return (hashlib.sha256(db.read_bytes()).hexdigest(),
+            hashlib.sha256(wal.read_bytes() if wal.exists() else b"").hexdigest())
+
+
 def test_a_version_1_file_is_migrated_in_place(tmp_path):
     db = tmp_path / "old.db"
     _version_1(db)
@@ -105,6 +116,113 @@ def test_a_version_1_file_is_migrated_in_place(tmp_path):
     assert store.conn.execute("SELECT value FROM meta").fetchone()[0] == str(SCHEMA_VERSION)
     assert store.runs()[0]["points_done"] == 41
     assert store.conn.execute("SELECT COUNT(*) FROM v_points").fetchone()[0] == 41
+
+
+def test_a_read_only_open_reads_an_old_file_as_it_is_and_writes_nothing(tmp_path):
+    db = tmp_path / "old.db"
+    _version_1(db)
+    before = _fingerprint(db)
+    report = cli("report", "1", "--db", str(db), "--json")
+    assert report.returncode == 0, report.stderr
+    assert json.loads(report.stdout)["groups"][0]["slope_mv_per_db"] == pytest.approx(20.0)
+    assert cli("export", "1", "--db", str(db)).returncode == 0
+    assert _fingerprint(db) == before
+    store = Store.open_readonly(db)
+    assert store.schema_version == 1
+    # the tables version 1 did not have read as empty; the rest as they are
+    assert store.run_files(1) == {} and store.fits(1) == []
+    assert store.runs()[0]["points_done"] == 41
+    store.close()
+    assert _fingerprint(db) == before
+    assert sqlite3.connect(db).execute("SELECT value FROM meta").fetchone()[0] == "1"
+
+
+def test_a_read_only_store_analyses_but_cannot_write(tmp_path):
+    db = tmp_path / "lab.db"
+    store_run(db, lambda p, f: 0.02 * (p + 90.0))
+    store = Store.open_readonly(db)
+    report = build_report(store, 1)
+    assert report.groups[0].slope_mv_per_db == pytest.approx(20.0)
+    with pytest.raises(NightbenchError, match="readonly") as info:
+        save_fits(store, report)
+    assert str(db) in str(info.value)
+
+
+def test_a_read_only_open_of_a_missing_file_names_it_and_creates_nothing(tmp_path):
+    missing = tmp_path / "typo.db"
+    with pytest.raises(InputError, match="no such database") as info:
+        Store.open_readonly(missing)
+    assert str(missing) in str(info.value)
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_a_file_from_a_newer_nightbench_is_refused_and_left_alone(tmp_path):
+    db = tmp_path / "new.db"
+    store_run(db, lambda p, f: 0.02 * (p + 90.0))
+    conn = sqlite3.connect(db)
+    conn.execute("UPDATE meta SET value = ? WHERE key = 'schema_version'", (str(SCHEMA_VERSION + 1),))
+    conn.commit()
+    conn.close()
+    before = _fingerprint(db)
+    res = cli("report", "1", "--db", str(db))
+    assert res.returncode == 2 and "newer nightbench" in res.stderr and "Traceback" not in res.stderr
+    for open_store in (Store, Store.open_readonly):
+        with pytest.raises(InputError, match="newer nightbench"):
+            open_store(db)
+    assert _fingerprint(db) == before
+
+
+def _hold_exclusive_lock(db: Path, locking_mode: str = "NORMAL") -> sqlite3.Connection:
+    """Another process writing with an exclusive lock (BEGIN EXCLUSIVE and a row not yet committed)."""
+    locker = sqlite3.connect(db, isolation_level=None)
+    locker.execute(f"PRAGMA locking_mode = {locking_mode}")
+    locker.execute("BEGIN EXCLUSIVE")
+    locker.execute("INSERT INTO events (run_id, at, kind, message) VALUES (1, 'now', 'note', 'holding the lock')")
+    return locker
+
+
+@pytest.mark.parametrize("readonly", [False, True], ids=["read-write", "read-only"])
+@pytest.mark.parametrize("read", ["run_files", "run", "runs", "points", "done_indices"])
+def test_a_locked_database_is_an_error_naming_the_file_never_an_empty_result(tmp_path, read, readonly):
+    db = tmp_path / "lab.db"
+    store_run(db, lambda p, f: 0.02 * (p + 90.0))
+    conn = sqlite3.connect(db)
+    conn.execute("INSERT INTO run_files (run_id, path, text) VALUES (1, 'cal/cable.s2p', '! a cable')")
+    conn.commit()
+    # A WAL reader is never blocked by a writer's lock, so the file goes back to a rollback journal,
+    # as `sqlite-utils disable-wal` leaves it; there an exclusive lock keeps every reader out.
+    assert conn.execute("PRAGMA journal_mode = DELETE").fetchone()[0] == "delete"
+    conn.close()
+    store = Store.open_readonly(db, busy_timeout_s=0.05) if readonly else Store(db, busy_timeout_s=0.05)
+    if not readonly:   # opening for writing made it WAL again
+        assert store.conn.execute("PRAGMA journal_mode = DELETE").fetchone()[0] == "delete"
+    assert store.run_files(1) == {"cal/cable.s2p": "! a cable"}
+    locker = _hold_exclusive_lock(db)
+    try:
+        with pytest.raises(NightbenchError) as info:
+            getattr(store, read)(*([] if read == "runs" else [1]))
+        assert str(db) in str(info.value) and "locked" in str(info.value)
+        assert info.value.exit_code == 1   # not bad input: the same command may work in a moment
+    finally:
+        locker.execute("ROLLBACK")
+        locker.close()
+        store.close()
+
+
+@pytest.mark.parametrize("readonly", [False, True], ids=["read-write", "read-only"])
+def test_opening_a_locked_database_is_an_error_naming_the_file_not_bad_input(tmp_path, readonly):
+    db = tmp_path / "lab.db"
+    store_run(db, lambda p, f: 0.02 * (p + 90.0))
+    # in WAL mode only a connection in exclusive locking mode keeps readers out (sqlite.org/wal.html)
+    locker = _hold_exclusive_lock(db, "EXCLUSIVE")
+    try:
+        with pytest.raises(NightbenchError) as info:
+            Store.open_readonly(db, busy_timeout_s=0.05) if readonly else Store(db, busy_timeout_s=0.05)
+        assert str(db) in str(info.value) and "locked" in str(info.value)
+        assert info.value.exit_code == 1
+    finally:
+        locker.execute("ROLLBACK")
+        locker.close()
 
 
 def test_a_sqlite_file_that_is_not_ours_is_refused_and_left_alone(tmp_path):

@@ -10,6 +10,7 @@ agree with it, whatever the simulator's physics is (ripple, floor, compression).
 from __future__ import annotations
 
 import csv
+import hashlib
 import io
 import json
 import sqlite3
@@ -216,6 +217,45 @@ def test_the_json_shapes_are_the_documented_ones(tmp_path):
     assert [list(r) for r in cmp["runs"]] == [REPORT_KEYS, REPORT_KEYS]
     assert [list(d) for d in cmp["differences"]] == [DIFFERENCE_KEYS]   # only 500 MHz is in both
     assert cmp["only_in_a_hz"] == [100e6] and cmp["only_in_b_hz"] == [900e6]
+
+
+def _fingerprint(db: Path) -> dict[str, str]:
+    """sha256 of the database file and of its write-ahead log. An absent log reads as empty: any
+    reader of a WAL file (sqlite3's own shell too) creates the empty -wal and -shm companions."""
+    out = {}
+    for suffix in ("", "-wal"):
+        path = Path(f"{db}{suffix}")
+        out[suffix or "db"] = hashlib.sha256(path.read_bytes() if path.exists() else b"").hexdigest()
+    return out
+
+
+@pytest.mark.parametrize("writer_open", [False, True], ids=["idle", "while-another-connection-writes"])
+def test_report_and_export_leave_the_database_byte_for_byte_unchanged(tmp_path, writer_open):
+    db = tmp_path / "two.db"
+    store_run(db, lambda p, f: 0.0200 * (p + 90.0), dut_id="BRD-A")
+    store_run(db, lambda p, f: 0.0205 * (p + 88.0), dut_id="BRD-B")
+    writer = None
+    if writer_open:
+        # as while a run goes on: an open writer keeps its committed rows in the log, not the file
+        writer = sqlite3.connect(db, isolation_level=None)
+        writer.execute("INSERT INTO events (run_id, at, kind, message) VALUES (2, 'now', 'note', 'still writing')")
+        assert Path(f"{db}-wal").stat().st_size > 0
+    before = _fingerprint(db)
+    for args in (["report", "1"], ["report", "1", "--json"], ["report", "1", "2"], ["report", "1", "2", "--json"],
+                 ["report", "1", "2", "--out", str(tmp_path / "out")], ["export", "2", "--format", "json"]):
+        res = cli(*args, "--db", str(db))
+        assert res.returncode == 0, (args, res.stderr)
+        assert _fingerprint(db) == before, args
+    if writer is not None:
+        writer.close()
+
+
+def test_report_and_export_of_a_missing_database_create_nothing(tmp_path):
+    missing = tmp_path / "typo.db"
+    for args in (["report", "1"], ["export", "1"]):
+        res = cli(*args, "--db", str(missing))
+        assert res.returncode == 2 and "no such database" in res.stderr and str(missing) in res.stderr
+    assert list(tmp_path.iterdir()) == []
 
 
 @pytest.mark.parametrize("args, message", [
