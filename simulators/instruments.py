@@ -6,52 +6,73 @@ import json
 import math
 import time
 from collections.abc import Callable
+from dataclasses import dataclass
 from typing import TextIO
 
 from nightbench.simulators.faults import FaultInjector
 from nightbench.simulators.physics import BenchModel, vrms_to_dbm
-from nightbench.simulators.scpi import ScpiCommandError, ScpiInstrument, one_arg, parse_bool, parse_number
+from nightbench.simulators.scpi import MAKER, ScpiCommandError, ScpiInstrument, one_arg, parse_bool, parse_number
 
 Clock = Callable[[], float]
 OVERRANGE = "+9.90000000E+37"   # SCPI-1999 vol. 1, 7.2.1: the value returned for overrange
 
-# Command headers per dialect: "scpi" is SCPI-1999; "alt" is an invented older command set
-# (as some instruments have), for testing a plan's command-template overrides.
+# Command headers per dialect: "scpi" is SCPI-1999; "alt" is a non-standard set invented for this
+# simulator (the headers follow no real instrument), for testing a plan's command overrides.
 DIALECTS = ("scpi", "alt")
+
+
+@dataclass(frozen=True)
+class SourceHeaders:
+    error: str
+    freq: str
+    level: str
+    output: str
+
+
+@dataclass(frozen=True)
+class MeterHeaders:
+    error: str
+    configure: str
+    nplc: str
+    range: str
+    trigger: str
+    read: tuple[str, ...]
+
+
 SOURCE_HEADERS = {
-    "scpi": {"error": "SYSTem:ERRor[:NEXT]?", "freq": "[SOURce]:FREQuency[:CW]",
-             "level": "[SOURce]:POWer[:LEVel][:IMMediate][:AMPLitude]", "output": "OUTPut[:STATe]"},
-    "alt": {"error": "ERRor?", "freq": "CFRQ", "level": "RFLVl", "output": "RFOUTput"},
+    "scpi": SourceHeaders(error="SYSTem:ERRor[:NEXT]?", freq="[SOURce]:FREQuency[:CW]",
+                          level="[SOURce]:POWer[:LEVel][:IMMediate][:AMPLitude]", output="OUTPut[:STATe]"),
+    "alt": SourceHeaders(error="ERRor?", freq="TONE:PITCh", level="TONE:LOUDness", output="TONE:SOUNding"),
 }
 METER_HEADERS = {
-    "scpi": {"error": "SYSTem:ERRor[:NEXT]?", "configure": "CONFigure[:VOLTage][:DC]",
-             "nplc": "[SENSe]:VOLTage[:DC]:NPLCycles", "range": "[SENSe]:VOLTage[:DC]:RANGe[:UPPer]",
-             "trigger": "TRIGger:SOURce", "read": ("READ?", "MEASure[:VOLTage][:DC]?")},
-    "alt": {"error": "ERRor?", "configure": "CONFigure:DCV", "nplc": "DCV:INTegration", "range": "DCV:RANGe",
-            "trigger": "TRIGger:MODE", "read": ("DCV?",)},
+    "scpi": MeterHeaders(error="SYSTem:ERRor[:NEXT]?", configure="CONFigure[:VOLTage][:DC]",
+                         nplc="[SENSe]:VOLTage[:DC]:NPLCycles", range="[SENSe]:VOLTage[:DC]:RANGe[:UPPer]",
+                         trigger="TRIGger:SOURce", read=("READ?", "MEASure[:VOLTage][:DC]?")),
+    "alt": MeterHeaders(error="ERRor?", configure="CONFigure:DCV", nplc="DCV:INTegration", range="DCV:RANGe",
+                        trigger="TRIGger:MODE", read=("DCV?",)),
 }
 
 
 class SimSource(ScpiInstrument):
     """An invented RF signal generator (SCPI SOURce / OUTPut subsystems)."""
 
-    idn = "NIGHTBENCH-SIM,NS-RF100 Virtual Signal Source,SIM0001,1.0"
+    idn = f"{MAKER},Simulated RF Source,SIM0001,1.0"
 
     def __init__(self, model: BenchModel, clock: Clock = time.monotonic, log: TextIO | None = None,
                  faults: FaultInjector | None = None, dialect: str = "scpi") -> None:
         h = SOURCE_HEADERS[dialect]
-        super().__init__(error_header=h["error"])
+        super().__init__(error_header=h.error)
         self.model = model
         self.clock = clock
         self.log = log
         self.faults = faults or FaultInjector([])
         self._limits = model.config.source
-        self.add(h["freq"], self._set_freq)
-        self.add(h["freq"] + "?", lambda a: f"{self.model.frequency_hz:.6f}")
-        self.add(h["level"], self._set_level)
-        self.add(h["level"] + "?", lambda a: f"{self.model.level_dbm:.3f}")
-        self.add(h["output"], self._set_output)
-        self.add(h["output"] + "?", lambda a: "1" if self.model.output_on else "0")
+        self.add(h.freq, self._set_freq)
+        self.add(h.freq + "?", lambda a: f"{self.model.frequency_hz:.6f}")
+        self.add(h.level, self._set_level)
+        self.add(h.level + "?", lambda a: f"{self.model.level_dbm:.3f}")
+        self.add(h.output, self._set_output)
+        self.add(h.output + "?", lambda a: "1" if self.model.output_on else "0")
         self._write_log("start")
 
     def reset(self) -> None:
@@ -105,24 +126,24 @@ class SimSource(ScpiInstrument):
 class SimMeter(ScpiInstrument):
     """An invented DC voltmeter that integrates over NPLC power-line cycles."""
 
-    idn = "NIGHTBENCH-SIM,NS-DV200 Virtual DC Meter,SIM0002,1.0"
+    idn = f"{MAKER},Simulated DC Meter,SIM0002,1.0"
 
     def __init__(self, model: BenchModel, clock: Clock = time.monotonic, sleep: Callable[[float], None] = time.sleep,
                  faults: FaultInjector | None = None, dialect: str = "scpi") -> None:
         h = METER_HEADERS[dialect]
-        super().__init__(error_header=h["error"])
+        super().__init__(error_header=h.error)
         self.model = model
         self.clock = clock
         self.sleep = sleep
         self.faults = faults or FaultInjector([])
         self.reset()
-        self.add(h["configure"], self._configure)
-        self.add(h["nplc"], self._set_nplc)
-        self.add(h["nplc"] + "?", lambda a: f"{self.nplc:g}")
-        self.add(h["range"], self._set_range)
-        self.add(h["range"] + "?", lambda a: f"{self.range_v:g}")
-        self.add(h["trigger"], self._set_trigger)
-        for header in h["read"]:
+        self.add(h.configure, self._configure)
+        self.add(h.nplc, self._set_nplc)
+        self.add(h.nplc + "?", lambda a: f"{self.nplc:g}")
+        self.add(h.range, self._set_range)
+        self.add(h.range + "?", lambda a: f"{self.range_v:g}")
+        self.add(h.trigger, self._set_trigger)
+        for header in h.read:
             self.add(header, self._read)
 
     def reset(self) -> None:
@@ -172,7 +193,7 @@ class SimAdc:
     `R=OVER` when clipped; `A n` -> `OK` (average n conversions); anything else -> `ERR 1`.
     """
 
-    idn = "NS-ADC24 virtual ADC board v1.2 SIM0003"
+    idn = f"{MAKER} simulated ADC board, 24 bit, SIM0003, v1.2"
 
     def __init__(self, model: BenchModel, clock: Clock = time.monotonic, sleep: Callable[[float], None] = time.sleep,
                  faults: FaultInjector | None = None) -> None:

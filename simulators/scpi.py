@@ -34,6 +34,9 @@ ERRORS = {
     -420: "Query UNTERMINATED",
 }
 QUEUE_DEPTH = 10
+# The maker field of every simulated *IDN?: plainly not a company (IEEE 488.2 10.14 fields:
+# maker, model, serial number, firmware).
+MAKER = "Nightbench Simulated Instruments"
 
 
 class ScpiCommandError(Exception):
@@ -159,7 +162,7 @@ def split_outside_quotes(text: str, sep: str) -> list[str]:
 class ScpiInstrument:
     """Base of every simulated SCPI instrument: the tree, the common commands, the error queue."""
 
-    idn = "NIGHTBENCH-SIM,GENERIC,0,0.1"
+    idn = f"{MAKER},Simulated Generic Instrument,0,0.1"
 
     def __init__(self, error_header: str = "SYSTem:ERRor[:NEXT]?") -> None:
         self._commands: list[tuple[list[_Node], bool, Handler]] = []

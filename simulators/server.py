@@ -168,7 +168,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="inject a fault: KIND@INSTRUMENT[:key=value,...], e.g. drop@meter:after=20")
     parser.add_argument("--seed", type=int, help="seed for noise and faults (default: the config's, 1)")
     parser.add_argument("--dialect", choices=DIALECTS, default="scpi",
-                        help="command set: scpi (SCPI-1999) or alt (an older, non-standard set)")
+                        help="command set: scpi (SCPI-1999) or alt (a non-standard set invented for tests)")
 
 
 def main(argv: list[str] | None = None, prog: str = "nightbench.simulators.server") -> int:

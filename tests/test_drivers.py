@@ -173,9 +173,10 @@ def test_plain_pyserial_transport_plan_completes(tmp_path):
     assert_points_are_real(rows)
 
 
-ALT_SOURCE = {"set_frequency": "CFRQ {frequency_hz:.0f}", "set_level": "RFLVL {level_dbm:.2f}",
-              "output_on": "RFOUT ON", "output_off": "RFOUT OFF", "query_frequency": "CFRQ?",
-              "query_level": "RFLVL?", "query_output": "RFOUT?", "error_query": "ERR?"}
+# The simulator's invented non-standard dialect (simulators/instruments.py, "alt").
+ALT_SOURCE = {"set_frequency": "TONE:PITC {frequency_hz:.0f}", "set_level": "TONE:LOUD {level_dbm:.2f}",
+              "output_on": "TONE:SOUN ON", "output_off": "TONE:SOUN OFF", "query_frequency": "TONE:PITC?",
+              "query_level": "TONE:LOUD?", "query_output": "TONE:SOUN?", "error_query": "ERR?"}
 ALT_METER = {"configure": "CONF:DCV", "set_nplc": "DCV:INT {nplc:g}", "set_range": "DCV:RANG {range_v:g}",
              "set_trigger": "TRIG:MODE IMM", "read": "DCV?", "error_query": "ERR?"}
 

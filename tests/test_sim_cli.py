@@ -11,6 +11,7 @@ import pytest
 
 from nightbench.drivers.scpi import ScpiSession
 from nightbench.drivers.transport import open_transport
+from nightbench.simulators.scpi import MAKER
 
 
 @pytest.mark.parametrize("sig", [signal.SIGTERM, signal.SIGINT])
@@ -25,7 +26,7 @@ def test_sim_prints_resources_serves_and_stops_cleanly(sig):
         assert resources["meter_serial"].startswith("ASRL/dev/") and resources["meter_serial"].endswith("::INSTR")
         for key in ("meter", "meter_serial"):
             session = ScpiSession(open_transport(resources[key]), "meter")
-            assert session.identify().startswith("NIGHTBENCH-SIM,")
+            assert session.identify().startswith(MAKER + ",")
             session.transport.close()
         proc.send_signal(sig)
         assert proc.wait(10) == 0

@@ -9,7 +9,9 @@ import pytest
 
 from nightbench.drivers.errors import ConnectionLost
 from nightbench.simulators.faults import FaultInjector, parse_fault_flag
+from nightbench.simulators.instruments import SimAdc
 from nightbench.simulators.physics import BenchConfig
+from nightbench.simulators.scpi import MAKER
 from tests.conftest import session
 
 
@@ -31,7 +33,7 @@ def test_drop_after_n_messages_then_the_instrument_comes_back(inproc_bench):
     with pytest.raises(ConnectionLost):
         meter.query("*IDN?")          # the third message: connection closed, no reply
     again = session(bench.resources()["meter"])
-    assert again.identify().startswith("NIGHTBENCH-SIM")
+    assert again.identify().startswith(MAKER)
 
 
 def test_drop_for_good_refuses_every_reconnect(inproc_bench):
@@ -77,11 +79,11 @@ def test_garbage_reply_is_reproducible_with_the_seed(inproc_bench):
         sock = socket.create_connection(("127.0.0.1", int(bench.resources()["meter"].split("::")[2])))
         f = sock.makefile("rb")
         sock.sendall(b"*IDN?\n")
-        assert f.readline().startswith(b"NIGHTBENCH-SIM")
+        assert f.readline().startswith(MAKER.encode())
         sock.sendall(b"*IDN?\n")
         replies.append(f.readline())
         sock.close()
-    assert replies[0] == replies[1] and not replies[0].startswith(b"NIGHTBENCH")
+    assert replies[0] == replies[1] and not replies[0].startswith(MAKER.encode())
 
 
 def test_spurious_error_entry(inproc_bench):
@@ -131,7 +133,7 @@ def test_faults_on_the_serial_meter(inproc_bench):
         meter.query("*IDN?")
     time.sleep(0.6)
     meter.transport.flush_input()
-    assert meter.identify().startswith("NIGHTBENCH-SIM")
+    assert meter.identify().startswith(MAKER)
 
 
 def test_query_interrupted_and_unterminated(inproc_bench):
@@ -160,7 +162,7 @@ def test_adc_board_line_protocol(inproc_bench):
     bench = inproc_bench()
     res = bench.resources()
     adc = session(res["adc_serial"])
-    assert adc.query("V").startswith("NS-ADC24")
+    assert adc.query("V") == SimAdc.idn
     src = session(res["source"])
     src.apply(["FREQ 100MHZ", "POW -30", "OUTP ON"])
     time.sleep(0.05)
