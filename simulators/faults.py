@@ -114,7 +114,8 @@ class FaultInjector:
             fired = self._fire(instrument, ("drop", "silence", "delay", "garbage", "spurious_error"))
             for fault in fired:
                 if fault.kind in ("drop", "silence"):
-                    until = float("inf") if fault.duration_s < 0 else self.clock() + fault.duration_s
+                    away_s = -1.0 if fault.duration_s is None else fault.duration_s   # set by from_dict
+                    until = float("inf") if away_s < 0 else self.clock() + away_s
                     self.away_until[instrument] = max(self.away_until[instrument], until)
                     self.away_kind[instrument] = fault.kind
             return fired
@@ -139,4 +140,5 @@ class FaultInjector:
 
     def garbage(self, fault: Fault) -> bytes:
         """Seeded junk, newline-terminated so it lands as a (stale) reply."""
-        return bytes(fault.rng.randrange(1, 256) for _ in range(fault.rng.randrange(3, 24))).replace(b"\n", b"#") + b"\n"
+        junk = bytes(fault.rng.randrange(1, 256) for _ in range(fault.rng.randrange(3, 24)))
+        return junk.replace(b"\n", b"#") + b"\n"

@@ -8,6 +8,7 @@ query left without its terminator past a deadline is unterminated (-420).
 
 from __future__ import annotations
 
+import contextlib
 import os
 import select
 import socket
@@ -15,8 +16,7 @@ import threading
 import time
 from typing import Protocol
 
-from nightbench.simulators.faults import FaultInjector
-from nightbench.simulators.scpi import ScpiInstrument
+from nightbench.simulators.faults import Fault, FaultInjector
 
 UNTERMINATED_S = 1.0   # a partial message older than this is dropped (-420 if it was a query)
 
@@ -60,10 +60,8 @@ class SocketStream:
             return False
 
     def close(self) -> None:
-        try:
+        with contextlib.suppress(OSError):
             self.sock.shutdown(socket.SHUT_RDWR)
-        except OSError:
-            pass
         self.sock.close()
 
 
@@ -97,63 +95,101 @@ class PtyStream:
         """A serial line cannot be 'dropped'; the instrument just goes quiet (see serve_stream)."""
 
 
-def serve_stream(stream: Stream, instrument: ScpiInstrument, name: str, faults: FaultInjector,
-                 lock: threading.Lock, stop: threading.Event, *, can_drop: bool = True) -> None:
-    """Serve one client on `stream` until it goes away, a drop fault closes it, or `stop` is set."""
-    buf = b""
-    last_byte = time.monotonic()
-    while not stop.is_set():
-        if b"\n" not in buf:
-            data = stream.recv(0.1)
-            if data is None:
-                return
-            if data:
-                buf += data
-                last_byte = time.monotonic()
-            elif buf and time.monotonic() - last_byte > UNTERMINATED_S:
-                with lock:
-                    if b"?" in buf:
-                        instrument.push_error(-420, "query without terminator")
-                    else:
-                        instrument.push_error(-100, "message without terminator")
-                buf = b""
-            continue
-        raw, buf = buf.split(b"\n", 1)
-        away = faults.away(name)
-        if away == "drop" and can_drop:
-            stream.close()
-            return
+class Instrument(Protocol):
+    """What a link needs of a simulated instrument (SCPI or a plain line protocol)."""
+
+    def execute(self, message: str) -> str | None: ...
+
+    def push_error(self, code: int, detail: str = "") -> None: ...
+
+
+class _Gone(Exception):
+    """The client went away, or a drop fault hung up on it."""
+
+
+class _Client:
+    """One client's byte stream: cut into messages, faults applied, replies sent."""
+
+    def __init__(self, stream: Stream, instrument: Instrument, name: str, faults: FaultInjector,
+                 lock: threading.Lock, can_drop: bool) -> None:
+        self.stream, self.instrument, self.name = stream, instrument, name
+        self.faults, self.lock, self.can_drop = faults, lock, can_drop
+        self.buf = b""
+        self.last_byte = time.monotonic()
+
+    def next_message(self) -> bytes | None:
+        """The next complete message, or None if none is complete yet."""
+        if b"\n" in self.buf:
+            raw, self.buf = self.buf.split(b"\n", 1)
+            return raw
+        data = self.stream.recv(0.1)
+        if data is None:
+            raise _Gone
+        if data:
+            self.buf += data
+            self.last_byte = time.monotonic()
+        elif self.buf and time.monotonic() - self.last_byte > UNTERMINATED_S:
+            with self.lock:
+                if b"?" in self.buf:
+                    self.instrument.push_error(-420, "query without terminator")
+                else:
+                    self.instrument.push_error(-100, "message without terminator")
+            self.buf = b""
+        return None
+
+    def _hang_up_if(self, dropped: bool) -> None:
+        if dropped and self.can_drop:
+            self.stream.close()
+            raise _Gone
+
+    def handle(self, raw: bytes) -> None:
+        away = self.faults.away(self.name)
+        self._hang_up_if(away == "drop")
         if away:
-            continue  # silent: read and ignored, as a hung instrument would
-        fired = faults.on_message(name)
+            return  # silent: read and ignored, as a hung instrument would
+        fired = self.faults.on_message(self.name)
         kinds = {f.kind for f in fired}
+        self._hang_up_if("drop" in kinds)
         if kinds & {"drop", "silence"}:
-            if "drop" in kinds and can_drop:
-                stream.close()
-                return
-            continue
+            return
         try:
             message = raw.decode("ascii").rstrip("\r")
         except UnicodeDecodeError:
-            with lock:
-                instrument.push_error(-100, "non-ASCII bytes in message")
-            continue
-        with lock:
-            reply = instrument.execute(message)
+            with self.lock:
+                self.instrument.push_error(-100, "non-ASCII bytes in message")
+            return
+        with self.lock:
+            reply = self.instrument.execute(message)
             for fault in fired:
                 if fault.kind == "spurious_error":
-                    instrument.push_error(fault.code or -221, "spurious (injected)")
-        if reply is not None and (b"\n" in buf or stream.pending()):
-            with lock:
-                instrument.push_error(-410, "a new message arrived before the reply was sent")
-            continue
+                    self.instrument.push_error(fault.code or -221, "spurious (injected)")
+        if reply is not None and (b"\n" in self.buf or self.stream.pending()):
+            with self.lock:
+                self.instrument.push_error(-410, "a new message arrived before the reply was sent")
+            return
+        self._send(reply, fired)
+
+    def _send(self, reply: str | None, fired: list[Fault]) -> None:
         for fault in fired:
             if fault.kind == "delay":
                 time.sleep(fault.delay_s)
         garbage = [f for f in fired if f.kind == "garbage"]
         if garbage:
-            if not stream.send(faults.garbage(garbage[0])):
-                return
-            continue
-        if reply is not None and not stream.send(reply.encode("ascii") + b"\n"):
-            return
+            out: bytes | None = self.faults.garbage(garbage[0])
+        else:
+            out = None if reply is None else reply.encode("ascii") + b"\n"
+        if out is not None and not self.stream.send(out):
+            raise _Gone
+
+
+def serve_stream(stream: Stream, instrument: Instrument, name: str, faults: FaultInjector,
+                 lock: threading.Lock, stop: threading.Event, *, can_drop: bool = True) -> None:
+    """Serve one client on `stream` until it goes away, a drop fault closes it, or `stop` is set."""
+    client = _Client(stream, instrument, name, faults, lock, can_drop)
+    try:
+        while not stop.is_set():
+            raw = client.next_message()
+            if raw is not None:
+                client.handle(raw)
+    except _Gone:
+        return

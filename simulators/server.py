@@ -12,6 +12,7 @@ The meter is one instrument reachable two ways (LAN and serial), as real meters 
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import os
 import pty
@@ -21,6 +22,7 @@ import sys
 import threading
 import tomllib
 import tty
+from collections.abc import Sequence
 from typing import Any, TextIO
 
 from nightbench.simulators.faults import FaultInjector, parse_fault_flag
@@ -79,10 +81,8 @@ class PtyPort:
 
     def close(self) -> None:
         for fd in (self.master, self.slave):
-            try:
+            with contextlib.suppress(OSError):
                 os.close(fd)
-            except OSError:
-                pass
 
 
 class Bench:
@@ -124,7 +124,7 @@ class Bench:
             port.close()
 
 
-def load_config(path: str | None, fault_flags: list[str] = (), seed: int | None = None) -> BenchConfig:
+def load_config(path: str | None, fault_flags: Sequence[str] = (), seed: int | None = None) -> BenchConfig:
     data: dict[str, Any] = {}
     if path:
         with open(path, "rb") as fh:
@@ -137,24 +137,21 @@ def load_config(path: str | None, fault_flags: list[str] = (), seed: int | None 
 
 
 def serve(*, source_port: int = 0, meter_port: int = 0, config_path: str | None = None,
-          log_path: str | None = None, faults: list[str] = (), seed: int | None = None,
+          log_path: str | None = None, faults: Sequence[str] = (), seed: int | None = None,
           dialect: str = "scpi") -> int:
     """Run the bench in this process until SIGTERM/SIGINT; print the resource line first."""
     config = load_config(config_path, faults, seed)
-    log = open(log_path, "a", encoding="utf-8") if log_path else None
-    bench = Bench(config, source_port=source_port, meter_port=meter_port, log=log, dialect=dialect)
-    stop = threading.Event()
-    signal.signal(signal.SIGTERM, lambda *_: stop.set())
-    signal.signal(signal.SIGINT, lambda *_: stop.set())
-    bench.start()
-    print(json.dumps(bench.resources()), flush=True)
-    try:
+    with contextlib.ExitStack() as stack:
+        log = stack.enter_context(open(log_path, "a", encoding="utf-8")) if log_path else None
+        bench = Bench(config, source_port=source_port, meter_port=meter_port, log=log, dialect=dialect)
+        stack.callback(bench.stop)   # threads end before the log closes
+        stop = threading.Event()
+        signal.signal(signal.SIGTERM, lambda *_: stop.set())
+        signal.signal(signal.SIGINT, lambda *_: stop.set())
+        bench.start()
+        print(json.dumps(bench.resources()), flush=True)
         while not stop.wait(0.2):
             pass
-    finally:
-        bench.stop()
-        if log:
-            log.close()
     return 0
 
 
