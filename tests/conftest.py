@@ -22,6 +22,26 @@ def source_log(path: Path) -> list[dict[str, Any]]:
     return [json.loads(line) for line in path.read_text().splitlines() if line.strip()]
 
 
+def wait_until(condition: Callable[[], Any], what: str, timeout_s: float = 10.0, poll_s: float = 0.01) -> Any:
+    """Poll `condition` until it is truthy and return its value; fail naming `what` after
+    `timeout_s`. For tests that wait for an event, not for an amount of time."""
+    import time
+
+    deadline = time.monotonic() + timeout_s
+    while not (value := condition()):
+        assert time.monotonic() < deadline, f"timed out after {timeout_s:g} s waiting for {what}"
+        time.sleep(poll_s)
+    return value
+
+
+def output_settled(model: Any, tolerance_v: float) -> bool:
+    """Whether a simulated bench's detector output (in-process, clock time.monotonic) is within
+    `tolerance_v` of where it is heading: the event a test waits for after setting the source."""
+    import time
+
+    return abs(model.output.value(time.monotonic()) - model.steady_output_v()) < tolerance_v
+
+
 def assert_never_above(path: Path, ceiling_dbm: float) -> None:
     """Invariant 1 from outside: the true DUT-plane level the simulator saw, whenever RF was on."""
     levels = [e["dut_dbm"] for e in source_log(path) if e["output"] and e["dut_dbm"] is not None]

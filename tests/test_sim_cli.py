@@ -20,7 +20,7 @@ def test_sim_prints_resources_serves_and_stops_cleanly(sig):
     try:
         line = proc.stdout.readline()
         resources = json.loads(line)
-        # DESIGN.md sim line: source, meter, meter_serial (adc_serial is this simulator's extra)
+        # docs/design.md, the sim line: source, meter, meter_serial (adc_serial is this simulator's extra)
         assert {"source", "meter", "meter_serial"} <= set(resources)
         assert resources["source"].startswith("TCPIP::127.0.0.1::") and resources["source"].endswith("::SOCKET")
         assert resources["meter_serial"].startswith("ASRL/dev/") and resources["meter_serial"].endswith("::INSTR")

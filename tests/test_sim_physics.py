@@ -18,7 +18,7 @@ from nightbench.simulators.physics import (
     thermal_noise_dbm_per_hz,
     vrms_to_dbm,
 )
-from tests.conftest import session
+from tests.conftest import output_settled, session, wait_until
 
 
 def test_first_order_step_matches_scipy_signal():
@@ -128,7 +128,7 @@ def test_reading_right_after_a_step_differs_as_the_time_constant_predicts(inproc
     src, meter = session(res["source"]), session(res["meter"])
     meter.apply(["VOLT:DC:NPLC 0.05"])   # 1 ms aperture
     src.apply(["FREQ 100MHZ", "POW -80", "OUTP ON"])
-    time.sleep(2.5)                      # settle fully at the low level (8 tau)
+    wait_until(lambda: output_settled(bench.model, 1e-7), "the output to settle at the low level")
     model = bench.model
     v0 = model.truth_v(model.dut_dbm(), 100e6)
     t_before = time.monotonic()
@@ -145,7 +145,7 @@ def test_reading_right_after_a_step_differs_as_the_time_constant_predicts(inproc
         return v1 - (v1 - v0) * math.exp(-(t - t_step) / 0.3)
     assert law(t_set) - 1e-5 <= reading <= law(t_after) + 1e-5
     assert reading < v1 - 0.5 * (v1 - v0), "a reading right after the step is still far from the final value"
-    time.sleep(3.0)                      # 10 tau later it has arrived (within 5e-5 of the step)
+    time.sleep(3.0)   # the law under test: 10 tau later it has arrived (within 5e-5 of the step)
     assert float(meter.query("READ?")) == pytest.approx(v1, abs=abs(v1 - v0) * 5e-5 + 1e-5)
 
 
@@ -155,7 +155,7 @@ def test_meter_range_overload_and_resolution(inproc_bench):
     res = bench.resources()
     src, meter = session(res["source"]), session(res["meter"])
     src.apply(["FREQ 100MHZ", "POW -10", "OUTP ON"])  # ~1.6 V out
-    time.sleep(0.05)
+    wait_until(lambda: output_settled(bench.model, 1e-3), "the output to reach ~1.6 V")
     meter.apply(["VOLT:DC:RANG 0.1"])
     assert float(meter.query("READ?")) == pytest.approx(9.9e37)
     meter.apply(["VOLT:DC:RANG 10"])
