@@ -21,16 +21,17 @@ from typing import Any
 from nightbench.drivers.errors import InputError
 from nightbench.store.errors import StoreError, is_busy
 from nightbench.store.fields import FIT_COLUMNS, VIEW_COLUMNS, fits_table_sql
+from nightbench.store.states import JobState, RunState, sql_in
 
 SCHEMA_VERSION = 3   # 2: fits, run_counts, and the v_points / v_fits views; 3: jobs, service (docs/database.md)
-STATES = ("queued", "running", "completed", "interrupted", "failed")
 
+# the CHECK constraints come from store/states.py (generated text identical to the words written before)
 SCHEMA = f"""
 CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
 CREATE TABLE IF NOT EXISTS runs (
     id INTEGER PRIMARY KEY,
     name TEXT NOT NULL,
-    state TEXT NOT NULL CHECK (state IN ('queued','running','completed','interrupted','failed')),
+    state TEXT NOT NULL CHECK (state IN {sql_in(RunState)}),
     plan_file TEXT,
     plan_text TEXT NOT NULL,
     plan_json TEXT NOT NULL,
@@ -106,7 +107,7 @@ CREATE TABLE IF NOT EXISTS jobs (
     not_before TEXT NOT NULL,
     not_before_ts REAL NOT NULL,
     submitted_at TEXT NOT NULL,
-    state TEXT NOT NULL CHECK (state IN ('queued','running','completed','interrupted','failed','cancelled')),
+    state TEXT NOT NULL CHECK (state IN {sql_in(JobState)}),
     run_id INTEGER REFERENCES runs(id),
     cancel_requested INTEGER NOT NULL DEFAULT 0,
     error TEXT
@@ -261,7 +262,7 @@ class Store:
 
     # -- runs -----------------------------------------------------------------------------
     def create_run(self, *, name: str, plan_file: str | None, plan_text: str, plan_json: dict[str, Any],
-                   dut_id: str | None, points_total: int, state: str = "queued",
+                   dut_id: str | None, points_total: int, state: str = RunState.QUEUED,
                    files: dict[str, str] | None = None) -> int:
         """A run with its plan snapshot: the text, the parsed form, and the referenced files'
         texts (keyed by the path the plan wrote), in one transaction."""
@@ -287,9 +288,9 @@ class Store:
     def mark_running(self, run_id: int) -> None:
         with self._sql(f"marking run {run_id} running"):
             self.conn.execute(
-                "UPDATE runs SET state='running', started_at=COALESCE(started_at, ?), finished_at=NULL, error=NULL,"
+                "UPDATE runs SET state=?, started_at=COALESCE(started_at, ?), finished_at=NULL, error=NULL,"
                 " pid=?, host=?, heartbeat_at=? WHERE id=?",
-                (now_iso(), os.getpid(), socket.gethostname(), now_iso(), run_id))
+                (RunState.RUNNING, now_iso(), os.getpid(), socket.gethostname(), now_iso(), run_id))
 
     def set_identities(self, run_id: int, source_idn: str, meter_idn: str) -> None:
         with self._sql(f"storing the instruments of run {run_id}"):
@@ -297,7 +298,7 @@ class Store:
                               (source_idn, meter_idn, run_id))
 
     def finish_run(self, run_id: int, state: str, error: str | None = None) -> None:
-        assert state in STATES
+        assert state in tuple(RunState)
         with self._sql(f"storing the end of run {run_id}"):
             self.conn.execute("UPDATE runs SET state=?, finished_at=?, error=? WHERE id=?",
                               (state, now_iso(), error, run_id))
