@@ -181,86 +181,114 @@ def _parse_v1(reader: _Reader) -> Touchstone:
 
 
 def _parse_v2(reader: _Reader) -> Touchstone:
-    options: _Options | None = None
-    header: dict[str, tuple[int, str]] = {}
-    tokens: list[tuple[int, float]] = []
-    section = "header"
-    reference: list[float] | None = None
-    for index, (line, content) in enumerate(reader.rows):
-        keyword = _KEYWORD.match(content)
-        if reference is not None and len(reference) < 2 and not keyword:
-            reference.extend(reader.numbers(line, content))  # [Reference] may continue on later lines
-            continue
-        if section == "information":
-            if keyword and keyword.group(1).strip().lower() == "end information":
-                section = "header"
-            continue
-        if keyword:
-            word, rest = " ".join(keyword.group(1).lower().split()), keyword.group(2).strip()
-            if index == 0:
-                if rest not in ("2.0",):
-                    raise reader.fail(f"Touchstone version '{rest}' is not supported (1.1 and 2.0 are)", line)
+    walk = _V2Walk(reader)
+    walk.walk()
+    return walk.result()
+
+
+V2_SECTIONS = {"begin information": "information", "network data": "network", "noise data": "noise"}
+V2_HEADER = ("number of ports", "two-port data order", "number of frequencies", "number of noise frequencies",
+             "matrix format")
+
+
+class _V2Walk:
+    """One pass over a Touchstone 2.0 text: the header keywords, the option line, and the numbers
+    of each section; `result` then checks what the keywords promised against the data."""
+
+    def __init__(self, reader: _Reader) -> None:
+        self.reader = reader
+        self.options: _Options | None = None
+        self.header: dict[str, tuple[int, str]] = {}
+        self.tokens: list[tuple[int, float]] = []
+        self.section = "header"
+        self.reference: list[float] | None = None
+
+    def walk(self) -> None:
+        for index, (line, content) in enumerate(self.reader.rows):
+            keyword = _KEYWORD.match(content)
+            if self.reference is not None and len(self.reference) < 2 and not keyword:
+                self.reference.extend(self.reader.numbers(line, content))  # [Reference] may continue on later lines
                 continue
-            if word == "end":
-                break
-            if word == "begin information":
-                section = "information"
-            elif word == "network data":
-                section = "network"
-            elif word == "noise data":
-                section = "noise"
-            elif word == "reference":
-                reference = reader.numbers(line, rest)
-            elif word == "mixed-mode order":
-                raise reader.fail("mixed-mode data is not a single-ended path", line)
-            elif word in ("number of ports", "two-port data order", "number of frequencies",
-                          "number of noise frequencies", "matrix format"):
-                if word in header:
-                    raise reader.fail(f"[{keyword.group(1)}] is given twice", line)
-                header[word] = (line, rest)
+            if self.section == "information":
+                if keyword and keyword.group(1).strip().lower() == "end information":
+                    self.section = "header"
+                continue
+            if keyword:
+                if index == 0:
+                    self._version(line, keyword.group(2).strip())
+                elif self._keyword(line, keyword):
+                    break
+            elif content.startswith("#"):
+                self._option_line(line, content)
             else:
-                raise reader.fail(f"unknown keyword [{keyword.group(1)}]", line)
-            continue
-        if content.startswith("#"):
-            if options is not None:
-                raise reader.fail("a Touchstone 2.0 file has one option line", line)
-            if section != "header":
-                raise reader.fail("the option line must come before [Network Data]", line)
-            options = reader.options(line, content)
-            continue
-        if section == "network":
-            tokens.extend((line, v) for v in reader.numbers(line, content))
-        elif section == "noise":
-            reader.numbers(line, content)
+                self._data(line, content)
+
+    def _version(self, line: int, rest: str) -> None:
+        if rest not in ("2.0",):
+            raise self.reader.fail(f"Touchstone version '{rest}' is not supported (1.1 and 2.0 are)", line)
+
+    def _keyword(self, line: int, keyword: re.Match[str]) -> bool:
+        """Take in one [keyword]; True at [End]."""
+        word, rest = " ".join(keyword.group(1).lower().split()), keyword.group(2).strip()
+        if word == "end":
+            return True
+        if word in V2_SECTIONS:
+            self.section = V2_SECTIONS[word]
+        elif word == "reference":
+            self.reference = self.reader.numbers(line, rest)
+        elif word == "mixed-mode order":
+            raise self.reader.fail("mixed-mode data is not a single-ended path", line)
+        elif word in V2_HEADER:
+            if word in self.header:
+                raise self.reader.fail(f"[{keyword.group(1)}] is given twice", line)
+            self.header[word] = (line, rest)
         else:
-            raise reader.fail("data outside [Network Data]", line)
-    if options is None:
-        raise reader.fail("no option line (# <unit> S <format> R <ohms>)", None)
+            raise self.reader.fail(f"unknown keyword [{keyword.group(1)}]", line)
+        return False
 
-    def required(word: str) -> tuple[int, str]:
-        if word not in header:
-            raise reader.fail(f"a two-port Touchstone 2.0 file needs [{word.title()}]", None)
-        return header[word]
+    def _option_line(self, line: int, content: str) -> None:
+        if self.options is not None:
+            raise self.reader.fail("a Touchstone 2.0 file has one option line", line)
+        if self.section != "header":
+            raise self.reader.fail("the option line must come before [Network Data]", line)
+        self.options = self.reader.options(line, content)
 
-    line, ports = required("number of ports")
-    if ports != "2":
-        raise reader.fail(f"[Number of Ports] is {ports}; a path needs a two-port file", line)
-    line, order = required("two-port data order")
-    if order not in ("12_21", "21_12"):
-        raise reader.fail("[Two-Port Data Order] must be 12_21 or 21_12", line)
-    count_line, count = required("number of frequencies")
-    line, matrix = header.get("matrix format", (0, "full"))
-    matrix = matrix.lower()
-    if matrix not in ("full", "lower", "upper"):
-        raise reader.fail("[Matrix Format] must be Full, Lower or Upper", line)
-    if reference is not None and len(reference) != 2:
-        raise reader.fail("[Reference] needs one resistance per port (2)", None)
-    references = tuple(reference) if reference else (options.reference_ohm,) * 2
-    result = _build(reader, "2.0", options, references, tokens, order, matrix)
-    if not count.isdigit() or int(count) != len(result.frequency_hz):
-        raise reader.fail(f"[Number of Frequencies] says {count} but the file holds "
-                          f"{len(result.frequency_hz)}", count_line)
-    return result
+    def _data(self, line: int, content: str) -> None:
+        if self.section == "network":
+            self.tokens.extend((line, v) for v in self.reader.numbers(line, content))
+        elif self.section == "noise":
+            self.reader.numbers(line, content)   # checked, then skipped
+        else:
+            raise self.reader.fail("data outside [Network Data]", line)
+
+    def _required(self, word: str) -> tuple[int, str]:
+        if word not in self.header:
+            raise self.reader.fail(f"a two-port Touchstone 2.0 file needs [{word.title()}]", None)
+        return self.header[word]
+
+    def result(self) -> Touchstone:
+        reader, options = self.reader, self.options
+        if options is None:
+            raise reader.fail("no option line (# <unit> S <format> R <ohms>)", None)
+        line, ports = self._required("number of ports")
+        if ports != "2":
+            raise reader.fail(f"[Number of Ports] is {ports}; a path needs a two-port file", line)
+        line, order = self._required("two-port data order")
+        if order not in ("12_21", "21_12"):
+            raise reader.fail("[Two-Port Data Order] must be 12_21 or 21_12", line)
+        count_line, count = self._required("number of frequencies")
+        line, matrix = self.header.get("matrix format", (0, "full"))
+        matrix = matrix.lower()
+        if matrix not in ("full", "lower", "upper"):
+            raise reader.fail("[Matrix Format] must be Full, Lower or Upper", line)
+        if self.reference is not None and len(self.reference) != 2:
+            raise reader.fail("[Reference] needs one resistance per port (2)", None)
+        references = tuple(self.reference) if self.reference else (options.reference_ohm,) * 2
+        result = _build(reader, "2.0", options, references, self.tokens, order, matrix)
+        if not count.isdigit() or int(count) != len(result.frequency_hz):
+            raise reader.fail(f"[Number of Frequencies] says {count} but the file holds "
+                              f"{len(result.frequency_hz)}", count_line)
+        return result
 
 
 def _build(reader: _Reader, version: str, options: _Options, references: tuple[float, ...],
