@@ -28,7 +28,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 from nightbench.drivers.visa import resource_manager, set_nodelay
 from nightbench.measure.engine import Engine
 from nightbench.measure.signals import StopFlag
-from nightbench.plan.model import parse_plan
+from nightbench.plan.load import parse_plan
 from nightbench.runs import new_run
 from nightbench.simproc import SimProcess
 from nightbench.store.db import Store

@@ -38,7 +38,7 @@ import yaml
 from nightbench.measure.engine import Engine
 from nightbench.measure.signals import StopFlag
 from nightbench.measure.sweep import Point, expand
-from nightbench.plan.model import parse_plan
+from nightbench.plan.load import parse_plan
 from nightbench.runs import new_run
 from nightbench.simproc import SimProcess
 from nightbench.simulators.physics import BenchConfig, BenchModel
@@ -138,7 +138,7 @@ def run_cell(rise_s: float, fall_s: float, noise_v: float, workdir: Path) -> dic
         se = reading_noise_v(model, r["power_dbm"], window) / math.sqrt(r["samples"])
         within += r["value_v"] is not None and abs(r["value_v"] - truth) <= TOLERANCE_V + 3 * se
     minimum, _ = physical_minimum_s(visited, model, window)
-    planned_min, worst = physical_minimum_s(expand(loaded.plan), model, window)
+    planned_min, worst = physical_minimum_s(expand(loaded), model, window)
     settle_total = sum(r["settle_s"] for r in rows.values())
     fixed = elapsed - settle_total + len(rows) * worst
     ideal_fixed = len(rows) * (worst + SAMPLES * window)

@@ -27,7 +27,7 @@ import yaml
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from nightbench.plan.model import parse_plan
+from nightbench.plan.load import parse_plan
 from nightbench.runs import new_run
 from nightbench.store.db import Store
 

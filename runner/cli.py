@@ -55,19 +55,19 @@ def main() -> None:
 def check(plan: str) -> None:
     """Validate PLAN; touches no instrument and writes nothing."""
     from nightbench.measure.sweep import expand
-    from nightbench.plan.model import load_plan
+    from nightbench.plan.load import load_plan
 
     loaded = load_plan(plan)
     p = loaded.plan
-    points = expand(p)
+    points = expand(loaded)
     freqs = p.sweep.axis_values("frequency_hz")
     levels = p.sweep.axis_values("power_dbm")
-    model = p.path.loss_model()
+    model = loaded.path
     click.echo(f"{plan}: valid plan '{p.name}', {len(points)} points over {len(freqs)} frequencies")
     for line in model.describe():
         click.echo(f"  path {line}")
     for f in freqs:
-        loss = p.path.loss(f)
+        loss = model.loss(f)
         parts = model.parts(f)
         detail = " + ".join(f"{label} {part:.3f}{' (extrapolated)' if ext else ''}" for label, part, ext in parts)
         click.echo(f"  {f / 1e6:10.3f} MHz  path loss {loss:7.3f} dB  source {min(levels) + loss:7.2f} .. "
@@ -100,7 +100,7 @@ def _execute(loaded: Any, db: str, run_id: int | None) -> None:
 @friendly
 def run(plan: str, db: str | None) -> None:
     """Run PLAN now, in the foreground."""
-    from nightbench.plan.model import load_plan
+    from nightbench.plan.load import load_plan
 
     loaded = load_plan(plan)  # bad input stops here: nothing written, nothing contacted
     _execute(loaded, _db(db), None)
@@ -242,7 +242,7 @@ def demo(db: str | None) -> None:
 def submit(plan: str, when: str | None, db: str | None) -> None:
     """Queue PLAN for `serve`: validated now, stored with the files it refers to, so later edits
     of the files do not change the job."""
-    from nightbench.plan.model import load_plan
+    from nightbench.plan.load import load_plan
     from nightbench.service.queue import JobQueue
     from nightbench.service.when import parse_when
     from nightbench.store.db import Store

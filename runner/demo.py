@@ -20,7 +20,7 @@ def run_demo(db: str) -> int:
     from nightbench.analysis.report import build_report
     from nightbench.measure.signals import StopFlag
     from nightbench.output.table import render_table
-    from nightbench.plan.model import parse_plan
+    from nightbench.plan.load import parse_plan
     from nightbench.runs import execute, new_run
     from nightbench.simproc import SimProcess
     from nightbench.store.db import Store

@@ -6,7 +6,7 @@ from nightbench.measure.engine import Engine
 from nightbench.measure.signals import StopFlag
 from nightbench.measure.sweep import expand
 from nightbench.output.progress import progress_printer
-from nightbench.plan.model import LoadedPlan, parse_plan
+from nightbench.plan.load import LoadedPlan, parse_plan
 from nightbench.store.db import Store
 
 
@@ -14,7 +14,7 @@ def new_run(store: Store, loaded: LoadedPlan) -> int:
     """Record a run with its plan snapshot (text and parsed) before anything is contacted."""
     p = loaded.plan
     return store.create_run(name=p.name, plan_file=loaded.file, plan_text=loaded.text,
-                            plan_json=p.model_dump(mode="json"), dut_id=p.dut.id, points_total=len(expand(p)),
+                            plan_json=p.model_dump(mode="json"), dut_id=p.dut.id, points_total=len(expand(loaded)),
                             files=loaded.files)
 
 
@@ -54,7 +54,7 @@ def check_resumable(store: Store, run_id: int) -> None:
     if row["state"] == "running" and owner_alive(row):
         raise InputError(f"run {run_id} is still running (process {row['pid']} on {row['host']})")
     loaded = snapshot_plan(store, run_id)
-    expected = len(expand(loaded.plan))
+    expected = len(expand(loaded))
     if expected != row["points_total"]:
         raise InputError(f"run {run_id}: its plan snapshot expands to {expected} points, "
                          f"but the run was created with {row['points_total']}; refusing to resume")

@@ -140,6 +140,7 @@ def session(resource: str, timeout_s: float = 2.0, name: str = "instrument"):
 
     return ScpiSession(open_transport(resource, timeout_s=timeout_s), name)
 
+
 def store_run(db: Path, law: Callable[[float, float], float], *, dut_id: str = "T-1",
               frequencies: list[float] | None = None, levels: list[float] | None = None,
               analysis: dict[str, Any] | None = None, stdev_v: float | None = 1e-4,
@@ -150,7 +151,7 @@ def store_run(db: Path, law: Callable[[float, float], float], *, dut_id: str = "
     boards, what the views return); `status(P, f)` may mark a point "unsettled" or "overload".
     """
     from nightbench.measure.sweep import expand
-    from nightbench.plan.model import parse_plan
+    from nightbench.plan.load import parse_plan
     from nightbench.runs import new_run
     from nightbench.store.db import PointResult, Store
 
@@ -161,7 +162,7 @@ def store_run(db: Path, law: Callable[[float, float], float], *, dut_id: str = "
     store = Store(db)
     run_id = new_run(store, loaded)
     store.mark_running(run_id)
-    for point in expand(loaded.plan):
+    for point in expand(loaded):
         kind = status(point.power_dbm, point.frequency_hz) if status else "ok"
         value = None if kind == "overload" else law(point.power_dbm, point.frequency_hz)
         result = PointResult(value, stdev_v if value is not None else None, 4 if value is not None else 0,

@@ -16,7 +16,7 @@ from hypothesis import strategies as st
 
 from nightbench.cli import main
 from nightbench.drivers.errors import InputError
-from nightbench.plan.model import parse_plan
+from nightbench.plan.load import parse_plan
 from tests.conftest import plan_dict
 
 

@@ -16,7 +16,8 @@ from nightbench.drivers.scpi import join_program, split_response
 from nightbench.drivers.transport import check_resource
 from nightbench.measure.roles import open_source
 from nightbench.measure.signals import StopFlag
-from nightbench.plan.model import SourceSpec, parse_plan
+from nightbench.plan.load import parse_plan
+from nightbench.plan.model import SourceSpec
 from nightbench.runs import execute, new_run
 from nightbench.simproc import SimProcess
 from nightbench.simulators.physics import BenchConfig, BenchModel

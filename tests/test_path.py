@@ -21,7 +21,7 @@ from scipy.interpolate import interp1d
 
 from nightbench.drivers.errors import InputError
 from nightbench.measure.sweep import expand
-from nightbench.plan.model import load_plan, parse_plan
+from nightbench.plan.load import load_plan, parse_plan
 from nightbench.plan.path import mainline_loss_db
 from nightbench.plan.touchstone import parse_touchstone
 from nightbench.runs import new_run, snapshot_plan
@@ -122,17 +122,17 @@ def test_a_file_named_for_another_port_count_is_refused():
 # -- tables: sorting, duplicates, interpolation, extrapolation ----------------------------
 
 def _plan_text(path: dict, freqs: list[float], **kw) -> str:
-    return yaml.safe_dump(plan_dict(OFFLINE, path=path, sweep={"frequency_hz": freqs, "power_dbm": [-40, -20]},
+    return yaml.safe_dump(plan_dict(OFFLINE, path=path, sweep={"frequency_hz": freqs, "power_dbm": [-40, -30, -20]},
                                     **kw), sort_keys=False)
 
 
 def test_table_is_sorted_and_interpolated_linearly_in_db():
     rows = [[900e6, 6.72], [100e6, 6.08], [500e6, 6.4], [100e6, 6.08], [2e9, 7.9]]
     freqs = [100e6, 300e6, 700e6, 1.234e9, 2e9]
-    plan = parse_plan(_plan_text({"table": rows}, freqs), "p.yaml").plan
+    loaded = parse_plan(_plan_text({"table": rows}, freqs), "p.yaml")
     ref_f, ref_l = zip(*sorted({tuple(r) for r in rows}))
     # Reference library: numpy.interp, linear interpolation between the sorted rows.
-    np.testing.assert_allclose([plan.path.loss(f) for f in freqs], np.interp(freqs, ref_f, ref_l), rtol=1e-12)
+    np.testing.assert_allclose([loaded.path.loss(f) for f in freqs], np.interp(freqs, ref_f, ref_l), rtol=1e-12)
 
 
 def test_table_duplicate_with_another_loss_is_refused_at_its_row():
@@ -153,8 +153,8 @@ def test_frequency_beyond_the_table_is_refused_unless_extrapolation_is_asked_for
     assert "1.2e+09 Hz lies outside" in info.value.message and "extrapolate" in info.value.message
 
     f = [50e6, 1.2e9]
-    held = parse_plan(_plan_text({"table": table, "extrapolate": "hold"}, f), "p.yaml").plan
-    linear = parse_plan(_plan_text({"table": table, "extrapolate": "linear"}, f), "p.yaml").plan
+    held = parse_plan(_plan_text({"table": table, "extrapolate": "hold"}, f), "p.yaml")
+    linear = parse_plan(_plan_text({"table": table, "extrapolate": "linear"}, f), "p.yaml")
     tf, tl = zip(*table)
     # Reference library: scipy interp1d, end values held / end segments extended.
     hold_ref = interp1d(tf, tl, bounds_error=False, fill_value=(tl[0], tl[-1]))
@@ -189,11 +189,11 @@ def test_coupler_mainline_loss_matches_the_published_formula():
 
 
 def test_a_20_db_coupler_taps_one_percent():
-    # Common practice (trade fact, DESIGN.md): a 20 dB coupler taps 1 % of the power; the
+    # Common practice (trade fact, docs/design.md): a 20 dB coupler taps 1 % of the power; the
     # mainline keeps the rest, so the two arms' powers add up to the input power.
     def loss(arm: str) -> float:
         text = _plan_text({"coupler": {"coupling_db": 20, "arm": arm}}, [100e6])
-        return parse_plan(text, "p.yaml").plan.path.loss(100e6)
+        return parse_plan(text, "p.yaml").path.loss(100e6)
 
     coupled, mainline = 10 ** (-loss("coupled") / 10), 10 ** (-loss("mainline") / 10)
     assert coupled == pytest.approx(0.01, rel=1e-12)
@@ -208,15 +208,15 @@ def test_chain_losses_add(write_plan, tmp_path):
                 {"name": "tap", "coupler": {"coupling_db": 10, "arm": "coupled", "excess_loss_db": 0.3}},
                 {"name": "adapter", "table": [[1e7, 0.05], [3e9, 0.25]]}]
     freqs = [100e6, 777e6]
-    plan = load_plan(write_plan(_plan_text({"elements": elements}, freqs))).plan
+    loaded = load_plan(write_plan(_plan_text({"elements": elements}, freqs)))
     ref = _skrf(DATA / "ts11-cable-ri-hz.s2p")
     for f in freqs:
         # scikit-rf's |S21| in dB, interpolated linearly in dB (numpy.interp), plus the others
         jumper = -np.interp(f, ref.f, ref.s_db[:, 1, 0])
         expected = jumper + 10 + (10 + 0.3) + np.interp(f, [1e7, 3e9], [0.05, 0.25])
-        assert plan.path.loss(f) == pytest.approx(expected, abs=1e-9)
-    for point in expand(plan):
-        wanted = point.power_dbm + plan.path.loss(point.frequency_hz)   # rounded down to 0.001 dB
+        assert loaded.path.loss(f) == pytest.approx(expected, abs=1e-9)
+    for point in expand(loaded):
+        wanted = point.power_dbm + loaded.path.loss(point.frequency_hz)   # rounded down to 0.001 dB
         assert wanted - 0.001 < point.source_dbm <= wanted + 1e-9
 
 
@@ -244,7 +244,7 @@ def test_bad_touchstone_in_a_plan_is_exit_2_naming_file_line_and_plan_key(write_
 def test_check_shows_loss_and_source_range_per_frequency_and_refuses_beyond_the_source(write_plan, tmp_path):
     (tmp_path / "cable.s2p").write_text((DATA / "ts20-pad-db-mhz-lower.s2p").read_text())
     plan = plan_dict(OFFLINE, path={"elements": [{"name": "pad", "touchstone": "cable.s2p"}, {"loss_db": 3}]},
-                     sweep={"frequency_hz": [100e6, 1e9], "power_dbm": [-60, -10]})
+                     sweep={"frequency_hz": [100e6, 1e9], "power_dbm": [-60, -40, -20, -10]})
     res = cli("check", str(write_plan(plan)))
     assert res.returncode == 0, res.stderr
     ref = _skrf(DATA / "ts20-pad-db-mhz-lower.s2p")
@@ -268,12 +268,12 @@ def test_snapshot_keeps_the_file_content_and_resume_uses_it(bench, write_plan, t
     cal.mkdir()
     (cal / "path.s2p").write_text(original)
     plan = plan_dict(bench.resources, path={"touchstone": "cal/path.s2p"}, limits={"dut_max_dbm": -20},
-                     sweep={"frequency_hz": [100e6, 1e9], "power_dbm": [-50, -40]})
+                     sweep={"frequency_hz": [100e6, 1e9], "power_dbm": [-50, -40, -30]})
     loaded = load_plan(write_plan(plan))
     store = Store(db)
     run_id = new_run(store, loaded)   # recorded (queued), not yet run
     assert store.run_files(run_id) == {"cal/path.s2p": original}
-    expected = {p.index: p.source_dbm for p in expand(loaded.plan)}
+    expected = {p.index: p.source_dbm for p in expand(loaded)}
     store.close()
 
     # the file is edited on disk after the run was recorded: the run must not notice
@@ -286,7 +286,7 @@ def test_snapshot_keeps_the_file_content_and_resume_uses_it(bench, write_plan, t
     (cal / "path.s2p").unlink()
     again = snapshot_plan(Store(db), run_id)
     assert again.files == {"cal/path.s2p": original}
-    assert again.plan.path.loss(1e9) == pytest.approx(loaded.plan.path.loss(1e9), abs=1e-12)
+    assert again.path.loss(1e9) == pytest.approx(loaded.path.loss(1e9), abs=1e-12)
 
 
 # -- acceptance: the simulated bench, path given only as a Touchstone file ---------------------

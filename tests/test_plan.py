@@ -1,4 +1,4 @@
-"""Plan format v1: loading, validation messages, expansion (DESIGN.md, "Plan format")."""
+"""Plan format v1: loading, validation messages, expansion (docs/design.md, "Plans")."""
 
 from __future__ import annotations
 
@@ -8,7 +8,7 @@ import pytest
 
 from nightbench.drivers.errors import InputError
 from nightbench.measure.sweep import expand
-from nightbench.plan.model import load_plan, parse_plan
+from nightbench.plan.load import load_plan, parse_plan
 from tests.conftest import OFFLINE, cli, plan_dict
 
 REPO = Path(__file__).resolve().parent.parent
@@ -17,7 +17,7 @@ REPO = Path(__file__).resolve().parent.parent
 def test_demo_plan_is_valid():
     loaded = load_plan(REPO / "plans" / "demo.yaml")
     assert loaded.plan.name == "demo-rssi-b7"
-    assert len(expand(loaded.plan)) == 3 * 101
+    assert len(expand(loaded)) == 3 * 101
 
 
 def test_every_documented_key_is_accepted(write_plan):
@@ -50,10 +50,10 @@ analysis:
   fit_dbm: [-70, -10]
   error_limit_db: 1.0
 """
-    plan = load_plan(write_plan(text)).plan
+    loaded = load_plan(write_plan(text))
     # PyYAML alone reads 70e6 as a string (YAML 1.1); the plan loader must read a number.
-    assert plan.sweep.axis_values("frequency_hz") == [50e6, 70e6, 90e6]
-    assert plan.path.loss(70e6) == 6.5
+    assert loaded.plan.sweep.axis_values("frequency_hz") == [50e6, 70e6, 90e6]
+    assert loaded.path.loss(70e6) == 6.5
 
 
 def test_numbers_in_exponent_form_everywhere(write_plan):
@@ -61,7 +61,7 @@ def test_numbers_in_exponent_form_everywhere(write_plan):
     text = write_plan(plan).read_text().replace("loss_db: 6.28", "table: [[50e6, 6], [1.5e+8, 7]]")
     text = text.replace("tolerance_v: 0.0005", "tolerance_v: 5e-4")
     loaded = parse_plan(text, "p.yaml")
-    assert loaded.plan.path.loss(100e6) == pytest.approx(6.5)
+    assert loaded.path.loss(100e6) == pytest.approx(6.5)
     assert loaded.plan.settle.tolerance_v == 5e-4
 
 
@@ -73,11 +73,12 @@ def test_type_b_accuracies_default_to_not_stated_and_accept_exponents():
 
 
 def test_endpoints_inclusive_and_outer_axis_first():
-    plan = parse_plan(_yaml(plan_dict(OFFLINE, sweep={
+    loaded = parse_plan(_yaml(plan_dict(OFFLINE, sweep={
         "power_dbm": {"start": -10, "stop": -20, "step": -5},
         "frequency_hz": {"start": 1e6, "stop": 3e6, "points": 3},
-    })), "p.yaml").plan
-    points = expand(plan)
+    }, analysis={"fit_dbm": [-20, -10]})), "p.yaml")
+    assert loaded.order == ("power_dbm", "frequency_hz")
+    points = expand(loaded)
     assert [(p.power_dbm, p.frequency_hz) for p in points[:4]] == [(-10, 1e6), (-10, 2e6), (-10, 3e6), (-15, 1e6)]
     assert points[-1].power_dbm == -20 and len(points) == 9
     assert points[0].source_dbm == pytest.approx(-10 + 6.28)
@@ -93,6 +94,38 @@ def test_unknown_key_names_file_line_and_key(write_plan):
     assert err.key == "measure.sampels"
     assert err.line == text.splitlines().index("  sampels: 4") + 1
     assert str(path) in str(err)
+
+
+def test_sweep_order_is_refused_like_any_unknown_key():
+    # The nesting order is the order of the axes in the file. An `order` key used to be accepted
+    # and silently ignored: a plan that asked for levels outermost would have run frequencies outermost.
+    text = _yaml(plan_dict(OFFLINE)).replace("sweep:\n", "sweep:\n  order: [power_dbm, frequency_hz]\n")
+    with pytest.raises(InputError) as info:
+        parse_plan(text, "p.yaml")
+    assert info.value.key == "sweep.order"
+    assert info.value.line == text.splitlines().index("  order: [power_dbm, frequency_hz]") + 1
+    assert "unknown key" in info.value.message
+
+
+@pytest.mark.parametrize("fit, words", [
+    ([0, 10], "lies wholly outside the sweep's levels (-70 to -10 dBm)"),          # above every level
+    ([-95, -75], "lies wholly outside the sweep's levels (-70 to -10 dBm)"),       # below every level
+    ([-42, -33], "holds 2 of the sweep's levels (-40, -35 dBm); a line fit with uncertainties needs at least 3"),
+    ([-10, 0], "holds 1 of the sweep's levels (-10 dBm)"),                         # touches the top level only
+])
+def test_a_fit_range_the_sweep_does_not_fill_is_refused(fit, words):
+    # levels -70 .. -10 dBm in 5 dB steps (plan_dict); the report's line fit needs 3 levels in range
+    text = _yaml(plan_dict(OFFLINE, analysis={"fit_dbm": fit, "error_limit_db": 1.0}))
+    with pytest.raises(InputError) as info:
+        parse_plan(text, "p.yaml")
+    assert info.value.key == "analysis.fit_dbm"
+    assert info.value.line == text.splitlines().index("  fit_dbm:") + 1
+    assert words in info.value.message
+
+
+def test_a_fit_range_with_three_levels_endpoints_included_is_accepted():
+    loaded = parse_plan(_yaml(plan_dict(OFFLINE, analysis={"fit_dbm": [-20, -10]})), "p.yaml")
+    assert loaded.plan.analysis.fit_dbm == (-20, -10)
 
 
 @pytest.mark.parametrize("edit, key", [

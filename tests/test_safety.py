@@ -142,7 +142,7 @@ def test_resume_refuses_a_run_that_is_still_running(bench, write_plan, db):
 
 
 def test_resume_refuses_completed_and_unknown_runs(bench, write_plan, db):
-    plan = plan_dict(bench.resources, sweep={"frequency_hz": [100e6], "power_dbm": [-40, -30]})
+    plan = plan_dict(bench.resources, sweep={"frequency_hz": [100e6], "power_dbm": [-40, -30, -20]})
     assert cli("run", str(write_plan(plan)), "--db", str(db)).returncode == 0
     for run_id, words in (("1", "already completed"), ("7", "no run 7")):
         res = cli("resume", run_id, "--db", str(db))
@@ -153,7 +153,8 @@ def test_frequency_change_lowers_the_level_first(bench, write_plan, db):
     # Going from a frequency with more path loss to one with less: at the old level the new
     # frequency would put more than the ceiling on the DUT, so the level must come down first.
     plan = plan_dict(bench.resources, limits={"dut_max_dbm": -10},
-                     sweep={"frequency_hz": [3e9, 100e6], "power_dbm": [-12, -10]},
+                     sweep={"frequency_hz": [3e9, 100e6], "power_dbm": [-14, -12, -10]},
+                     analysis={"fit_dbm": [-14, -10]},
                      path={"table": [[100e6, 6.0 + 0.9 * 0.1 ** 0.5], [3e9, 6.0 + 0.9 * 3 ** 0.5]]})
     bench.ceiling_dbm = -10
     res = cli("run", str(write_plan(plan)), "--db", str(db))

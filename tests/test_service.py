@@ -272,7 +272,7 @@ def test_cancel_stops_a_running_job_safely_and_the_service_goes_on(bench, write_
     assert settled_log(bench)[-1]["output"] is False, "RF off when the cancelled run stopped"
     # the service goes on with the next job
     submit(write_plan(plan_dict(bench.resources, name="next-job", sweep={"frequency_hz": [100e6],
-                                                                       "power_dbm": [-40, -30]}), "next.yaml"), db)
+                                                                       "power_dbm": [-40, -30, -20]}), "next.yaml"), db)
     wait_for(lambda: job_state(db, 2) == "completed", what="the next job")
     assert proc.poll() is None, "a cancel stops the job, not the service"
     proc.send_signal(signal.SIGTERM)

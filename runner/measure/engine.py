@@ -16,8 +16,9 @@ from nightbench.measure.roles import Bench
 from nightbench.measure.settle import Direction, SettleDetector
 from nightbench.measure.signals import StopFlag
 from nightbench.measure.sweep import Point, expand
-from nightbench.plan.model import LoadedPlan
+from nightbench.plan.load import LoadedPlan
 from nightbench.store.db import PointResult, Store
+from nightbench.store.states import RunState
 
 OVERLOAD_READINGS = 3  # consecutive overrange readings that end a point as overloaded
 CEILING_SLACK_DB = 1e-6
@@ -35,6 +36,7 @@ Progress = Callable[[Point, PointResult, int, int], None]
 class Engine:
     def __init__(self, loaded: LoadedPlan, store: Store, run_id: int, stop: StopFlag,
                  progress: Progress | None = None) -> None:
+        self.loaded = loaded   # with the path's loss model and the sweep's axis order
         self.plan = loaded.plan
         self.store = store
         self.run_id = run_id
@@ -49,7 +51,7 @@ class Engine:
 
     # -- safety ---------------------------------------------------------------------------
     def _check_ceiling(self, level_dbm: float, frequency_hz: float) -> None:
-        dut = level_dbm - self.plan.path.loss(frequency_hz)
+        dut = level_dbm - self.loaded.path.loss(frequency_hz)
         if dut > self.plan.limits.dut_max_dbm + CEILING_SLACK_DB:
             raise SafetyError(
                 f"refusing to set {level_dbm:.2f} dBm at {frequency_hz:g} Hz: {dut:.2f} dBm at the DUT "
@@ -133,18 +135,18 @@ class Engine:
     def run(self) -> tuple[str, str | None]:
         """Run the missing points; return (final state, error message)."""
         store, run_id = self.store, self.run_id
-        points = expand(self.plan)
+        points = expand(self.loaded)
         done = store.done_indices(run_id)
         todo = [p for p in points if p.index not in done]
         store.mark_running(run_id)
-        state, error = "completed", None
+        state, error = RunState.COMPLETED, None
         self.doing = "opening the instruments"
         try:
             if self.stop.is_set():
                 raise Interrupted(self.stop.reason)
             self.bench = self._open_bench()
             store.set_identities(run_id, self.bench.source.identity, self.bench.meter.identity)
-            visit = (fast_edge_order(todo, self.plan.sweep.order, self.detector.level_taus)
+            visit = (fast_edge_order(todo, self.loaded.order, self.detector.level_taus)
                      if self.plan.settle.level_order == "fast-edge" else todo)
             for point in visit:
                 self.doing = (f"measuring point {point.index} ({point.frequency_hz / 1e6:g} MHz, "
@@ -155,16 +157,16 @@ class Engine:
                 if self.progress:
                     self.progress(point, result, len(done), len(points))
         except Interrupted as exc:
-            state, error = "interrupted", f"stopped by {exc}"
+            state, error = RunState.INTERRUPTED, f"stopped by {exc}"
         except NightbenchError as exc:
-            state, error = "failed", f"{exc}, while {self.doing}"
+            state, error = RunState.FAILED, f"{exc}, while {self.doing}"
         except BaseException as exc:   # a bug: never recorded as completed; RF still goes off
-            state, error = "failed", f"internal error ({type(exc).__name__}: {exc}), while {self.doing}"
+            state, error = RunState.FAILED, f"internal error ({type(exc).__name__}: {exc}), while {self.doing}"
             raise
         finally:
             rf_error = self._make_safe()
-            if rf_error and state == "completed":
-                state, error = "failed", rf_error
+            if rf_error and state == RunState.COMPLETED:
+                state, error = RunState.FAILED, rf_error
             elif rf_error:
                 error = f"{error}; {rf_error}"
             store.finish_run(run_id, state, error)

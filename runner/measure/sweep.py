@@ -5,8 +5,10 @@ from __future__ import annotations
 import itertools
 import math
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
-from nightbench.plan.model import Plan
+if TYPE_CHECKING:
+    from nightbench.plan.load import LoadedPlan
 
 
 @dataclass(frozen=True)
@@ -15,6 +17,7 @@ class Point:
     frequency_hz: float
     power_dbm: float      # at the DUT input
     source_dbm: float     # what the source is set to: DUT level plus path loss, on the grid below
+
 
 LEVEL_STEP_DB = 0.001     # the source level is commanded with three decimals
 
@@ -26,13 +29,13 @@ def source_level(power_dbm: float, loss_db: float) -> float:
     return round(steps * LEVEL_STEP_DB, 3)
 
 
-def expand(plan: Plan) -> list[Point]:
+def expand(loaded: LoadedPlan) -> list[Point]:
     """Cartesian product of the axes, outermost first in the order the plan wrote them."""
-    order = plan.sweep.order
-    axes = [plan.sweep.axis_values(name) for name in order]
+    order = loaded.order
+    axes = [loaded.plan.sweep.axis_values(name) for name in order]
     points = []
     for index, combo in enumerate(itertools.product(*axes)):
         values = dict(zip(order, combo))
         f, p = values["frequency_hz"], values["power_dbm"]
-        points.append(Point(index, f, p, source_level(p, plan.path.loss(f))))
+        points.append(Point(index, f, p, source_level(p, loaded.path.loss(f))))
     return points

@@ -1,31 +1,19 @@
-"""Plan format v1: the validated model, loading from a file, and messages that point at the text.
+"""Plan format v1 as pure data: the pydantic model of a plan's keys, each checked on its own.
 
-Every key of DESIGN.md's plan format is accepted as written; unknown keys are errors, because a
-typo must not silently change a night's work. Numbers may be written `70e6` (see yamlfile).
+Every key of docs/design.md's plan format is accepted as written; unknown keys are errors, because a
+typo must not silently change a night's work. What needs more than one section or a file (the path's
+loss model, the sweep's axis order, the cross-section checks) is worked out by plan/load.py, so this
+module imports nothing of the plan package.
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
-from pathlib import Path
-from typing import Annotated, Any, Literal
+from typing import Annotated, Literal
 
-from pydantic import (
-    AfterValidator,
-    BaseModel,
-    ConfigDict,
-    Field,
-    PrivateAttr,
-    ValidationError,
-    field_validator,
-    model_validator,
-)
+from pydantic import AfterValidator, BaseModel, ConfigDict, Field, field_validator, model_validator
 
-from nightbench.drivers.errors import InputError
-from nightbench.plan.files import PlanFiles, PlanProblem
-from nightbench.plan.path import build_path
-from nightbench.plan.yamlfile import KeyPath, load_yaml_text, read_text
+from nightbench.drivers.source import DEFAULT_MAX_DBM, DEFAULT_MIN_DBM
 
 MAX_POINTS = 200_000
 Finite = Annotated[float, Field(allow_inf_nan=False)]
@@ -81,8 +69,8 @@ def _meter_commands(value: dict[str, str] | None) -> dict[str, str] | None:
 
 class SourceSpec(_Link):
     driver: Literal["scpi-source"]
-    min_dbm: Finite = -130.0          # the source's own level limits; plans beyond them are refused
-    max_dbm: Finite = 20.0
+    min_dbm: Finite = DEFAULT_MIN_DBM   # the source's own level limits (the driver's defaults); plans beyond
+    max_dbm: Finite = DEFAULT_MAX_DBM   # them are refused
     commands: Annotated[dict[str, str] | None, AfterValidator(_source_commands)] = None
 
     @model_validator(mode="after")
@@ -152,7 +140,7 @@ class CouplerSpec(_Strict):
 
 
 class PathElementSpec(_Strict):
-    """One piece of the path, in exactly one form; runner/path.py works out its loss."""
+    """One piece of the path, in exactly one form; plan/path.py works out its loss."""
 
     name: Annotated[str, Field(min_length=1, max_length=80)] | None = None
     loss_db: Finite | None = None
@@ -176,20 +164,6 @@ class PathSpec(PathElementSpec):
     """Loss from the source port to the DUT input (positive = loss); `elements` add in dB."""
 
     elements: Annotated[list[PathElementSpec], Field(min_length=1)] | None = None
-    _model: Any = PrivateAttr(None)
-
-    def attach(self, model: Any) -> None:
-        """Set the loss model built by nightbench.plan.path (it may need files the keys only name)."""
-        self._model = model
-
-    def loss_model(self) -> Any:
-        if self._model is None:
-            self._model = build_path(self, PlanFiles(None, {}, "a plan not loaded from a file"))
-        return self._model
-
-    def loss(self, frequency_hz: float) -> float:
-        """Loss at a frequency (dB); PlanProblem for a frequency the data does not cover."""
-        return float(self.loss_model().loss(frequency_hz))
 
 
 class Limits(_Strict):
@@ -236,19 +210,11 @@ AXES = ("frequency_hz", "power_dbm")
 
 
 class Sweep(_Strict):
-    """Axes, outermost first: the order of the keys in the file is the nesting order."""
+    """The axes. Their nesting order is the order of the keys in the file (outermost first): the
+    loader reads it from the document (LoadedPlan.order), as a model field could be set by a key."""
 
     frequency_hz: Axis
     power_dbm: Axis
-    order: tuple[str, ...] = AXES
-
-    @model_validator(mode="before")
-    @classmethod
-    def _record_order(cls, data: Any) -> Any:
-        if isinstance(data, dict):
-            data = dict(data)
-            data["order"] = tuple(k for k in data if k in AXES)
-        return data
 
     @field_validator("frequency_hz")
     @classmethod
@@ -273,7 +239,7 @@ class Sweep(_Strict):
 
 
 class Settle(_Strict):
-    """How a point is judged settled (runner/settle.py; docs/settling.md)."""
+    """How a point is judged settled (measure/settle.py; docs/settling.md)."""
 
     tolerance_v: Positive
     timeout_s: Positive
@@ -321,124 +287,3 @@ class Plan(_Strict):
     settle: Settle
     measure: Measure = Measure()
     analysis: Analysis
-
-
-class LoadedPlan:
-    """A validated plan with its source text and the texts of the files it refers to, keyed by
-    the path written in the plan: together, the snapshot stored with a run."""
-
-    def __init__(self, plan: Plan, text: str, file: str, files: dict[str, str] | None = None) -> None:
-        self.plan = plan
-        self.text = text
-        self.file = file
-        self.files = files or {}
-
-
-def _key_path(loc: tuple[Any, ...]) -> tuple[Any, ...]:
-    """Drop pydantic's union-branch labels ('list[...]', 'Span', ...) from an error location."""
-    return tuple(p for p in loc if isinstance(p, int) or (isinstance(p, str) and "[" not in p and p[:1].islower()))
-
-
-def _line_for(path: tuple[Any, ...], lines: dict[KeyPath, int]) -> int | None:
-    for n in range(len(path), -1, -1):
-        if path[:n] in lines:
-            return lines[path[:n]]
-    return None
-
-
-def _friendly(err: dict[str, Any]) -> str:
-    kind, msg = err.get("type", ""), err.get("msg", "")
-    if kind == "union_tag_invalid":
-        return f"unknown driver {err.get('input', {}).get('driver')!r} (expected {err['ctx']['expected_tags']})"
-    if kind == "extra_forbidden":
-        return "unknown key (check the spelling; unknown keys are refused)"
-    if kind == "missing":
-        return "required key is missing"
-    if kind in ("finite_number",):
-        return "must be a finite number (NaN and infinity are refused)"
-    return msg.removeprefix("Value error, ")
-
-
-def parse_plan(text: str, file: str, *, base_dir: Path | None = None,
-               files: Mapping[str, str] | None = None) -> LoadedPlan:
-    """Validate plan text; raise InputError naming file, line and key path of the first problem.
-
-    Referenced files are read relative to `base_dir` (default: the plan file's folder), or, when
-    `files` is given (a run's snapshot), from those texts only.
-    """
-    data, lines = load_yaml_text(text, file)
-    if not isinstance(data, dict):
-        raise InputError("a plan is a mapping of keys (name, instruments, sweep, ...)", file=file, line=1)
-    try:
-        plan = Plan.model_validate(data)
-    except ValidationError as exc:
-        errors = exc.errors()
-        # A union (a list of values, or a {start, stop, step} span) reports each branch; the
-        # branch whose shape the input did not have only says "should be a list": drop those
-        # when the other branch has something to say about the same key.
-        shape = {"list_type", "model_type", "model_attributes_type", "dict_type", "tuple_type"}
-        located = [(_key_path(tuple(e["loc"])), e) for e in errors]
-        errors = [e for p, e in located
-                  if e.get("type") not in shape
-                  or not any(q[:len(p)] == p and o.get("type") not in shape for q, o in located if o is not e)]
-        problems = []
-        for err in errors:
-            path = _key_path(tuple(err["loc"]))
-            if err.get("type") in ("union_tag_invalid", "union_tag_not_found"):
-                path += ("driver",)
-            problems.append((path, _friendly(err)))
-        # the same location may be reported once per union branch: keep the first of each
-        seen: dict[tuple[Any, ...], str] = {}
-        for path, message in problems:
-            seen.setdefault(path, message)
-        first_path, first_msg = next(iter(seen.items()))
-        also = []
-        for path, msg in list(seen.items())[1:6]:
-            line = _line_for(path, lines)
-            where = f"line {line}, " if line else ""
-            also.append(f"\n  also {where}key '{'.'.join(map(str, path)) or '(top)'}': {msg}")
-        raise InputError(first_msg + "".join(also), file=file, line=_line_for(first_path, lines),
-                         key=".".join(map(str, first_path)) or None) from None
-    refs = PlanFiles(base_dir or Path(file).parent, files)
-    try:
-        plan.path.attach(build_path(plan.path, refs))
-    except PlanProblem as exc:
-        _raise_at(exc, file, lines)
-    check_consistency(plan, file, lines)
-    return LoadedPlan(plan, text, file, refs.texts)
-
-
-def _raise_at(problem: PlanProblem, file: str, lines: dict[KeyPath, int]) -> None:
-    raise InputError(str(problem), file=file, line=_line_for(problem.key, lines),
-                     key=".".join(map(str, problem.key))) from None
-
-
-def check_consistency(plan: Plan, file: str, lines: dict[KeyPath, int]) -> None:
-    """Checks across sections: point count, the DUT ceiling, path coverage, source limits."""
-    def fail(message: str, *key: Any) -> None:
-        raise InputError(message, file=file, line=_line_for(tuple(key), lines), key=".".join(map(str, key)))
-
-    freqs = plan.sweep.axis_values("frequency_hz")
-    levels = plan.sweep.axis_values("power_dbm")
-    if len(freqs) * len(levels) > MAX_POINTS:
-        fail(f"the sweep has {len(freqs) * len(levels)} points; at most {MAX_POINTS} are allowed", "sweep")
-    ceiling = plan.limits.dut_max_dbm
-    top = max(levels)
-    if top > ceiling:
-        fail(f"level {top:g} dBm exceeds the DUT ceiling limits.dut_max_dbm = {ceiling:g} dBm",
-             "sweep", "power_dbm")
-    src = plan.instruments.source
-    for f in freqs:
-        try:
-            loss = plan.path.loss(f)
-        except PlanProblem as exc:
-            _raise_at(exc, file, lines)
-        lo, hi = min(levels) + loss, top + loss
-        if lo < src.min_dbm or hi > src.max_dbm:
-            fail(f"at {f:g} Hz the source would need {lo:.2f} to {hi:.2f} dBm, outside its limits "
-                 f"[{src.min_dbm:g}, {src.max_dbm:g}] dBm", "sweep", "power_dbm")
-
-
-def load_plan(path: str | Path) -> LoadedPlan:
-    p = Path(path)
-    return parse_plan(read_text(p), str(p))

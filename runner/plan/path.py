@@ -1,8 +1,9 @@
 """The path from the source port to the DUT input: its loss (dB, positive = loss) at a frequency.
 
 The number that matters is the level at the detector's input, so every source setting is the
-DUT level plus this loss. The plan's `path` section (validated keys, runner/plan.py) becomes one
-of these models; the rest of the code only ever asks `plan.path.loss(frequency_hz)`.
+DUT level plus this loss. The plan's `path` section (validated keys, plan/model.py) becomes one
+of these models when the plan is loaded; the rest of the code only ever asks
+`loaded.path.loss(frequency_hz)` (plan/load.py). Only the spec classes are needed from the model.
 
 Tables and Touchstone data are interpolated linearly in dB against frequency and never
 extrapolated unless the plan says how (`extrapolate: hold` or `linear`): a loss guessed outside

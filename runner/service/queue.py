@@ -21,7 +21,7 @@ from nightbench.service.liveness import owner_gone
 from nightbench.store.db import Store, now_iso
 
 if TYPE_CHECKING:   # the plan model (pydantic) is imported only where a plan is read: `queue` stays quick
-    from nightbench.plan.model import LoadedPlan
+    from nightbench.plan.load import LoadedPlan
 
 PENDING = ("queued", "interrupted")     # what serve still has to do
 FINISHED = ("completed", "failed", "cancelled")
@@ -55,7 +55,7 @@ class JobQueue:
                 "INSERT INTO jobs (plan_name, plan_file, plan_text, files_json, points_total, not_before,"
                 " not_before_ts, submitted_at, state) VALUES (?, ?, ?, ?, ?, ?, ?, ?, 'queued')",
                 (loaded.plan.name, os.path.abspath(loaded.file), loaded.text, json.dumps(loaded.files),
-                 len(expand(loaded.plan)), shown, at.timestamp(), now_iso()))
+                 len(expand(loaded)), shown, at.timestamp(), now_iso()))
         return int(cur.lastrowid), shown
 
     def adopt(self, run_id: int) -> int:
@@ -92,7 +92,7 @@ class JobQueue:
 
     def plan(self, job: Job) -> LoadedPlan:
         """The job's plan exactly as submitted: its text and files, never the disk."""
-        from nightbench.plan.model import parse_plan
+        from nightbench.plan.load import parse_plan
 
         row = self.conn.execute("SELECT plan_text, files_json FROM jobs WHERE id=?", (job.id,)).fetchone()
         return parse_plan(row["plan_text"], job.plan_file or f"job {job.id} plan snapshot",

@@ -10,7 +10,7 @@ import time
 from collections.abc import Callable
 
 from nightbench.drivers.errors import NightbenchError
-from nightbench.plan.model import LoadedPlan
+from nightbench.plan.load import LoadedPlan
 from nightbench.runs import snapshot_plan
 from nightbench.service.liveness import owner_gone
 from nightbench.service.queue import JobQueue, points_text

@@ -1,0 +1,63 @@
+"""Checks across sections of a plan: what no single key can be wrong about alone.
+
+They run before anything is written or contacted, so a plan that cannot give a useful night (too
+many points, a level above the DUT ceiling, a source setting beyond its limits, a fit range the
+sweep does not cover) is refused in `check`, `run` and `submit` alike.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+from nightbench.drivers.errors import InputError
+from nightbench.plan.files import PlanProblem
+from nightbench.plan.messages import at_key, from_problem
+from nightbench.plan.model import MAX_POINTS, Plan
+from nightbench.plan.path import PathModel
+from nightbench.plan.yamlfile import KeyPath
+
+# The analysis fits a line with uncertainties to the levels within analysis.fit_dbm, endpoints
+# included to FIT_SLACK_DB, and needs MIN_FIT_LEVELS of them (analysis/fit.py uses the same numbers).
+MIN_FIT_LEVELS = 3
+FIT_SLACK_DB = 1e-9
+
+
+def check_consistency(plan: Plan, path: PathModel, file: str, lines: dict[KeyPath, int]) -> None:
+    """Raise InputError (file, line, key) for the first cross-section problem."""
+    def fail(message: str, *key: str) -> InputError:
+        return at_key(message, key, file, lines)
+
+    freqs = plan.sweep.axis_values("frequency_hz")
+    levels = plan.sweep.axis_values("power_dbm")
+    if len(freqs) * len(levels) > MAX_POINTS:
+        raise fail(f"the sweep has {len(freqs) * len(levels)} points; at most {MAX_POINTS} are allowed", "sweep")
+    ceiling = plan.limits.dut_max_dbm
+    top = max(levels)
+    if top > ceiling:
+        raise fail(f"level {top:g} dBm exceeds the DUT ceiling limits.dut_max_dbm = {ceiling:g} dBm",
+                   "sweep", "power_dbm")
+    src = plan.instruments.source
+    for f in freqs:
+        try:
+            loss = path.loss(f)
+        except PlanProblem as exc:
+            raise from_problem(exc, file, lines) from None
+        lo, hi = min(levels) + loss, top + loss
+        if lo < src.min_dbm or hi > src.max_dbm:
+            raise fail(f"at {f:g} Hz the source would need {lo:.2f} to {hi:.2f} dBm, outside its limits "
+                       f"[{src.min_dbm:g}, {src.max_dbm:g}] dBm", "sweep", "power_dbm")
+    _check_fit_range(plan, levels, fail)
+
+
+def _check_fit_range(plan: Plan, levels: list[float], fail: Callable[..., InputError]) -> None:
+    """A fit range the sweep does not fill would run all night for a report that fits nothing."""
+    low, high = plan.analysis.fit_dbm
+    inside = sorted({lv for lv in levels if low - FIT_SLACK_DB <= lv <= high + FIT_SLACK_DB})
+    span = f"[{low:g}, {high:g}] dBm"
+    if not inside:
+        raise fail(f"the fit range {span} lies wholly outside the sweep's levels ({min(levels):g} to "
+                   f"{max(levels):g} dBm): the report could fit nothing", "analysis", "fit_dbm")
+    if len(inside) < MIN_FIT_LEVELS:
+        raise fail(f"the fit range {span} holds {len(inside)} of the sweep's levels "
+                   f"({', '.join(f'{lv:g}' for lv in inside)} dBm); a line fit with uncertainties needs "
+                   f"at least {MIN_FIT_LEVELS}", "analysis", "fit_dbm")
