@@ -12,11 +12,14 @@ import functools
 import json
 import sys
 from collections.abc import Callable
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import click
 
 from nightbench.drivers.errors import NightbenchError
+
+if TYPE_CHECKING:
+    from nightbench.store.db import Store
 
 DB_HELP = "database file (default: $NIGHTBENCH_DB, else ./nightbench.db)"
 
@@ -41,6 +44,14 @@ def _db(path: str | None) -> str:
     from nightbench.store.db import default_db_path
 
     return path or default_db_path()
+
+
+def _read_store(path: str | None) -> Store:
+    """The database for a command that only reads: opened read-only, so nothing is written, and a
+    missing file is an InputError (exit 2), since a mistyped --db must not leave an empty database."""
+    from nightbench.store.db import Store
+
+    return Store.open_readonly(_db(path))
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
@@ -79,6 +90,7 @@ def _execute(loaded: Any, db: str, run_id: int | None) -> None:
     from nightbench.measure.signals import EXIT_CODES, StopFlag
     from nightbench.runs import execute, new_run
     from nightbench.store.db import Store
+    from nightbench.store.states import RunState
 
     store = Store(db)
     if run_id is None:
@@ -88,10 +100,10 @@ def _execute(loaded: Any, db: str, run_id: int | None) -> None:
     done = len(store.done_indices(run_id))
     total = store.run(run_id)["points_total"]
     click.echo(f"run {run_id} {state}: {done} of {total} points in {db}")
-    if state == "completed":
+    if state == RunState.COMPLETED:
         return
     click.echo(f"nightbench: run {run_id} {state}: {error}", err=True)
-    sys.exit(EXIT_CODES.get(stop.reason or "", 1) if state == "interrupted" else 1)
+    sys.exit(EXIT_CODES.get(stop.reason or "", 1) if state == RunState.INTERRUPTED else 1)
 
 
 @main.command()
@@ -130,10 +142,8 @@ def resume(run_id: int, db: str | None) -> None:
 @click.option("--json", "as_json", is_flag=True, help="machine-readable list")
 @friendly
 def runs(db: str | None, as_json: bool) -> None:
-    """List runs."""
-    from nightbench.store.db import Store
-
-    rows = Store(_db(db)).runs()
+    """List runs (reads only: a mistyped --db is refused, not created)."""
+    rows = _read_store(db).runs()
     if as_json:
         click.echo(json.dumps(rows, indent=1))
         return
@@ -258,11 +268,10 @@ def submit(plan: str, when: str | None, db: str | None) -> None:
 @click.option("--json", "as_json", is_flag=True, help="machine-readable list")
 @friendly
 def queue_cmd(db: str | None, as_json: bool) -> None:
-    """List jobs (and whether a service is serving this database)."""
+    """List jobs (and whether a service is serving this database); reads only."""
     from nightbench.service.queue import JobQueue
-    from nightbench.store.db import Store
 
-    queue = JobQueue(Store(_db(db)))
+    queue = JobQueue(_read_store(db))
     rows = queue.jobs()
     if as_json:
         click.echo(json.dumps(rows, indent=1))
@@ -294,9 +303,10 @@ def cancel(job_id: int, db: str | None, wait_s: float) -> None:
 
     from nightbench.service.queue import JobQueue
     from nightbench.store.db import Store
+    from nightbench.store.states import JobState
 
-    queue = JobQueue(Store(_db(db), create=False))
-    if queue.cancel(job_id) == "cancelled":
+    queue = JobQueue(Store(_db(db), create=False))   # writes the request, but never creates a database
+    if queue.cancel(job_id) == JobState.CANCELLED:
         run_id = queue.job(job_id).run_id
         click.echo(f"job {job_id} cancelled: it will not run"
                    + (f" again (run {run_id} stays interrupted; `nightbench resume {run_id}` continues it)"
@@ -308,12 +318,12 @@ def cancel(job_id: int, db: str | None, wait_s: float) -> None:
                    "switches its source off first and leaves its run interrupted")
         return
     end = time.monotonic() + wait_s
-    while (job := queue.job(job_id)).state == "running" and time.monotonic() < end:
+    while (job := queue.job(job_id)).state == JobState.RUNNING and time.monotonic() < end:
         time.sleep(0.1)
-    if job.state == "running":
+    if job.state == JobState.RUNNING:
         _fail(f"job {job_id} asked to stop; the service has not confirmed within {wait_s:g} s", 1)
     click.echo(f"job {job_id} {job.state}" + (f" (run {job.run_id} interrupted, RF off)"
-                                              if job.state == "cancelled" else " before the cancel took effect"))
+                                              if job.state == JobState.CANCELLED else " before the cancel took effect"))
 
 
 @main.command()

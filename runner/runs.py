@@ -2,12 +2,15 @@
 
 from __future__ import annotations
 
+from nightbench.drivers.errors import InputError
 from nightbench.measure.engine import Engine
 from nightbench.measure.signals import StopFlag
 from nightbench.measure.sweep import expand
 from nightbench.output.progress import progress_printer
 from nightbench.plan.load import LoadedPlan, parse_plan
+from nightbench.service.liveness import owner_gone
 from nightbench.store.db import Store
+from nightbench.store.states import RunState
 
 
 def new_run(store: Store, loaded: LoadedPlan) -> int:
@@ -24,34 +27,13 @@ def snapshot_plan(store: Store, run_id: int) -> LoadedPlan:
     return parse_plan(row["plan_text"], f"run {run_id} plan snapshot", files=store.run_files(run_id))
 
 
-def owner_alive(row: object) -> bool:
-    """Whether the process recorded as running a run is still alive (on this host)."""
-    import os
-    import socket
-
-    pid, host = row["pid"], row["host"]  # type: ignore[index]
-    if not pid:
-        return False
-    if host and host != socket.gethostname():
-        return True   # cannot tell from here: assume it is
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return pid != os.getpid()
-
-
 def check_resumable(store: Store, run_id: int) -> None:
     """Refuse (InputError) a run that is completed, or still running in a live process, or whose
     snapshot no longer describes the points it has."""
-    from nightbench.drivers.errors import InputError
-
     row = store.run(run_id)
-    if row["state"] == "completed":
+    if row["state"] == RunState.COMPLETED:
         raise InputError(f"run {run_id} is already completed")
-    if row["state"] == "running" and owner_alive(row):
+    if row["state"] == RunState.RUNNING and not owner_gone(row["pid"], row["host"], row["heartbeat_at"]):
         raise InputError(f"run {run_id} is still running (process {row['pid']} on {row['host']})")
     loaded = snapshot_plan(store, run_id)
     expected = len(expand(loaded))
@@ -64,7 +46,7 @@ def execute(loaded: LoadedPlan, store: Store, run_id: int, stop: StopFlag) -> tu
     """Run the missing points of a run in the foreground, with a progress bar on a terminal."""
     with progress_printer(loaded.plan.name, run_id) as progress:
         state, error = Engine(loaded, store, run_id, stop, progress).run()
-    if state == "completed":
+    if state == RunState.COMPLETED:
         store_fits(store, run_id)
     return state, error
 

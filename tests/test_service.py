@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import os
 import signal
+import socket
 import sqlite3
 import subprocess
 import sys
@@ -23,12 +24,18 @@ from typing import Any
 import pytest
 
 from nightbench.drivers.errors import InputError
+from nightbench.measure.signals import StopFlag
+from nightbench.plan.load import load_plan
+from nightbench.runs import new_run
 from nightbench.service.liveness import iso_ts, owner_gone
 from nightbench.service.when import parse_when
 from nightbench.simulators.physics import BenchConfig, BenchModel
-from tests.conftest import cli, plan_dict
+from nightbench.store.db import Store
+from tests.conftest import OFFLINE, cli, plan_dict, wait_until
 
 SLOW_SWEEP = {"frequency_hz": [100e6], "power_dbm": {"start": -60, "stop": -15, "step": 3}}   # 16 points
+QUICK_SWEEP = {"frequency_hz": [100e6], "power_dbm": [-50, -40, -30, -20]}
+HAS_PROC = Path("/proc/self/stat").exists()
 
 
 def slow_plan(resources: dict[str, str], **overrides: Any) -> dict[str, Any]:
@@ -38,14 +45,9 @@ def slow_plan(resources: dict[str, str], **overrides: Any) -> dict[str, Any]:
     return plan
 
 
-def wait_for(check: Callable[[], Any], timeout_s: float = 20.0, what: str = "condition") -> Any:
-    end = time.monotonic() + timeout_s
-    while time.monotonic() < end:
-        value = check()
-        if value:
-            return value
-        time.sleep(0.05)
-    raise AssertionError(f"timed out waiting for {what}")
+def wait_for(check: Callable[[], Any], what: str, timeout_s: float = 20.0, poll_s: float = 0.05) -> Any:
+    """conftest's wait_until with the patience of these tests: services are child processes."""
+    return wait_until(check, what, timeout_s=timeout_s, poll_s=poll_s)
 
 
 def query(db: Path, sql: str, *args: Any) -> list[sqlite3.Row]:
@@ -60,8 +62,10 @@ def query(db: Path, sql: str, *args: Any) -> list[sqlite3.Row]:
 def points_done(db: Path, run_id: int = 1) -> int:
     try:
         return query(db, "SELECT COUNT(*) FROM points WHERE run_id=?", run_id)[0][0]
-    except sqlite3.OperationalError:   # a database still being created by the process under test
-        return 0
+    except sqlite3.OperationalError as exc:
+        if "no such table" not in str(exc):
+            raise
+        return 0   # the process under test has not created its tables yet
 
 
 def job_state(db: Path, job_id: int) -> str | None:
@@ -79,13 +83,16 @@ def assert_every_point_once(db: Path, run_id: int, total: int) -> None:
         assert (r["lo"], r["hi"]) == (0, r["n"] - 1), dict(r)
 
 
-def settled_log(bench: Any) -> list[dict[str, Any]]:
-    """The simulator's log once it has stopped growing (a killed client's last message may still
-    be in flight when the kill returns)."""
-    size = -1
-    while size != bench.log.stat().st_size:
-        size = bench.log.stat().st_size
-        time.sleep(0.3)
+def settled_log(bench: Any, quiet_s: float = 0.3) -> list[dict[str, Any]]:
+    """The simulator's log once it has not grown for `quiet_s` (a killed client's last message may
+    still be in flight when the kill returns: there is no event to wait for, only quiet)."""
+    sizes = [-1]
+
+    def quiet() -> bool:
+        sizes.append(bench.log.stat().st_size)
+        return sizes[-1] == sizes[-2]
+
+    wait_for(quiet, "the simulator's log to stop growing", poll_s=quiet_s)
     return bench.events()
 
 
@@ -133,11 +140,12 @@ def test_jobs_run_in_order_of_not_before_and_never_early(bench, write_plan, db, 
     now_job = write_plan(plan_dict(bench.resources, name="now-job", sweep=quick), "now.yaml")
     at = (datetime.now() + timedelta(seconds=3)).isoformat(timespec="seconds")   # naive: local time
     submit(later, db, "--at", at)
-    submit(now_job, db)
+    # a time in the past is due at once; written out, it stays before `at` however slow the submits are
+    submit(now_job, db, "--at", (datetime.now() - timedelta(minutes=1)).isoformat(timespec="seconds"))
     # the job is a snapshot: editing the plan after submit changes nothing about what runs
     later.write_text(later.read_text().replace("-50", "-55"))
     proc = services.start()
-    wait_for(lambda: job_state(db, 1) == "completed", what="the scheduled job")
+    wait_for(lambda: job_state(db, 1) == "completed", "the scheduled job")
     proc.send_signal(signal.SIGTERM)
     assert proc.wait(10) == 0
 
@@ -161,7 +169,7 @@ def test_a_killed_service_makes_the_source_safe_first_and_finishes_every_point_o
                                                                                     services):
     submit(write_plan(slow_plan(bench.resources)), db)
     first = services.start()
-    wait_for(lambda: points_done(db) >= 3, what="three points")
+    wait_for(lambda: points_done(db) >= 3, "three points")
     first.kill()                         # SIGKILL: no handler runs, RF stays as it was
     first.wait()
     before = settled_log(bench)
@@ -170,7 +178,7 @@ def test_a_killed_service_makes_the_source_safe_first_and_finishes_every_point_o
     assert job_state(db, 1) == "running"
 
     second = services.start()
-    wait_for(lambda: job_state(db, 1) == "completed", what="the resumed job")
+    wait_for(lambda: job_state(db, 1) == "completed", "the resumed job")
     second.send_signal(signal.SIGTERM)
     assert second.wait(10) == 0
 
@@ -194,13 +202,13 @@ def test_a_killed_foreground_run_is_found_and_resumed_by_serve(bench, write_plan
     run = subprocess.Popen([sys.executable, "-m", "nightbench", "run", str(write_plan(slow_plan(bench.resources))),
                             "--db", str(db)], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     try:
-        wait_for(lambda: db.exists() and points_done(db) >= 2, what="two points")
+        wait_for(lambda: db.exists() and points_done(db) >= 2, "two points")
     finally:
         run.kill()
         run.wait()
     before = settled_log(bench)
     proc = services.start()
-    wait_for(lambda: job_state(db, 1) == "completed", what="the adopted run's job")
+    wait_for(lambda: job_state(db, 1) == "completed", "the adopted run's job")
     after = bench.events()[len(before):]
     assert after[0]["event"] == "output" and after[0]["output"] is False
     assert_every_point_once(db, 1, 16)
@@ -217,7 +225,7 @@ def test_sigterm_stops_after_the_current_reading_with_rf_off_and_the_next_serve_
                                                                                        services):
     submit(write_plan(slow_plan(bench.resources)), db)
     proc = services.start()
-    wait_for(lambda: points_done(db) >= 2, what="two points")
+    wait_for(lambda: points_done(db) >= 2, "two points")
     # `queue` and `runs` read the database while the service writes it (WAL)
     listing = cli("queue", "--db", str(db), "--json")
     assert listing.returncode == 0 and '"state": "running"' in listing.stdout
@@ -231,7 +239,7 @@ def test_sigterm_stops_after_the_current_reading_with_rf_off_and_the_next_serve_
     assert "event=stop reason=SIGTERM" in services.log(proc)
 
     again = services.start()
-    wait_for(lambda: job_state(db, 1) == "completed", what="the resumed job")
+    wait_for(lambda: job_state(db, 1) == "completed", "the resumed job")
     again.send_signal(signal.SIGTERM)
     assert again.wait(10) == 0
     assert_every_point_once(db, 1, 16)
@@ -241,7 +249,7 @@ def test_sigterm_stops_after_the_current_reading_with_rf_off_and_the_next_serve_
 
 def test_a_second_serve_on_the_same_database_refuses(db, services, tmp_path):
     first = services.start()
-    wait_for(lambda: "event=start" in services.log(first), what="the first service")
+    wait_for(lambda: "event=start" in services.log(first), "the first service")
     res = cli("serve", "--db", str(db), timeout=30)
     assert res.returncode == 2
     assert f"pid {first.pid}" in res.stderr and "already serving" in res.stderr
@@ -254,7 +262,7 @@ def test_a_second_serve_on_the_same_database_refuses(db, services, tmp_path):
     assert "service: not running" in cli("queue", "--db", str(db)).stdout
     # the lock went with the process: a new service starts
     third = services.start()
-    wait_for(lambda: "event=start" in services.log(third), what="a new service")
+    wait_for(lambda: "event=start" in services.log(third), "a new service")
 
 
 # -- cancel ---------------------------------------------------------------------------------
@@ -262,7 +270,7 @@ def test_a_second_serve_on_the_same_database_refuses(db, services, tmp_path):
 def test_cancel_stops_a_running_job_safely_and_the_service_goes_on(bench, write_plan, db, services):
     submit(write_plan(slow_plan(bench.resources), "slow.yaml"), db)
     proc = services.start()
-    wait_for(lambda: points_done(db) >= 1, what="a point")
+    wait_for(lambda: points_done(db) >= 1, "a point")
     res = cli("cancel", "1", "--db", str(db))     # waits for the service to confirm
     assert res.returncode == 0, res.stderr
     assert "job 1 cancelled" in res.stdout
@@ -271,9 +279,8 @@ def test_cancel_stops_a_running_job_safely_and_the_service_goes_on(bench, write_
     assert points_done(db) < 16
     assert settled_log(bench)[-1]["output"] is False, "RF off when the cancelled run stopped"
     # the service goes on with the next job
-    submit(write_plan(plan_dict(bench.resources, name="next-job", sweep={"frequency_hz": [100e6],
-                                                                       "power_dbm": [-40, -30, -20]}), "next.yaml"), db)
-    wait_for(lambda: job_state(db, 2) == "completed", what="the next job")
+    submit(write_plan(plan_dict(bench.resources, name="next-job", sweep=QUICK_SWEEP), "next.yaml"), db)
+    wait_for(lambda: job_state(db, 2) == "completed", "the next job")
     assert proc.poll() is None, "a cancel stops the job, not the service"
     proc.send_signal(signal.SIGTERM)
     assert proc.wait(10) == 0
@@ -295,12 +302,15 @@ def test_cancel_removes_a_waiting_job_and_unknown_jobs_are_refused(bench, write_
 # -- submit: bad input changes nothing; WHEN ------------------------------------------------
 
 def test_bad_plans_and_bad_times_are_refused_at_submit_and_write_nothing(write_plan, db):
-    bad = write_plan(plan_dict({"source": "TCPIP::127.0.0.1::1::SOCKET", "meter": "TCPIP::127.0.0.1::2::SOCKET"},
-                               limits={"dut_max_dbm": -30}))
+    bad = write_plan(plan_dict(OFFLINE, limits={"dut_max_dbm": -30}))
     res = cli("submit", str(bad), "--db", str(db))
     assert res.returncode == 2 and "dut_max_dbm" in res.stderr and "Traceback" not in res.stderr
-    good = write_plan(plan_dict({"source": "TCPIP::127.0.0.1::1::SOCKET", "meter": "TCPIP::127.0.0.1::2::SOCKET"}),
-                      "good.yaml")
+    # a fit range beside the sweep would queue a night that ends in a report fitting nothing
+    no_fit = write_plan(plan_dict(OFFLINE, analysis={"fit_dbm": [-95, -75]}), "no-fit.yaml")
+    res = cli("submit", str(no_fit), "--db", str(db))
+    assert res.returncode == 2 and "Traceback" not in res.stderr
+    assert f"{no_fit}, line " in res.stderr and "key 'analysis.fit_dbm'" in res.stderr
+    good = write_plan(plan_dict(OFFLINE), "good.yaml")
     res = cli("submit", str(good), "--at", "25:00", "--db", str(db))
     assert res.returncode == 2 and "--at '25:00' is not a time" in res.stderr
     assert not db.exists()
@@ -322,19 +332,129 @@ def test_when_is_iso_8601_local_time_or_the_next_such_clock_time():
             parse_when(bad, now)
 
 
-def test_a_process_is_gone_when_its_pid_is_dead_or_belongs_to_a_later_process():
-    now = time.time()
-    fresh = datetime.fromtimestamp(now).isoformat()
-    assert not owner_gone(os.getpid(), None, fresh, now)            # this very process
-    child = subprocess.Popen([sys.executable, "-c", "pass"])
-    child.wait()
-    assert owner_gone(child.pid, None, fresh, now)                   # exited and reaped
-    # a live pid whose process started after the owner's last heartbeat is someone else (pid reuse)
-    if Path("/proc/self/stat").exists():
-        assert owner_gone(os.getpid(), None, "2001-01-01T00:00:00.000", now)
+def sleeper() -> subprocess.Popen[bytes]:
+    """A live process that is not the one asking."""
+    return subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
+
+
+def test_a_process_is_gone_when_its_pid_is_dead_or_is_the_asker_or_the_heartbeat_is_old_elsewhere():
+    live = sleeper()
+    try:
+        now = time.time()
+        fresh = datetime.fromtimestamp(now).isoformat()
+        assert not owner_gone(live.pid, None, fresh, now)               # alive, started before its heartbeat
+        assert not owner_gone(live.pid, socket.gethostname(), fresh, now)
+    finally:
+        live.kill()
+        live.wait()
+    assert owner_gone(live.pid, None, fresh, now)                       # exited and reaped
+    # the asking process has claimed nothing yet: a row naming its pid is an earlier process's
+    assert owner_gone(os.getpid(), None, fresh, now)
     # another host: only an old heartbeat counts
     assert not owner_gone(1, "another-host", fresh, now)
     assert owner_gone(1, "another-host", datetime.fromtimestamp(now - 3600).isoformat(), now)
+
+
+@pytest.mark.skipif(not HAS_PROC, reason="process start times come from /proc (Linux); elsewhere the pid decides")
+def test_a_live_pid_that_started_after_the_last_heartbeat_is_not_the_owner():
+    live = sleeper()   # pid reuse, as after a reboot: the pid is alive but its process is younger
+    try:
+        assert owner_gone(live.pid, None, "2001-01-01T00:00:00.000")
+    finally:
+        live.kill()
+        live.wait()
+
+
+# -- `resume` and `serve` ask the same question the same way -----------------------------------
+
+@pytest.mark.parametrize("owner", [
+    pytest.param("reused pid", marks=pytest.mark.skipif(not HAS_PROC, reason="process start times come from /proc")),
+    "another host, silent for an hour",
+])
+def test_resume_takes_over_a_run_whose_owner_serve_would_call_gone(bench, write_plan, db, owner):
+    # `resume` used to judge liveness on its own (any live pid, any other host: "still running")
+    # and refused runs that `serve`'s recovery took over; now both use service.liveness.owner_gone.
+    store = Store(db)
+    run_id = new_run(store, load_plan(write_plan(plan_dict(bench.resources, sweep=QUICK_SWEEP))))
+    store.mark_running(run_id)
+    live = sleeper()
+    try:
+        if owner == "reused pid":
+            row = (live.pid, socket.gethostname(), "2001-01-01T00:00:00.000")
+        else:
+            row = (live.pid, "another-host", datetime.fromtimestamp(time.time() - 3600).isoformat())
+        store.conn.execute("UPDATE runs SET pid=?, host=?, heartbeat_at=? WHERE id=?", (*row, run_id))
+        assert owner_gone(*row), "serve's recovery takes this run over"
+        store.close()
+        res = cli("resume", str(run_id), "--db", str(db))
+    finally:
+        live.kill()
+        live.wait()
+    assert res.returncode == 0, res.stderr
+    assert query(db, "SELECT state FROM runs WHERE id=?", run_id)[0][0] == "completed"
+
+
+def test_resume_refuses_a_run_whose_owner_is_alive(bench, write_plan, db):
+    store = Store(db)
+    run_id = new_run(store, load_plan(write_plan(plan_dict(bench.resources, sweep=QUICK_SWEEP))))
+    store.mark_running(run_id)
+    live = sleeper()
+    try:
+        store.conn.execute("UPDATE runs SET pid=? WHERE id=?", (live.pid, run_id))   # heartbeat: now
+        store.close()
+        res = cli("resume", str(run_id), "--db", str(db))
+    finally:
+        live.kill()
+        live.wait()
+    assert res.returncode == 2 and f"run {run_id} is still running (process {live.pid}" in res.stderr
+    assert len(bench.events()) == 1, "nothing but the simulator's own start entry: no instrument contacted"
+
+
+# -- commands that read create nothing ---------------------------------------------------------
+
+@pytest.mark.parametrize("command", [["runs"], ["runs", "--json"], ["queue"], ["queue", "--json"], ["cancel", "1"]])
+def test_a_mistyped_db_is_refused_and_not_created(tmp_path, command):
+    missing = tmp_path / "lab.dbb"
+    res = cli(*command, "--db", str(missing))
+    assert res.returncode == 2 and "Traceback" not in res.stderr
+    assert f"nightbench: {missing}: no such database" in res.stderr
+    assert list(tmp_path.iterdir()) == [], "nothing may be created"
+
+
+def test_runs_and_queue_leave_an_existing_database_as_it_was(write_plan, db):
+    submit(write_plan(plan_dict(OFFLINE)), db)
+    before = db.read_bytes()
+    for command in ("runs", "queue"):
+        res = cli(command, "--db", str(db))
+        assert res.returncode == 0, res.stderr
+    assert "no runs yet" in cli("runs", "--db", str(db)).stdout
+    assert db.read_bytes() == before
+    # a read-only reader of a WAL file may leave SQLite's shared-memory index (-shm) and an empty
+    # log beside it; nothing else, and nothing in the log
+    wal = db.with_name(db.name + "-wal")
+    assert not wal.exists() or wal.stat().st_size == 0
+    assert {p.name for p in db.parent.iterdir()} <= {db.name, "plan.yaml", wal.name, db.name + "-shm"}
+
+
+# -- signals: one handler, a flag per run -------------------------------------------------------
+
+def test_a_signal_stops_the_service_and_its_run_while_a_cancel_stops_only_the_run():
+    service = StopFlag()
+    first = service.child()
+    first.set("cancel")
+    assert first.reason == "cancel" and not service.is_set()
+    service.release(first)
+    second = service.child()
+    previous = signal.getsignal(signal.SIGTERM), signal.getsignal(signal.SIGINT)
+    try:
+        service.install()
+        os.kill(os.getpid(), signal.SIGTERM)   # a real signal, through the installed handler
+        wait_for(service.is_set, "the handler", timeout_s=5)
+    finally:
+        signal.signal(signal.SIGTERM, previous[0])
+        signal.signal(signal.SIGINT, previous[1])
+    assert service.reason == second.reason == "SIGTERM"
+    assert service.child().reason == "SIGTERM", "a run begun after the signal starts stopped"
 
 
 def test_log_lines_are_key_value_with_the_journal_priority_under_systemd(tmp_path, monkeypatch):

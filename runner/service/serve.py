@@ -1,23 +1,20 @@
 """`nightbench serve`: run due jobs one at a time until told to stop; one service per database.
 
 On start it takes the database's service lock (a second `serve` refuses, exit 2), makes the
-source of every abandoned run safe and queues those runs again (runner/recovery.py), then runs
+source of every abandoned run safe and queues those runs again (service/recovery.py), then runs
 jobs in order: resumptions first, then by not-before, then by submission. SIGTERM/SIGINT stop the
 run after the reading in progress, with RF off, leaving it `interrupted` for the next `serve` to
 resume; the service then exits 0 (a signal is how a service is told to stop). Each event is one
-line on stderr (runner/eventlog.py).
+line on stderr (service/log.py).
 """
 
 from __future__ import annotations
 
 import fcntl
 import os
-import signal
 import socket
-import sqlite3
 import threading
 import time
-from types import FrameType
 from typing import Any
 
 from nightbench.drivers.errors import InputError, NightbenchError
@@ -25,6 +22,8 @@ from nightbench.measure.signals import StopFlag
 from nightbench.service.log import log
 from nightbench.service.queue import Job, JobQueue, points_text
 from nightbench.store.db import Store
+from nightbench.store.errors import StoreError
+from nightbench.store.states import JobState, RunState
 
 CANCELLED = "cancel"          # the stop reason a `nightbench cancel` gives the engine
 WATCH_POLL_S = 0.2            # how often a running job looks for a cancel
@@ -45,7 +44,7 @@ class ServiceLock:
         try:
             fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
         except OSError as exc:
-            raise InputError(f"cannot create the service lock {self.path}: {exc.strerror}", file=self.db) from None
+            raise InputError(f"cannot create the service lock {self.path}: {exc.strerror}", file=self.db) from exc
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except BlockingIOError:
@@ -67,7 +66,8 @@ class ServiceLock:
 class Watch(threading.Thread):
     """Beside a running job: turns a `cancel` into the engine's stop flag (the engine then stops
     after the current reading, RF off) and keeps the service's and the run's heartbeats fresh.
-    Its own connection, so it never waits on the engine's."""
+    Its own connection, so it never waits on the engine's. If the database fails it otherwise, a
+    run nobody can cancel must not go on unwatched: the run is stopped (RF off, resumable)."""
 
     def __init__(self, db: str, job_id: int, run_id: int, stop: StopFlag) -> None:
         super().__init__(name=f"watch-job-{job_id}", daemon=True)
@@ -75,21 +75,31 @@ class Watch(threading.Thread):
         self.done = threading.Event()
 
     def run(self) -> None:
-        store = Store(self.db)
-        queue = JobQueue(store)
-        last_beat = time.monotonic()
+        store: Store | None = None
         try:
-            while not self.done.wait(WATCH_POLL_S):
-                try:
-                    if queue.cancel_requested(self.job_id):
-                        self.stop.set(CANCELLED)
-                    if time.monotonic() - last_beat >= HEARTBEAT_S:
-                        queue.heartbeat(self.run_id)
-                        last_beat = time.monotonic()
-                except sqlite3.Error as exc:   # a busy database must not end the watch: try again
-                    log("watch", level="warning", job=self.job_id, error=str(exc))
+            store = Store(self.db, create=False)
+            self._watch(JobQueue(store))
+        except NightbenchError as exc:
+            log("watch", level="error", job=self.job_id, error=str(exc))
+            self.stop.set(f"the service could not watch the job ({exc})")
         finally:
-            store.close()
+            if store is not None:
+                store.close()
+
+    def _watch(self, queue: JobQueue) -> None:
+        last_beat = time.monotonic()
+        while not self.done.wait(WATCH_POLL_S):
+            try:
+                if queue.cancel_requested(self.job_id):
+                    self.stop.set(CANCELLED)
+                if time.monotonic() - last_beat >= HEARTBEAT_S:
+                    queue.heartbeat(self.run_id)
+                    last_beat = time.monotonic()
+            except StoreError as exc:
+                if not exc.busy:
+                    raise
+                # another connection held the write lock past the timeout: look again next round
+                log("watch", level="warning", job=self.job_id, error=str(exc))
 
     def __enter__(self) -> Watch:
         self.start()
@@ -104,21 +114,13 @@ class Service:
     def __init__(self, db: str, poll_s: float = 1.0) -> None:
         self.db = db
         self.poll_s = poll_s
-        self.stop = StopFlag()
-        self.current: StopFlag | None = None   # the running job's own flag (a cancel stops only it)
+        self.stop = StopFlag()     # set by SIGTERM/SIGINT; each job's run gets a child of it
         self._waiting_for: int | None = None
         self._last_beat = time.monotonic()
 
-    def _on_signal(self, signum: int, frame: FrameType | None) -> None:
-        name = signal.Signals(signum).name
-        self.stop.set(name)
-        if self.current is not None:
-            self.current.set(name)
-
     def serve(self) -> int:
         lock = ServiceLock(self.db).acquire()    # before anything is read, written or contacted
-        for sig in (signal.SIGINT, signal.SIGTERM):
-            signal.signal(sig, self._on_signal)
+        self.stop.install()
         store = Store(self.db)
         queue = JobQueue(store)
         queue.service_started()
@@ -162,24 +164,24 @@ class Service:
         try:
             loaded = snapshot_plan(store, job.run_id) if job.run_id else queue.plan(job)
             run_id = job.run_id or new_run(store, loaded)
-        except NightbenchError as exc:   # a snapshot this version cannot read: the job fails, the night goes on
-            queue.finish(job.id, "failed", str(exc))
-            log("job-end", level="error", job=job.id, state="failed", error=str(exc))
+        except InputError as exc:   # a snapshot this version cannot read: the job fails, the night goes on
+            queue.finish(job.id, JobState.FAILED, str(exc))
+            log("job-end", level="error", job=job.id, state=JobState.FAILED, error=str(exc))
             return
         queue.start(job.id, run_id)
         log("job-resume" if job.run_id else "job-start", job=job.id, run=run_id, plan=job.plan_name,
             points=points_text(store, run_id))
-        run_stop = StopFlag()
-        self.current = run_stop
-        if self.stop.is_set():   # a signal that came before `current` was set
-            run_stop.set(self.stop.reason or "stop")
-        with Watch(self.db, job.id, run_id, run_stop):
-            state, error = Engine(loaded, store, run_id, run_stop).run()
-        self.current = None
-        if state == "completed":
+        run_stop = self.stop.child()   # a signal stops the run and the service; a cancel only the run
+        try:
+            with Watch(self.db, job.id, run_id, run_stop):
+                state, error = Engine(loaded, store, run_id, run_stop).run()
+        finally:
+            self.stop.release(run_stop)
+        if state == RunState.COMPLETED:
             store_fits(store, run_id)
-        if state == "interrupted" and run_stop.reason == CANCELLED:
-            state, error = "cancelled", f"cancelled while running; run {run_id} stays interrupted"
-        queue.finish(job.id, state, error)
-        log("job-end", level="error" if state == "failed" else "info", job=job.id, run=run_id, state=state,
-            points=points_text(store, run_id), error=error)
+        job_state = JobState(state)
+        if state == RunState.INTERRUPTED and run_stop.reason == CANCELLED:
+            job_state, error = JobState.CANCELLED, f"cancelled while running; run {run_id} stays interrupted"
+        queue.finish(job.id, job_state, error)
+        log("job-end", level="error" if job_state == JobState.FAILED else "info", job=job.id, run=run_id,
+            state=job_state, points=points_text(store, run_id), error=error)
