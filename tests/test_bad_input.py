@@ -83,7 +83,7 @@ CORPUS = [
     ("tabs", lambda t: "name: x\n\tsweep: {}\n", "not valid YAML"),
     ("unclosed bracket", edit("power_dbm:", "power_dbm: [1, 2"), "not valid YAML"),
     ("duplicate key", lambda t: t + "name: other\n", "appears twice"),
-    ("missing name", lambda t: "\n".join(l for l in t.splitlines() if not l.startswith("name:")), "name"),
+    ("missing name", lambda t: "\n".join(ln for ln in t.splitlines() if not ln.startswith("name:")), "name"),
     ("name with a path", edit("name: test-plan", "name: ../../etc/passwd"), "name"),
     ("top-level typo", edit("analysis:", "analysys:"), "unknown key"),
     ("nested typo", edit("samples: 4", "sampels: 4"), "unknown key"),
@@ -114,6 +114,9 @@ CORPUS = [
     ("missing touchstone", edit("loss_db: 6.28", "touchstone: cal/nowhere.s2p"), "nowhere.s2p"),
     ("fit range reversed", edit("- -60\n  - -20", "- -20\n  - -60"), "fit_dbm"),
     ("fit range of three", edit("- -60\n  - -20", "- -60\n  - -40\n  - -20"), "fit_dbm"),
+    ("fit range outside the sweep", edit("- -60\n  - -20", "- -95\n  - -75"), "wholly outside"),
+    ("fit range with two levels", edit("- -60\n  - -20", "- -42\n  - -33"), "at least 3"),
+    ("sweep order key", edit("sweep:\n", "sweep:\n  order: [power_dbm, frequency_hz]\n"), "key 'sweep.order'"),
     ("alias bomb", lambda t: BOMB, "aliases"),
     ("deep nesting", lambda t: "name: " + "[" * 5000 + "]" * 5000 + "\n", "not valid YAML|nested"),
     ("a billion points", edit("step: 5", "step: 0.00000006"), "allowed"),
@@ -132,17 +135,23 @@ def test_bad_plan_is_refused_plainly_and_changes_nothing(tmp_path, tripwire, nam
     db = tmp_path / "lab.db"
     for command in (["check", str(plan)], ["run", str(plan), "--db", str(db)]):
         result = CliRunner().invoke(main, command)
-        assert result.exit_code == 2, (name, result.output)
-        message = result.stderr if hasattr(result, "stderr") else result.output
-        assert ("Traceback" not in result.output and result.exception is None) or isinstance(result.exception, SystemExit)
+        # the CLI's own exit (the `friendly` wrapper), not an exception escaping with a traceback
+        assert isinstance(result.exception, SystemExit) and result.exit_code == 2, (name, result.exception)
+        message = result.stderr
+        assert result.stdout == "", "the refusal goes to stderr only"
         assert message.startswith("nightbench: ") and str(plan) in message, message
         assert any(w in message for w in words.split("|")), (name, message)
     assert not db.exists(), "bad input must not create a database"
     assert not Path("/tmp/owned").exists()
 
 
-def test_corpus_is_at_least_thirty():
-    assert len(CORPUS) >= 30
+def test_the_unbroken_base_plan_is_accepted(tmp_path, tripwire):
+    # each corpus entry is one edit of this plan, so each refusal is that edit's doing
+    plan = tmp_path / "tonight.yaml"
+    plan.write_text(base_text(tripwire.port))
+    result = CliRunner().invoke(main, ["check", str(plan)])
+    assert result.exit_code == 0 and result.exception is None, result.output
+    assert "valid plan 'test-plan', 13 points" in result.stdout
 
 
 def test_missing_and_directory_plans(tmp_path):
@@ -211,6 +220,9 @@ def test_fuzzed_plans_through_the_cli(tmp_path, doc):
     plan = tmp_path / "fuzz.yaml"
     plan.write_text(yaml.safe_dump(doc, sort_keys=False))
     result = CliRunner().invoke(main, ["check", str(plan)])
-    assert result.exit_code in (0, 2), result.output
-    assert result.exception is None or isinstance(result.exception, SystemExit), repr(result.exception)
-    assert "Traceback" not in result.output
+    assert result.exit_code in (0, 2), repr(result.exception)
+    if result.exit_code == 0:
+        assert result.exception is None and "valid plan" in result.stdout
+    else:   # refused by the CLI itself, in one plain message naming the file
+        assert isinstance(result.exception, SystemExit), repr(result.exception)
+        assert result.stderr.startswith(f"nightbench: {plan}"), result.stderr
