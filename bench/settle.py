@@ -8,8 +8,9 @@ computes from the simulator's own model, per cell:
 
 - within: share of points whose value lies within tolerance of the model's true settled output,
   allowing 3 standard errors of the averaging noise (the model's noise over `samples` readings);
-- time/min: measured sweep time (first setting to last point stored) over the physical minimum, the sum over visited steps of the time
-  a first-order output needs to come within tolerance, tau * ln(|step| / tolerance), plus the
+- time/min: measured sweep time (first setting to last point stored) over the physical minimum,
+  the sum over visited steps of the time a first-order output needs to come within tolerance,
+  tau * ln(|step| / tolerance), plus the
   requested readings (samples x integration time);
 - fixed/time: a fixed dwell long enough for the worst step of the planned order (the same
   accuracy: every point within tolerance), with this run's own per-point overheads, over the

@@ -61,7 +61,18 @@ class PathConfig:
 
 @dataclass
 class DetectorConfig:
-    """A log detector: V = slope * (P_eff - intercept), P_eff with a soft floor and soft top."""
+    """A power detector of one of three laws, each with a noise floor and a soft top:
+
+    - `log` (log amplifier, RSSI): V = slope * (P_eff - intercept), P_eff in dBm;
+    - `square` (diode in its square-law region): V = responsivity * P_mW, output proportional to
+      power, i.e. to V rms squared into the load (common practice);
+    - `linear` (RMS-responding detector with a linear output): V = gain * v_rms of the input
+      into 50 ohm (0 dBm = 223.6 mV rms, common practice).
+    """
+
+    law: str = "log"                      # log | square | linear
+    responsivity_v_per_mw: float = 0.5    # square law: output volts per milliwatt
+    gain_v_per_v: float = 4.0             # linear law: output volts per input volt rms
 
     slope_v_per_db: float = 0.0200
     slope_change_per_ghz: float = -0.03   # relative slope change per GHz
@@ -109,6 +120,12 @@ class DetectorConfig:
         return compressed
 
     def steady_v(self, dut_dbm: float, frequency_hz: float, temperature_c: float = 25.0) -> float:
+        if self.law == "square":
+            return self.responsivity_v_per_mw * dbm_to_w(self.effective_dbm(dut_dbm)) * 1e3
+        if self.law == "linear":
+            return self.gain_v_per_v * math.sqrt(dbm_to_w(self.effective_dbm(dut_dbm)) * REF_OHM)
+        if self.law != "log":
+            raise ValueError(f"unknown detector law {self.law!r} (log, square or linear)")
         return self.slope(frequency_hz, temperature_c) * (
             self.effective_dbm(dut_dbm) - self.intercept(frequency_hz, temperature_c))
 

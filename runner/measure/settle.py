@@ -215,7 +215,8 @@ class SettleDetector:
         """Learned time constants for a level increase and a level decrease (None if unknown)."""
         if self.polarity == 0:
             return None, None
-        up, down = ("rise", "fall") if self.polarity > 0 else ("fall", "rise")
+        up: Direction = "rise" if self.polarity > 0 else "fall"
+        down: Direction = "fall" if self.polarity > 0 else "rise"
         return self.tau_s(up), self.tau_s(down)
 
     def prior(self, direction: Direction | None) -> tuple[float, float]:
