@@ -3,7 +3,7 @@
 Synthetic streams are what an integrating meter reads from a first-order output after a step:
 the exact mean of B exp(-t/tau) over each integration window, plus Gaussian noise. The helper is
 checked against scipy.signal's step response (reference library); "time to within tolerance is
-tau * ln(|B| / tolerance)" is textbook first-order settling (DESIGN.md, outside references).
+tau * ln(|B| / tolerance)" is textbook first-order settling (docs/design.md, outside references).
 """
 
 from __future__ import annotations

@@ -46,7 +46,7 @@ class Engine:
         s = self.plan.settle
         # one detector per run: it learns time constants and noise from point to point
         self.detector = SettleDetector(s.tolerance_v, samples=self.plan.measure.samples,
-                                       min_wait_s=s.min_wait_s, max_tau_s=s.prior_tau_s)
+                                       min_wait_s=s.min_wait_s, max_tau_s=s.prior_tau_s, tail_share=s.tail_share)
         self.last_dbm: float | None = None   # DUT level of the last point; None while RF is off
 
     # -- safety ---------------------------------------------------------------------------

@@ -1,4 +1,4 @@
-"""Deciding that a point has settled (DESIGN.md, "Settling: what right means").
+"""Deciding that a point has settled (docs/design.md, "Settling"; docs/settling.md).
 
 A first-order output approaching its final value A after a change, read by an integrating meter,
 gives readings y(t) = A + C exp(-t / tau) + noise (integration only rescales C). The detector

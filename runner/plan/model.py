@@ -246,6 +246,9 @@ class Settle(_Strict):
     min_wait_s: NonNegative = 0.0     # never accept sooner after a change (a DUT with a known dead time)
     max_tau_s: Positive | None = None  # slowest time constant allowed for before one is learned
     level_order: Literal["planned", "fast-edge"] = "planned"   # fast-edge: sweep levels toward the faster edge
+    # the share of a step a slow tail may have until the readings bound it (measure/tail.py);
+    # 0 for a part known to have none: large steps then settle as fast as their main response
+    tail_share: Annotated[float, Field(ge=0, le=0.5, allow_inf_nan=False)] = 0.02
 
     @property
     def prior_tau_s(self) -> float:
