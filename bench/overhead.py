@@ -49,16 +49,25 @@ default_nplc = 0.001
 
 
 def plan_text(resources: dict, points: int) -> str:
-    return yaml.safe_dump({
-        "name": "overhead",
-        "instruments": {"source": {"driver": "scpi-source", "resource": resources["source"]},
-                        "meter": {"driver": "scpi-dmm", "resource": resources["meter"], "nplc": 0.001}},
-        "path": {"loss_db": 6.0}, "limits": {"dut_max_dbm": 0},
-        "sweep": {"frequency_hz": [100e6], "power_dbm": {"start": -80, "stop": -80 + 0.1 * (points - 1),
-                                                         "points": points}},
-        "settle": {"tolerance_v": 0.001, "timeout_s": 1},
-        "measure": {"samples": 4}, "analysis": {"fit_dbm": [-70, -50]},
-    }, sort_keys=False)
+    return yaml.safe_dump(
+        {
+            "name": "overhead",
+            "instruments": {
+                "source": {"driver": "scpi-source", "resource": resources["source"]},
+                "meter": {"driver": "scpi-dmm", "resource": resources["meter"], "nplc": 0.001},
+            },
+            "path": {"loss_db": 6.0},
+            "limits": {"dut_max_dbm": 0},
+            "sweep": {
+                "frequency_hz": [100e6],
+                "power_dbm": {"start": -80, "stop": -80 + 0.1 * (points - 1), "points": points},
+            },
+            "settle": {"tolerance_v": 0.001, "timeout_s": 1},
+            "measure": {"samples": 4},
+            "analysis": {"fit_dbm": [-70, -50]},
+        },
+        sort_keys=False,
+    )
 
 
 def run_nightbench(resources: dict, points: int, db: Path) -> tuple[float, list[dict]]:
@@ -124,8 +133,9 @@ def nagle(resources: dict, n: int = 60) -> dict[str, float]:
                         inst.write(msg)
                     inst.query("*OPC?")
                 times.append(time.perf_counter() - t0)
-            out[f"{'joined' if joined else 'separate'} writes, TCP_NODELAY {'on' if nodelay else 'off'}"] = \
+            out[f"{'joined' if joined else 'separate'} writes, TCP_NODELAY {'on' if nodelay else 'off'}"] = (
                 1e3 * statistics.median(times)
+            )
         inst.query(":OUTP OFF;*OPC?")
         inst.close()
     return out
@@ -141,9 +151,9 @@ def main() -> int:
         config.write_text(ZERO_SETTLING)
         with SimProcess("--config", str(config)) as sim:
             ratios, nb_times, bare_times = [], [], []
-            _, rows = run_nightbench(sim.resources, args.points, Path(tmp) / "warm.db")   # warm-up
+            _, rows = run_nightbench(sim.resources, args.points, Path(tmp) / "warm.db")  # warm-up
             for i in range(args.repeats):
-                if i % 2:   # alternate which goes first, so drift on a shared machine cancels
+                if i % 2:  # alternate which goes first, so drift on a shared machine cancels
                     bare = run_bare(sim.resources, rows)
                     nb, rows = run_nightbench(sim.resources, args.points, Path(tmp) / f"o{i}.db")
                 else:
@@ -153,15 +163,23 @@ def main() -> int:
                 bare_times.append(bare)
                 ratios.append(nb / bare)
             queries = sum(r["settle_readings"] + r["samples"] + 1 for r in rows)
-            print(f"sweep: {args.points} points, {queries} queries per run ({queries / args.points:.1f} per point), "
-                  f"simulator in its own process, zero settling")
-            print(f"nightbench engine: median {statistics.median(nb_times) * 1e3:.0f} ms "
-                  f"({statistics.median(nb_times) / args.points * 1e3:.3f} ms/point)")
-            print(f"bare pyvisa loop:  median {statistics.median(bare_times) * 1e3:.0f} ms "
-                  f"({statistics.median(bare_times) / args.points * 1e3:.3f} ms/point)")
+            print(
+                f"sweep: {args.points} points, {queries} queries per run ({queries / args.points:.1f} per point), "
+                f"simulator in its own process, zero settling"
+            )
+            print(
+                f"nightbench engine: median {statistics.median(nb_times) * 1e3:.0f} ms "
+                f"({statistics.median(nb_times) / args.points * 1e3:.3f} ms/point)"
+            )
+            print(
+                f"bare pyvisa loop:  median {statistics.median(bare_times) * 1e3:.0f} ms "
+                f"({statistics.median(bare_times) / args.points * 1e3:.3f} ms/point)"
+            )
             print(f"ratio nightbench / bare, paired runs: {', '.join(f'{r:.2f}' for r in ratios)}")
-            print(f"  median of paired ratios {statistics.median(ratios):.3f}; best-of ratio "
-                  f"{min(nb_times) / min(bare_times):.3f} (target <= 1.10)")
+            print(
+                f"  median of paired ratios {statistics.median(ratios):.3f}; best-of ratio "
+                f"{min(nb_times) / min(bare_times):.3f} (target <= 1.10)"
+            )
             print("settings + *OPC? (median of 60):")
             for name, ms in nagle(sim.resources).items():
                 print(f"  {name:<36} {ms:7.3f} ms")

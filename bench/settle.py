@@ -46,12 +46,12 @@ from nightbench.simulators.physics import BenchConfig, BenchModel
 from nightbench.store.db import Store
 
 TAUS_S = (0.001, 0.03, 0.3)
-NOISE_V = (0.05e-3, 0.3e-3)          # detector output noise, rms at a 20 ms window
+NOISE_V = (0.05e-3, 0.3e-3)  # detector output noise, rms at a 20 ms window
 TOLERANCE_V = 0.0005
 SAMPLES = 4
 NPLC = 0.1
 FREQS_HZ = (100e6, 900e6)
-LEVEL_STEP_DB = {0.001: 2, 0.03: 4, 0.3: 15}   # by the slower edge: short sweeps for long taus
+LEVEL_STEP_DB = {0.001: 2, 0.03: 4, 0.3: 15}  # by the slower edge: short sweeps for long taus
 
 
 def config_text(rise_s: float, fall_s: float, noise_v: float) -> str:
@@ -62,8 +62,10 @@ def plan_for(resources: dict[str, str], model: BenchModel, step_db: float) -> di
     loss = model.config.path.loss
     return {
         "name": "bench-settle",
-        "instruments": {"source": {"driver": "scpi-source", "resource": resources["source"]},
-                        "meter": {"driver": "scpi-dmm", "resource": resources["meter"], "nplc": NPLC}},
+        "instruments": {
+            "source": {"driver": "scpi-source", "resource": resources["source"]},
+            "meter": {"driver": "scpi-dmm", "resource": resources["meter"], "nplc": NPLC},
+        },
         "path": {"table": [[f, loss(f)] for f in FREQS_HZ]},
         "limits": {"dut_max_dbm": 0},
         "sweep": {"frequency_hz": list(FREQS_HZ), "power_dbm": {"start": -70, "stop": -10, "step": step_db}},
@@ -84,7 +86,7 @@ def reading_noise_v(model: BenchModel, dut_dbm: float, window_s: float) -> float
 def physical_minimum_s(points: list[Point], model: BenchModel, window_s: float) -> tuple[float, float]:
     """(total, worst step): first-order time to within tolerance after each step, plus the readings."""
     det = model.config.detector
-    prev = model.truth_v(-math.inf, points[0].frequency_hz)      # RF off before the first point
+    prev = model.truth_v(-math.inf, points[0].frequency_hz)  # RF off before the first point
     total = worst = 0.0
     for p in points:
         v = model.truth_v(p.power_dbm, p.frequency_hz)
@@ -111,8 +113,9 @@ class SweepTimer(Engine):
 def run_cell(rise_s: float, fall_s: float, noise_v: float, workdir: Path) -> dict:
     cfg_path = workdir / f"sim-{rise_s}-{fall_s}-{noise_v}.toml"
     cfg_path.write_text(config_text(rise_s, fall_s, noise_v))
-    model = BenchModel(BenchConfig.from_dict({"detector": {"tau_rise_s": rise_s, "tau_fall_s": fall_s,
-                                                           "output_noise_v": noise_v}}))
+    model = BenchModel(
+        BenchConfig.from_dict({"detector": {"tau_rise_s": rise_s, "tau_fall_s": fall_s, "output_noise_v": noise_v}})
+    )
     window = model.integration_s(NPLC)
     with SimProcess("--config", str(cfg_path)) as sim:
         plan = plan_for(sim.resources, model, LEVEL_STEP_DB[max(rise_s, fall_s)])
@@ -143,21 +146,34 @@ def run_cell(rise_s: float, fall_s: float, noise_v: float, workdir: Path) -> dic
     settle_total = sum(r["settle_s"] for r in rows.values())
     fixed = elapsed - settle_total + len(rows) * worst
     ideal_fixed = len(rows) * (worst + SAMPLES * window)
-    return {"rise_ms": rise_s * 1e3, "fall_ms": fall_s * 1e3, "noise_mv": noise_v * 1e3,
-            "points": len(rows), "within": within / len(rows),
-            "unsettled": sum(1 for r in rows.values() if not r["settled"]),
-            "time_s": elapsed, "min_s": minimum, "time_min": elapsed / minimum,
-            "fixed_time": fixed / elapsed, "fixed_min": ideal_fixed / minimum, "order": planned_min / minimum}
+    return {
+        "rise_ms": rise_s * 1e3,
+        "fall_ms": fall_s * 1e3,
+        "noise_mv": noise_v * 1e3,
+        "points": len(rows),
+        "within": within / len(rows),
+        "unsettled": sum(1 for r in rows.values() if not r["settled"]),
+        "time_s": elapsed,
+        "min_s": minimum,
+        "time_min": elapsed / minimum,
+        "fixed_time": fixed / elapsed,
+        "fixed_min": ideal_fixed / minimum,
+        "order": planned_min / minimum,
+    }
 
 
-HEADER = ("| rise ms | fall ms | noise mV @20ms | points | within | unsettled | time s | min s | time/min "
-          "| fixed/time | fixed/min | order |")
+HEADER = (
+    "| rise ms | fall ms | noise mV @20ms | points | within | unsettled | time s | min s | time/min "
+    "| fixed/time | fixed/min | order |"
+)
 
 
 def row_text(c: dict) -> str:
-    return (f"| {c['rise_ms']:g} | {c['fall_ms']:g} | {c['noise_mv']:g} | {c['points']} | {100 * c['within']:.1f} % "
-            f"| {c['unsettled']} | {c['time_s']:.2f} | {c['min_s']:.2f} | {c['time_min']:.2f} "
-            f"| {c['fixed_time']:.1f} | {c['fixed_min']:.1f} | {c['order']:.2f} |")
+    return (
+        f"| {c['rise_ms']:g} | {c['fall_ms']:g} | {c['noise_mv']:g} | {c['points']} | {100 * c['within']:.1f} % "
+        f"| {c['unsettled']} | {c['time_s']:.2f} | {c['min_s']:.2f} | {c['time_min']:.2f} "
+        f"| {c['fixed_time']:.1f} | {c['fixed_min']:.1f} | {c['order']:.2f} |"
+    )
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -167,7 +183,7 @@ def main(argv: list[str] | None = None) -> int:
     args = parser.parse_args(argv)
     grid = [(r, f, n) for n in NOISE_V for r in TAUS_S for f in TAUS_S]
     if args.cells:
-        grid = grid[:args.cells]
+        grid = grid[: args.cells]
     lines = [HEADER, "|" + " --- |" * (HEADER.count("|") - 1)]
     print("\n".join(lines), flush=True)
     cells = []
@@ -182,9 +198,11 @@ def main(argv: list[str] | None = None) -> int:
     within = sum(c["within"] * c["points"] for c in cells) / points
     total, minimum = sum(c["time_s"] for c in cells), sum(c["min_s"] for c in cells)
     fixed = sum(c["fixed_time"] * c["time_s"] for c in cells)
-    summary = (f"all cells: {points} points, {100 * within:.1f} % within tolerance, time/min "
-               f"{total / minimum:.2f}, fixed/time {fixed / total:.1f}; "
-               f"benchmark wall time {time.perf_counter() - started:.0f} s")
+    summary = (
+        f"all cells: {points} points, {100 * within:.1f} % within tolerance, time/min "
+        f"{total / minimum:.2f}, fixed/time {fixed / total:.1f}; "
+        f"benchmark wall time {time.perf_counter() - started:.0f} s"
+    )
     print(summary)
     if args.out:
         Path(args.out).write_text("\n".join(lines + ["", summary]) + "\n")

@@ -39,7 +39,9 @@ def merged(defaults: dict[str, str], overrides: dict[str, str] | None) -> dict[s
             template.format(**FIELDS)
         except (KeyError, IndexError, ValueError) as exc:
             allowed = [f for f in FIELDS if "{" + f in defaults[name]]
-            raise ValueError(f"template {template!r} for '{name}' does not format "
-                             f"(fields it may use: {', '.join(allowed) or 'none'}): {exc}") from None
+            raise ValueError(
+                f"template {template!r} for '{name}' does not format "
+                f"(fields it may use: {', '.join(allowed) or 'none'}): {exc}"
+            ) from None
         table[name] = template
     return table

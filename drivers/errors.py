@@ -31,7 +31,7 @@ class NightbenchError(Exception):
     """Root of every error nightbench raises on purpose."""
 
     exit_code = 1
-    FIELDS: tuple[str, ...] = ()   # the structured fields a subclass carries
+    FIELDS: tuple[str, ...] = ()  # the structured fields a subclass carries
 
     def __init__(self, message: str) -> None:
         super().__init__(message)
@@ -60,8 +60,9 @@ class InputError(NightbenchError):
     exit_code = 2
     FIELDS = ("file", "line", "key")
 
-    def __init__(self, message: str, *, file: str | None = None, line: int | None = None,
-                 key: str | None = None) -> None:
+    def __init__(
+        self, message: str, *, file: str | None = None, line: int | None = None, key: str | None = None
+    ) -> None:
         super().__init__(message)
         self.file = file
         self.line = line
@@ -79,8 +80,9 @@ class InstrumentError(NightbenchError):
 
     FIELDS = ("resource", "command", "scpi_code")
 
-    def __init__(self, message: str, *, resource: str | None = None, command: str | None = None,
-                 scpi_code: int | None = None) -> None:
+    def __init__(
+        self, message: str, *, resource: str | None = None, command: str | None = None, scpi_code: int | None = None
+    ) -> None:
         super().__init__(message)
         self.resource = resource
         self.command = command

@@ -14,9 +14,9 @@ from collections.abc import Callable
 from nightbench.drivers.errors import ConnectionLost, InstrumentError
 from nightbench.drivers.transport import Transport
 
-BACKOFF_S = (0.1, 0.3, 0.7, 1.5)   # waits before each reconnect attempt
+BACKOFF_S = (0.1, 0.3, 0.7, 1.5)  # waits before each reconnect attempt
 
-Proof = Callable[[], object]   # a query that raises InstrumentError unless the instrument is in step
+Proof = Callable[[], object]  # a query that raises InstrumentError unless the instrument is in step
 
 
 class LineSession:
@@ -27,8 +27,14 @@ class LineSession:
     boards cannot say what they are, and are proven alive by a reading instead (see `reconnect`).
     """
 
-    def __init__(self, transport: Transport, name: str, *, opener: Callable[[], Transport] | None = None,
-                 idn_query: str | None = None) -> None:
+    def __init__(
+        self,
+        transport: Transport,
+        name: str,
+        *,
+        opener: Callable[[], Transport] | None = None,
+        idn_query: str | None = None,
+    ) -> None:
         self.transport = transport
         self.name = name
         self.opener = opener
@@ -45,8 +51,7 @@ class LineSession:
             raise InstrumentError(f"the {self.name} has no identity query", resource=self.resource)
         reply = self.transport.query(self.idn_query)
         if not reply:
-            raise InstrumentError(f"empty reply to {self.idn_query}", resource=self.resource,
-                                  command=self.idn_query)
+            raise InstrumentError(f"empty reply to {self.idn_query}", resource=self.resource, command=self.idn_query)
         self.idn = reply
         return reply
 
@@ -72,8 +77,9 @@ class LineSession:
         if self.opener is None:
             raise ConnectionLost("lost and cannot be reopened", resource=self.resource)
         if self.idn_query is None and proof is None:
-            raise ConnectionLost(f"the {self.name} has neither an identity query nor a proof to reconnect with",
-                                 resource=self.resource)
+            raise ConnectionLost(
+                f"the {self.name} has neither an identity query nor a proof to reconnect with", resource=self.resource
+            )
         known = self.idn
         self.transport.close()
         last: InstrumentError | None = None
@@ -86,12 +92,14 @@ class LineSession:
                 self.transport.flush_input()
                 self._prove(known, proof)
                 return
-            except InstrumentError as exc:   # ConnectionLost included
+            except InstrumentError as exc:  # ConnectionLost included
                 last = exc
                 self.idn = known
                 self.transport.close()
-        raise ConnectionLost(f"the {self.name} did not come back after {len(BACKOFF_S)} reconnect attempts ({last})",
-                             resource=self.resource) from last
+        raise ConnectionLost(
+            f"the {self.name} did not come back after {len(BACKOFF_S)} reconnect attempts ({last})",
+            resource=self.resource,
+        ) from last
 
     def _prove(self, known: str, proof: Proof | None) -> None:
         if self.idn_query is None:
@@ -100,8 +108,9 @@ class LineSession:
             return
         reply = self.identify()
         if known and reply != known:
-            raise InstrumentError(f"answered {self.idn!r} instead of its identity (a stale reply?)",
-                                  resource=self.resource)
+            raise InstrumentError(
+                f"answered {self.idn!r} instead of its identity (a stale reply?)", resource=self.resource
+            )
 
 
 class SessionRole:

@@ -19,16 +19,28 @@ OVERRANGE = 9.9e37
 class ScpiDmm(SessionRole):
     """A DMM read one triggered reading at a time (READ? by default)."""
 
-    def __init__(self, session: ScpiSession, *, nplc: float | None = None, range_v: float | None = None,
-                 commands: dict[str, str] | None = None) -> None:
+    def __init__(
+        self,
+        session: ScpiSession,
+        *,
+        nplc: float | None = None,
+        range_v: float | None = None,
+        commands: dict[str, str] | None = None,
+    ) -> None:
         self.session: ScpiSession = session
         self.nplc = nplc
         self.range_v = range_v
         self.commands = commands or dict(METER_COMMANDS)
 
     @classmethod
-    def open(cls, link: Link, *, nplc: float | None = None, range_v: float | None = None,
-             commands: dict[str, str] | None = None) -> ScpiDmm:
+    def open(
+        cls,
+        link: Link,
+        *,
+        nplc: float | None = None,
+        range_v: float | None = None,
+        commands: dict[str, str] | None = None,
+    ) -> ScpiDmm:
         """A DMM on a new link (not yet proven to answer: see `prove`)."""
         table = commands or dict(METER_COMMANDS)
         session = ScpiSession(link.open(), "meter", opener=link.open, error_query=table["error_query"])
@@ -77,8 +89,17 @@ class SerialAdc(SessionRole):
     and after a reconnect, by answering `query` with a reading `pattern` can parse.
     """
 
-    def __init__(self, session: LineSession, *, query: str, pattern: str, scale: float, offset: float = 0.0,
-                 setup: Sequence[str] = (), overload: str | None = None) -> None:
+    def __init__(
+        self,
+        session: LineSession,
+        *,
+        query: str,
+        pattern: str,
+        scale: float,
+        offset: float = 0.0,
+        setup: Sequence[str] = (),
+        overload: str | None = None,
+    ) -> None:
         self.session = session
         self.query_text = query
         self.pattern = re.compile(pattern)
@@ -88,12 +109,21 @@ class SerialAdc(SessionRole):
         self.overload = overload
 
     @classmethod
-    def open(cls, link: Link, *, query: str, pattern: str, scale: float, offset: float = 0.0,
-             identify: str | None = None, setup: Sequence[str] = (), overload: str | None = None) -> SerialAdc:
+    def open(
+        cls,
+        link: Link,
+        *,
+        query: str,
+        pattern: str,
+        scale: float,
+        offset: float = 0.0,
+        identify: str | None = None,
+        setup: Sequence[str] = (),
+        overload: str | None = None,
+    ) -> SerialAdc:
         """A board on a new link, with `identify` as its identity query if it has one."""
         session = LineSession(link.open(), "meter", opener=link.open, idn_query=identify)
-        return cls(session, query=query, pattern=pattern, scale=scale, offset=offset, setup=setup,
-                   overload=overload)
+        return cls(session, query=query, pattern=pattern, scale=scale, offset=offset, setup=setup, overload=overload)
 
     def configure(self) -> None:
         for command in self.setup:
@@ -116,11 +146,15 @@ class SerialAdc(SessionRole):
             return math.inf
         match = self.pattern.search(reply)
         if not match:
-            raise InstrumentError(f"ADC reply {reply!r} does not match {self.pattern.pattern!r}",
-                                  resource=self.resource, command=self.query_text)
+            raise InstrumentError(
+                f"ADC reply {reply!r} does not match {self.pattern.pattern!r}",
+                resource=self.resource,
+                command=self.query_text,
+            )
         try:
             counts = float(match.group(1) if match.groups() else match.group(0))
         except ValueError as exc:
-            raise InstrumentError(f"ADC reply {reply!r} holds no number", resource=self.resource,
-                                  command=self.query_text) from exc
+            raise InstrumentError(
+                f"ADC reply {reply!r} holds no number", resource=self.resource, command=self.query_text
+            ) from exc
         return counts * self.scale + self.offset

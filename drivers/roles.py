@@ -57,8 +57,9 @@ class SourceRole(Role, Protocol):
     @property
     def output_on(self) -> bool | None: ...
 
-    def set(self, *, frequency_hz: float | None = None, level_dbm: float | None = None,
-            output: bool | None = None) -> None:
+    def set(
+        self, *, frequency_hz: float | None = None, level_dbm: float | None = None, output: bool | None = None
+    ) -> None:
         """Apply any of the three, level first, read back; SafetyError outside min/max_dbm."""
 
     def rf_off(self) -> None: ...

@@ -71,8 +71,15 @@ class ScpiSession(LineSession):
 
     MAX_DRAIN = 32  # an error queue deeper than this is itself a fault
 
-    def __init__(self, transport: Transport, name: str, *, opener: Callable[[], Transport] | None = None,
-                 error_query: str = ":SYSTem:ERRor?", idn_query: str = "*IDN?") -> None:
+    def __init__(
+        self,
+        transport: Transport,
+        name: str,
+        *,
+        opener: Callable[[], Transport] | None = None,
+        error_query: str = ":SYSTem:ERRor?",
+        idn_query: str = "*IDN?",
+    ) -> None:
         super().__init__(transport, name, opener=opener, idn_query=idn_query)
         self.error_query = error_query
 
@@ -86,8 +93,9 @@ class ScpiSession(LineSession):
             # a refused query (e.g. an unknown header) leaves its unit out: the error says why
             if _is_error_entry(units[-1]):
                 self._raise_if_error(units[-1], program, "refused a setting")
-            raise InstrumentError(f"unexpected reply {reply!r} to a synchronised setting",
-                                  resource=self.resource, command=program)
+            raise InstrumentError(
+                f"unexpected reply {reply!r} to a synchronised setting", resource=self.resource, command=program
+            )
         self._raise_if_error(units[n + 1], program, "refused a setting")
         return units[:n]
 

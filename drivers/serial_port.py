@@ -24,12 +24,13 @@ class SerialTransport:
     def open(cls, resource: str, *, timeout_s: float, baud_rate: int = 9600) -> SerialTransport:
         import serial
 
-        url = resource[len(PREFIX):]
+        url = resource[len(PREFIX) :]
         try:
-            port = serial.serial_for_url(url, baudrate=baud_rate, timeout=timeout_s, write_timeout=timeout_s,
-                                         do_not_open=True)
+            port = serial.serial_for_url(
+                url, baudrate=baud_rate, timeout=timeout_s, write_timeout=timeout_s, do_not_open=True
+            )
             if not url.startswith(("loop://", "socket://", "rfc2217://")):
-                port.exclusive = True   # two clients on one pty would steal each other's replies
+                port.exclusive = True  # two clients on one pty would steal each other's replies
             port.open()
         except (serial.SerialException, OSError, ValueError) as exc:
             raise ConnectionLost(f"cannot open: {exc}", resource=resource) from exc
@@ -53,8 +54,11 @@ class SerialTransport:
         except (serial.SerialException, OSError) as exc:
             raise ConnectionLost(f"link error ({exc})", resource=self.resource, command=message) from exc
         if not raw.endswith(b"\n"):
-            raise ConnectionLost("no reply before the timeout (instrument silent or disconnected)",
-                                 resource=self.resource, command=message)
+            raise ConnectionLost(
+                "no reply before the timeout (instrument silent or disconnected)",
+                resource=self.resource,
+                command=message,
+            )
         return raw.decode("ascii", errors="replace").strip()
 
     def flush_input(self) -> None:

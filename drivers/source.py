@@ -23,8 +23,14 @@ class RfSource(SessionRole):
     """An RF signal generator. Refuses levels outside its configured limits before sending, and
     reads every setting back in the same message, so what is stored is what the source has."""
 
-    def __init__(self, session: ScpiSession, *, min_dbm: float = DEFAULT_MIN_DBM, max_dbm: float = DEFAULT_MAX_DBM,
-                 commands: dict[str, str] | None = None) -> None:
+    def __init__(
+        self,
+        session: ScpiSession,
+        *,
+        min_dbm: float = DEFAULT_MIN_DBM,
+        max_dbm: float = DEFAULT_MAX_DBM,
+        commands: dict[str, str] | None = None,
+    ) -> None:
         self.session: ScpiSession = session
         self.min_dbm = min_dbm
         self.max_dbm = max_dbm
@@ -32,8 +38,14 @@ class RfSource(SessionRole):
         self.forget()
 
     @classmethod
-    def open(cls, link: Link, *, min_dbm: float = DEFAULT_MIN_DBM, max_dbm: float = DEFAULT_MAX_DBM,
-             commands: dict[str, str] | None = None) -> RfSource:
+    def open(
+        cls,
+        link: Link,
+        *,
+        min_dbm: float = DEFAULT_MIN_DBM,
+        max_dbm: float = DEFAULT_MAX_DBM,
+        commands: dict[str, str] | None = None,
+    ) -> RfSource:
         """A source on a new link (not yet proven to answer: see `prove`)."""
         table = commands or dict(SOURCE_COMMANDS)
         session = ScpiSession(link.open(), "source", opener=link.open, error_query=table["error_query"])
@@ -64,8 +76,9 @@ class RfSource(SessionRole):
             self.session.drain_errors()
             self.set(output=False)
 
-    def set(self, *, frequency_hz: float | None = None, level_dbm: float | None = None,
-            output: bool | None = None) -> None:
+    def set(
+        self, *, frequency_hz: float | None = None, level_dbm: float | None = None, output: bool | None = None
+    ) -> None:
         """Apply any of the three in one synchronised, error-checked, read-back message, level
         first: a caller that lowers the level for a frequency change gets it applied first."""
         c = self.commands
@@ -75,7 +88,9 @@ class RfSource(SessionRole):
             if not (self.min_dbm <= level_dbm <= self.max_dbm):
                 raise SafetyError(
                     f"source level {level_dbm:.2f} dBm is outside the source's limits "
-                    f"[{self.min_dbm}, {self.max_dbm}] dBm", resource=self.resource)
+                    f"[{self.min_dbm}, {self.max_dbm}] dBm",
+                    resource=self.resource,
+                )
             commands.append(c["set_level"].format(level_dbm=level_dbm))
             readbacks.append(c["query_level"])
         if frequency_hz is not None:
@@ -96,8 +111,9 @@ class RfSource(SessionRole):
         if output is not None:
             got = next(values).strip().upper()
             if got not in (("1", "ON") if output else ("0", "OFF")):
-                raise InstrumentError(f"source output reads back {got!r}, not {'ON' if output else 'OFF'}",
-                                      resource=self.resource)
+                raise InstrumentError(
+                    f"source output reads back {got!r}, not {'ON' if output else 'OFF'}", resource=self.resource
+                )
             self.output_on = output
 
     def _check(self, what: str, wanted: float, reply: str, *, abs_tol: float = 0.0, rel_tol: float = 0.0) -> None:
@@ -106,8 +122,9 @@ class RfSource(SessionRole):
         except ValueError as exc:
             raise InstrumentError(f"source {what} reads back {reply!r}", resource=self.resource) from exc
         if not math.isclose(got, wanted, abs_tol=abs_tol, rel_tol=rel_tol):
-            raise InstrumentError(f"source {what} reads back {got:g}, not the {wanted:g} that was set",
-                                  resource=self.resource)
+            raise InstrumentError(
+                f"source {what} reads back {got:g}, not the {wanted:g} that was set", resource=self.resource
+            )
 
     def rf_off(self) -> None:
         self.set(output=False)

@@ -37,8 +37,9 @@ class Link:
     baud_rate: int | None = None
 
     def open(self) -> Transport:
-        return open_transport(self.resource, timeout_s=self.timeout_s, visa_library=self.visa_library,
-                              baud_rate=self.baud_rate)
+        return open_transport(
+            self.resource, timeout_s=self.timeout_s, visa_library=self.visa_library, baud_rate=self.baud_rate
+        )
 
 
 VISA_PREFIXES = ("TCPIP", "ASRL", "GPIB", "USB")
@@ -73,8 +74,9 @@ def check_resource(resource: str) -> str | None:
     return None
 
 
-def open_transport(resource: str, *, timeout_s: float = 2.0, visa_library: str = "@py",
-                   baud_rate: int | None = None) -> Transport:
+def open_transport(
+    resource: str, *, timeout_s: float = 2.0, visa_library: str = "@py", baud_rate: int | None = None
+) -> Transport:
     """Open the transport that serves `resource` and return it, opened (not yet proven alive)."""
     from nightbench.drivers.serial_port import PREFIX as SERIAL
 

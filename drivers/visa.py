@@ -50,8 +50,9 @@ class VisaTransport:
         self._errors = _link_errors()
 
     @classmethod
-    def open(cls, resource: str, *, timeout_s: float, visa_library: str = "@py",
-             baud_rate: int | None = None) -> VisaTransport:
+    def open(
+        cls, resource: str, *, timeout_s: float, visa_library: str = "@py", baud_rate: int | None = None
+    ) -> VisaTransport:
         rm = resource_manager(visa_library)
         errors = _link_errors()
         try:
@@ -96,7 +97,7 @@ class VisaTransport:
             return
         if hasattr(session, "_pending_buffer"):
             session._pending_buffer.clear()
-        if hasattr(link, "reset_input_buffer"):        # pyserial port behind ASRL
+        if hasattr(link, "reset_input_buffer"):  # pyserial port behind ASRL
             with contextlib.suppress(*self._errors):
                 link.reset_input_buffer()
             return
@@ -104,7 +105,7 @@ class VisaTransport:
             link.setblocking(False)
             while link.recv(65536):
                 pass
-        except OSError:   # BlockingIOError included: nothing more to read
+        except OSError:  # BlockingIOError included: nothing more to read
             pass
         finally:
             with contextlib.suppress(OSError):
@@ -134,7 +135,7 @@ def set_nodelay(inst: Any, on: bool = True) -> bool:
         inst.set_visa_attribute(constants.VI_ATTR_TCPIP_NODELAY, constants.VI_TRUE if on else constants.VI_FALSE)
         return True
     except unsupported:
-        return False   # not every backend has it; joined messages avoid the stall anyway
+        return False  # not every backend has it; joined messages avoid the stall anyway
 
 
 def _describe(exc: BaseException) -> str:

@@ -32,11 +32,14 @@ def _columns(rows: Sequence[Any]) -> dict[str, np.ndarray]:
     if not rows:
         return {}
     out: dict[str, np.ndarray] = {}
-    for key in rows[0].keys():   # noqa: SIM118 - sqlite3.Row iterates values, not keys
+    for key in rows[0].keys():  # noqa: SIM118 - sqlite3.Row iterates values, not keys
         values = [r[key] for r in rows]
         numeric = all(v is None or isinstance(v, int | float) for v in values)
-        out[key] = (np.array([np.nan if v is None else v for v in values], dtype=float) if numeric
-                    else np.array(values, dtype=object))
+        out[key] = (
+            np.array([np.nan if v is None else v for v in values], dtype=float)
+            if numeric
+            else np.array(values, dtype=object)
+        )
     return out
 
 
@@ -83,8 +86,9 @@ class Results:
     def fits_frame(self, run_id: int) -> Any:
         return _frame(self.fits(run_id))
 
-    def report(self, run_id: int, *, fit_dbm: tuple[float, float] | None = None,
-               error_limit_db: float | None = None) -> Report:
+    def report(
+        self, run_id: int, *, fit_dbm: tuple[float, float] | None = None, error_limit_db: float | None = None
+    ) -> Report:
         """Analyse a run again, with the plan's settings or others; stores nothing."""
         from nightbench.analysis.fit import analyse_run
         from nightbench.analysis.report import build_report
@@ -92,15 +96,16 @@ class Results:
         report = build_report(self.store, run_id)
         if fit_dbm is None and error_limit_db is None:
             return report
-        settings = replace(report.settings,
-                           fit_dbm=report.settings.fit_dbm if fit_dbm is None else (float(fit_dbm[0]),
-                                                                                   float(fit_dbm[1])),
-                           error_limit_db=report.settings.error_limit_db if error_limit_db is None
-                           else float(error_limit_db))
+        settings = replace(
+            report.settings,
+            fit_dbm=report.settings.fit_dbm if fit_dbm is None else (float(fit_dbm[0]), float(fit_dbm[1])),
+            error_limit_db=report.settings.error_limit_db if error_limit_db is None else float(error_limit_db),
+        )
         if settings.fit_dbm[0] >= settings.fit_dbm[1] or settings.error_limit_db <= 0:
             raise InputError("fit_dbm must be (low, high) with low < high, and error_limit_db positive")
-        groups = analyse_run([dict(r) for r in self.store.points(run_id)], settings.fit_dbm,
-                             settings.error_limit_db, settings.accuracy)
+        groups = analyse_run(
+            [dict(r) for r in self.store.points(run_id)], settings.fit_dbm, settings.error_limit_db, settings.accuracy
+        )
         return replace(report, settings=settings, groups=groups)
 
 

@@ -31,12 +31,14 @@ def _fail(message: str, code: int) -> None:
 
 def friendly(fn: Callable[..., Any]) -> Callable[..., Any]:
     """Map project errors to a message and exit code."""
+
     @functools.wraps(fn)
     def wrapper(*args: Any, **kwargs: Any) -> Any:
         try:
             return fn(*args, **kwargs)
         except NightbenchError as exc:
             _fail(str(exc), exc.exit_code)
+
     return wrapper
 
 
@@ -81,8 +83,10 @@ def check(plan: str) -> None:
         loss = model.loss(f)
         parts = model.parts(f)
         detail = " + ".join(f"{label} {part:.3f}{' (extrapolated)' if ext else ''}" for label, part, ext in parts)
-        click.echo(f"  {f / 1e6:10.3f} MHz  path loss {loss:7.3f} dB  source {min(levels) + loss:7.2f} .. "
-                   f"{max(levels) + loss:7.2f} dBm" + (f"  [{detail}]" if len(parts) > 1 or parts[0][2] else ""))
+        click.echo(
+            f"  {f / 1e6:10.3f} MHz  path loss {loss:7.3f} dB  source {min(levels) + loss:7.2f} .. "
+            f"{max(levels) + loss:7.2f} dBm" + (f"  [{detail}]" if len(parts) > 1 or parts[0][2] else "")
+        )
 
 
 def _execute(loaded: Any, db: str, run_id: int | None) -> None:
@@ -150,8 +154,10 @@ def runs(db: str | None, as_json: bool) -> None:
     if not rows:
         click.echo("no runs yet")
     for r in rows:
-        click.echo(f"{r['id']:5d}  {r['name']:<28} {r['state']:<12} {r['points_done']:>6}/{r['points_total']:<6} "
-                   f"{r['started_at'] or '-':<24} {r['finished_at'] or '-'}")
+        click.echo(
+            f"{r['id']:5d}  {r['name']:<28} {r['state']:<12} {r['points_done']:>6}/{r['points_total']:<6} "
+            f"{r['started_at'] or '-':<24} {r['finished_at'] or '-'}"
+        )
 
 
 @main.command()
@@ -176,7 +182,7 @@ def report(run_ids: tuple[int, ...], db: str | None, as_json: bool, out: str | N
         from nightbench.output.files import check_out_dir
 
         check_out_dir(out)
-    store = Store.open_readonly(_db(db))   # reads only: never creates, migrates or writes the file
+    store = Store.open_readonly(_db(db))  # reads only: never creates, migrates or writes the file
     for run_id in run_ids:
         store.run(run_id)  # every run must exist before anything is written
     reports = [build_report(store, run_id) for run_id in run_ids]
@@ -187,8 +193,11 @@ def report(run_ids: tuple[int, ...], db: str | None, as_json: bool, out: str | N
 
         cmp = compare_reports(*reports)
         comparison_text = render_comparison(cmp)
-        click.echo(json.dumps(cmp.to_json(), indent=1) if as_json
-                   else "\n\n".join([comparison_text, *(render_table(r) for r in reports)]))
+        click.echo(
+            json.dumps(cmp.to_json(), indent=1)
+            if as_json
+            else "\n\n".join([comparison_text, *(render_table(r) for r in reports)])
+        )
     else:
         click.echo(json.dumps(reports[0].to_json(), indent=1) if as_json else render_table(reports[0]))
     if out:
@@ -217,8 +226,7 @@ def export(run_id: int, fmt: str, db: str | None, output: str | None) -> None:
         write_export(store, run_id, fmt, sys.stdout)
 
 
-@main.command(context_settings={"ignore_unknown_options": True, "allow_extra_args": True,
-                               "help_option_names": []})
+@main.command(context_settings={"ignore_unknown_options": True, "allow_extra_args": True, "help_option_names": []})
 @click.pass_context
 def sim(ctx: click.Context) -> None:
     """Serve the simulated bench until SIGTERM/SIGINT; prints one JSON line of resources.
@@ -243,10 +251,15 @@ def demo(db: str | None) -> None:
 
 # -- the overnight service (docs/service.md) -------------------------------------------------
 
+
 @main.command()
 @click.argument("plan", type=click.Path(dir_okay=True))
-@click.option("--at", "when", metavar="WHEN",
-              help="earliest start: ISO 8601 local date-time (2026-03-04T22:30), or HH:MM = the next such time")
+@click.option(
+    "--at",
+    "when",
+    metavar="WHEN",
+    help="earliest start: ISO 8601 local date-time (2026-03-04T22:30), or HH:MM = the next such time",
+)
 @click.option("--db", help=DB_HELP)
 @friendly
 def submit(plan: str, when: str | None, db: str | None) -> None:
@@ -258,7 +271,7 @@ def submit(plan: str, when: str | None, db: str | None) -> None:
     from nightbench.store.db import Store
 
     not_before = parse_when(when) if when else None
-    loaded = load_plan(plan)   # bad input stops here: nothing written
+    loaded = load_plan(plan)  # bad input stops here: nothing written
     job_id, shown = JobQueue(Store(_db(db))).submit(loaded, not_before)
     click.echo(f"job {job_id} queued: plan '{loaded.plan.name}', not before {shown}")
 
@@ -286,15 +299,23 @@ def queue_cmd(db: str | None, as_json: bool) -> None:
         click.echo("no jobs yet")
     for r in rows:
         run = f"run {r['run_id']}" if r["run_id"] else "-"
-        click.echo(f"{r['id']:5d}  {r['name']:<28} {r['state']:<12} {r['not_before']:<26} {run:<10} "
-                   f"{r['points_done']:>6}/{r['points_total']:<6}{'  ' + r['error'] if r['error'] else ''}")
+        click.echo(
+            f"{r['id']:5d}  {r['name']:<28} {r['state']:<12} {r['not_before']:<26} {run:<10} "
+            f"{r['points_done']:>6}/{r['points_total']:<6}{'  ' + r['error'] if r['error'] else ''}"
+        )
 
 
 @main.command()
 @click.argument("job_id", metavar="JOB", type=int)
 @click.option("--db", help=DB_HELP)
-@click.option("--wait", "wait_s", type=click.FloatRange(0, 3600), default=15.0, show_default=True,
-              help="seconds to wait for a running job to stop")
+@click.option(
+    "--wait",
+    "wait_s",
+    type=click.FloatRange(0, 3600),
+    default=15.0,
+    show_default=True,
+    help="seconds to wait for a running job to stop",
+)
 @friendly
 def cancel(job_id: int, db: str | None, wait_s: float) -> None:
     """Remove a waiting JOB from the queue, or stop a running one safely (after the current
@@ -305,31 +326,46 @@ def cancel(job_id: int, db: str | None, wait_s: float) -> None:
     from nightbench.store.db import Store
     from nightbench.store.states import JobState
 
-    queue = JobQueue(Store(_db(db), create=False))   # writes the request, but never creates a database
+    queue = JobQueue(Store(_db(db), create=False))  # writes the request, but never creates a database
     if queue.cancel(job_id) == JobState.CANCELLED:
         run_id = queue.job(job_id).run_id
-        click.echo(f"job {job_id} cancelled: it will not run"
-                   + (f" again (run {run_id} stays interrupted; `nightbench resume {run_id}` continues it)"
-                      if run_id else ""))
+        click.echo(
+            f"job {job_id} cancelled: it will not run"
+            + (f" again (run {run_id} stays interrupted; `nightbench resume {run_id}` continues it)" if run_id else "")
+        )
         return
     status = queue.service_status()
     if not (status and status["alive"]):
-        click.echo(f"job {job_id} will be cancelled: no service is running; the next `nightbench serve` "
-                   "switches its source off first and leaves its run interrupted")
+        click.echo(
+            f"job {job_id} will be cancelled: no service is running; the next `nightbench serve` "
+            "switches its source off first and leaves its run interrupted"
+        )
         return
     end = time.monotonic() + wait_s
     while (job := queue.job(job_id)).state == JobState.RUNNING and time.monotonic() < end:
         time.sleep(0.1)
     if job.state == JobState.RUNNING:
         _fail(f"job {job_id} asked to stop; the service has not confirmed within {wait_s:g} s", 1)
-    click.echo(f"job {job_id} {job.state}" + (f" (run {job.run_id} interrupted, RF off)"
-                                              if job.state == JobState.CANCELLED else " before the cancel took effect"))
+    click.echo(
+        f"job {job_id} {job.state}"
+        + (
+            f" (run {job.run_id} interrupted, RF off)"
+            if job.state == JobState.CANCELLED
+            else " before the cancel took effect"
+        )
+    )
 
 
 @main.command()
 @click.option("--db", help=DB_HELP)
-@click.option("--poll", "poll_s", type=click.FloatRange(0.05, 60), default=1.0, show_default=True,
-              help="seconds between looks at the queue when idle")
+@click.option(
+    "--poll",
+    "poll_s",
+    type=click.FloatRange(0.05, 60),
+    default=1.0,
+    show_default=True,
+    help="seconds between looks at the queue when idle",
+)
 @friendly
 def serve(db: str | None, poll_s: float) -> None:
     """Run due jobs one at a time until SIGTERM/SIGINT; one service per database.

@@ -16,9 +16,15 @@ from nightbench.store.states import RunState
 def new_run(store: Store, loaded: LoadedPlan) -> int:
     """Record a run with its plan snapshot (text and parsed) before anything is contacted."""
     p = loaded.plan
-    return store.create_run(name=p.name, plan_file=loaded.file, plan_text=loaded.text,
-                            plan_json=p.model_dump(mode="json"), dut_id=p.dut.id, points_total=len(expand(loaded)),
-                            files=loaded.files)
+    return store.create_run(
+        name=p.name,
+        plan_file=loaded.file,
+        plan_text=loaded.text,
+        plan_json=p.model_dump(mode="json"),
+        dut_id=p.dut.id,
+        points_total=len(expand(loaded)),
+        files=loaded.files,
+    )
 
 
 def snapshot_plan(store: Store, run_id: int) -> LoadedPlan:
@@ -38,8 +44,10 @@ def check_resumable(store: Store, run_id: int) -> None:
     loaded = snapshot_plan(store, run_id)
     expected = len(expand(loaded))
     if expected != row["points_total"]:
-        raise InputError(f"run {run_id}: its plan snapshot expands to {expected} points, "
-                         f"but the run was created with {row['points_total']}; refusing to resume")
+        raise InputError(
+            f"run {run_id}: its plan snapshot expands to {expected} points, "
+            f"but the run was created with {row['points_total']}; refusing to resume"
+        )
 
 
 def execute(loaded: LoadedPlan, store: Store, run_id: int, stop: StopFlag) -> tuple[str, str | None]:

@@ -86,7 +86,7 @@ class FaultInjector:
         self.clock = clock
         self.started = clock()
         self.messages = {name: 0 for name in INSTRUMENTS}
-        self.away_until = {name: 0.0 for name in INSTRUMENTS}   # drop/silence in force
+        self.away_until = {name: 0.0 for name in INSTRUMENTS}  # drop/silence in force
         self.away_kind = {name: "" for name in INSTRUMENTS}
         self.lock = threading.Lock()
 
@@ -114,7 +114,7 @@ class FaultInjector:
             fired = self._fire(instrument, ("drop", "silence", "delay", "garbage", "spurious_error"))
             for fault in fired:
                 if fault.kind in ("drop", "silence"):
-                    away_s = -1.0 if fault.duration_s is None else fault.duration_s   # set by from_dict
+                    away_s = -1.0 if fault.duration_s is None else fault.duration_s  # set by from_dict
                     until = float("inf") if away_s < 0 else self.clock() + away_s
                     self.away_until[instrument] = max(self.away_until[instrument], until)
                     self.away_kind[instrument] = fault.kind
@@ -128,8 +128,11 @@ class FaultInjector:
     def refuses_level(self, level_dbm: float) -> Fault | None:
         with self.lock:
             for fault in self.faults:
-                if (fault.kind == "refuse_level" and (fault.level_dbm is None or level_dbm >= fault.level_dbm)
-                        and self._due(fault)):
+                if (
+                    fault.kind == "refuse_level"
+                    and (fault.level_dbm is None or level_dbm >= fault.level_dbm)
+                    and self._due(fault)
+                ):
                     fault.fired += 1
                     return fault
         return None

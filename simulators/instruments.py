@@ -14,7 +14,7 @@ from nightbench.simulators.physics import BenchModel, vrms_to_dbm
 from nightbench.simulators.scpi import MAKER, ScpiCommandError, ScpiInstrument, one_arg, parse_bool, parse_number
 
 Clock = Callable[[], float]
-OVERRANGE = "+9.90000000E+37"   # SCPI-1999 vol. 1, 7.2.1: the value returned for overrange
+OVERRANGE = "+9.90000000E+37"  # SCPI-1999 vol. 1, 7.2.1: the value returned for overrange
 
 # Command headers per dialect: "scpi" is SCPI-1999; "alt" is a non-standard set invented for this
 # simulator (the headers follow no real instrument), for testing a plan's command overrides.
@@ -40,16 +40,31 @@ class MeterHeaders:
 
 
 SOURCE_HEADERS = {
-    "scpi": SourceHeaders(error="SYSTem:ERRor[:NEXT]?", freq="[SOURce]:FREQuency[:CW]",
-                          level="[SOURce]:POWer[:LEVel][:IMMediate][:AMPLitude]", output="OUTPut[:STATe]"),
+    "scpi": SourceHeaders(
+        error="SYSTem:ERRor[:NEXT]?",
+        freq="[SOURce]:FREQuency[:CW]",
+        level="[SOURce]:POWer[:LEVel][:IMMediate][:AMPLitude]",
+        output="OUTPut[:STATe]",
+    ),
     "alt": SourceHeaders(error="ERRor?", freq="TONE:PITCh", level="TONE:LOUDness", output="TONE:SOUNding"),
 }
 METER_HEADERS = {
-    "scpi": MeterHeaders(error="SYSTem:ERRor[:NEXT]?", configure="CONFigure[:VOLTage][:DC]",
-                         nplc="[SENSe]:VOLTage[:DC]:NPLCycles", range="[SENSe]:VOLTage[:DC]:RANGe[:UPPer]",
-                         trigger="TRIGger:SOURce", read=("READ?", "MEASure[:VOLTage][:DC]?")),
-    "alt": MeterHeaders(error="ERRor?", configure="CONFigure:DCV", nplc="DCV:INTegration", range="DCV:RANGe",
-                        trigger="TRIGger:MODE", read=("DCV?",)),
+    "scpi": MeterHeaders(
+        error="SYSTem:ERRor[:NEXT]?",
+        configure="CONFigure[:VOLTage][:DC]",
+        nplc="[SENSe]:VOLTage[:DC]:NPLCycles",
+        range="[SENSe]:VOLTage[:DC]:RANGe[:UPPer]",
+        trigger="TRIGger:SOURce",
+        read=("READ?", "MEASure[:VOLTage][:DC]?"),
+    ),
+    "alt": MeterHeaders(
+        error="ERRor?",
+        configure="CONFigure:DCV",
+        nplc="DCV:INTegration",
+        range="DCV:RANGe",
+        trigger="TRIGger:MODE",
+        read=("DCV?",),
+    ),
 }
 
 
@@ -58,8 +73,14 @@ class SimSource(ScpiInstrument):
 
     idn = f"{MAKER},Simulated RF Source,SIM0001,1.0"
 
-    def __init__(self, model: BenchModel, clock: Clock = time.monotonic, log: TextIO | None = None,
-                 faults: FaultInjector | None = None, dialect: str = "scpi") -> None:
+    def __init__(
+        self,
+        model: BenchModel,
+        clock: Clock = time.monotonic,
+        log: TextIO | None = None,
+        faults: FaultInjector | None = None,
+        dialect: str = "scpi",
+    ) -> None:
         h = SOURCE_HEADERS[dialect]
         super().__init__(error_header=h.error)
         self.model = model
@@ -82,8 +103,9 @@ class SimSource(ScpiInstrument):
         self._write_log("*RST")
 
     def _set_freq(self, args: list[str]) -> None:
-        value = parse_number(one_arg(args), ("HZ", "KHZ", "MHZ", "MAHZ", "GHZ"),
-                             minimum=self._limits.min_hz, maximum=self._limits.max_hz)
+        value = parse_number(
+            one_arg(args), ("HZ", "KHZ", "MHZ", "MAHZ", "GHZ"), minimum=self._limits.min_hz, maximum=self._limits.max_hz
+        )
         self.model.set_source(self.clock(), frequency_hz=value)
         self._write_log("frequency")
 
@@ -116,10 +138,19 @@ class SimSource(ScpiInstrument):
             return
         m = self.model
         dut = m.dut_dbm()
-        self.log.write(json.dumps({
-            "t": self.clock(), "event": what, "frequency_hz": m.frequency_hz, "level_dbm": m.level_dbm,
-            "output": m.output_on, "dut_dbm": None if dut == -math.inf else round(dut, 6),
-        }) + "\n")
+        self.log.write(
+            json.dumps(
+                {
+                    "t": self.clock(),
+                    "event": what,
+                    "frequency_hz": m.frequency_hz,
+                    "level_dbm": m.level_dbm,
+                    "output": m.output_on,
+                    "dut_dbm": None if dut == -math.inf else round(dut, 6),
+                }
+            )
+            + "\n"
+        )
         self.log.flush()
 
 
@@ -128,8 +159,14 @@ class SimMeter(ScpiInstrument):
 
     idn = f"{MAKER},Simulated DC Meter,SIM0002,1.0"
 
-    def __init__(self, model: BenchModel, clock: Clock = time.monotonic, sleep: Callable[[float], None] = time.sleep,
-                 faults: FaultInjector | None = None, dialect: str = "scpi") -> None:
+    def __init__(
+        self,
+        model: BenchModel,
+        clock: Clock = time.monotonic,
+        sleep: Callable[[float], None] = time.sleep,
+        faults: FaultInjector | None = None,
+        dialect: str = "scpi",
+    ) -> None:
         h = METER_HEADERS[dialect]
         super().__init__(error_header=h.error)
         self.model = model
@@ -163,8 +200,7 @@ class SimMeter(ScpiInstrument):
         self.nplc = parse_number(one_arg(args), minimum=0.001, maximum=100.0)
 
     def _set_range(self, args: list[str]) -> None:
-        wanted = parse_number(one_arg(args), ("V", "MV"), minimum=0.0,
-                              maximum=max(self.model.config.meter.ranges_v))
+        wanted = parse_number(one_arg(args), ("V", "MV"), minimum=0.0, maximum=max(self.model.config.meter.ranges_v))
         self.range_v = min(r for r in self.model.config.meter.ranges_v if r >= wanted)
 
     def read_volts(self) -> float | None:
@@ -195,8 +231,13 @@ class SimAdc:
 
     idn = f"{MAKER} simulated ADC board, 24 bit, SIM0003, v1.2"
 
-    def __init__(self, model: BenchModel, clock: Clock = time.monotonic, sleep: Callable[[float], None] = time.sleep,
-                 faults: FaultInjector | None = None) -> None:
+    def __init__(
+        self,
+        model: BenchModel,
+        clock: Clock = time.monotonic,
+        sleep: Callable[[float], None] = time.sleep,
+        faults: FaultInjector | None = None,
+    ) -> None:
         self.model = model
         self.clock = clock
         self.sleep = sleep

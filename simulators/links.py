@@ -18,7 +18,7 @@ from typing import Protocol
 
 from nightbench.simulators.faults import Fault, FaultInjector
 
-UNTERMINATED_S = 1.0   # a partial message older than this is dropped (-420 if it was a query)
+UNTERMINATED_S = 1.0  # a partial message older than this is dropped (-420 if it was a query)
 
 
 class Stream(Protocol):
@@ -110,8 +110,15 @@ class _Gone(Exception):
 class _Client:
     """One client's byte stream: cut into messages, faults applied, replies sent."""
 
-    def __init__(self, stream: Stream, instrument: Instrument, name: str, faults: FaultInjector,
-                 lock: threading.Lock, can_drop: bool) -> None:
+    def __init__(
+        self,
+        stream: Stream,
+        instrument: Instrument,
+        name: str,
+        faults: FaultInjector,
+        lock: threading.Lock,
+        can_drop: bool,
+    ) -> None:
         self.stream, self.instrument, self.name = stream, instrument, name
         self.faults, self.lock, self.can_drop = faults, lock, can_drop
         self.buf = b""
@@ -182,8 +189,16 @@ class _Client:
             raise _Gone
 
 
-def serve_stream(stream: Stream, instrument: Instrument, name: str, faults: FaultInjector,
-                 lock: threading.Lock, stop: threading.Event, *, can_drop: bool = True) -> None:
+def serve_stream(
+    stream: Stream,
+    instrument: Instrument,
+    name: str,
+    faults: FaultInjector,
+    lock: threading.Lock,
+    stop: threading.Event,
+    *,
+    can_drop: bool = True,
+) -> None:
     """Serve one client on `stream` until it goes away, a drop fault closes it, or `stop` is set."""
     client = _Client(stream, instrument, name, faults, lock, can_drop)
     try:

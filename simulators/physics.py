@@ -14,8 +14,8 @@ import threading
 from dataclasses import dataclass, field, fields
 
 GHZ = 1e9
-BOLTZMANN = 1.380649e-23      # J/K, exact in the 2019 SI
-T0_K = 290.0                  # IEEE standard reference temperature for noise
+BOLTZMANN = 1.380649e-23  # J/K, exact in the 2019 SI
+T0_K = 290.0  # IEEE standard reference temperature for noise
 REF_OHM = 50.0
 
 
@@ -43,9 +43,9 @@ class SourceConfig:
     max_hz: float = 6e9
     min_dbm: float = -130.0
     max_dbm: float = 20.0
-    level_offset_db: float = 0.0        # level accuracy: actual minus set, at 0 Hz
-    flatness_db_per_ghz: float = 0.0    # and its change with frequency
-    level_settle_s: float = 0.0002      # the output reaches a new level this long after a change
+    level_offset_db: float = 0.0  # level accuracy: actual minus set, at 0 Hz
+    flatness_db_per_ghz: float = 0.0  # and its change with frequency
+    level_settle_s: float = 0.0002  # the output reaches a new level this long after a change
 
 
 @dataclass
@@ -70,39 +70,45 @@ class DetectorConfig:
       into 50 ohm (0 dBm = 223.6 mV rms, common practice).
     """
 
-    law: str = "log"                      # log | square | linear
-    responsivity_v_per_mw: float = 0.5    # square law: output volts per milliwatt
-    gain_v_per_v: float = 4.0             # linear law: output volts per input volt rms
+    law: str = "log"  # log | square | linear
+    responsivity_v_per_mw: float = 0.5  # square law: output volts per milliwatt
+    gain_v_per_v: float = 4.0  # linear law: output volts per input volt rms
 
     slope_v_per_db: float = 0.0200
-    slope_change_per_ghz: float = -0.03   # relative slope change per GHz
+    slope_change_per_ghz: float = -0.03  # relative slope change per GHz
     intercept_dbm: float = -92.0
     intercept_db_per_ghz: float = 2.0
-    noise_bandwidth_hz: float = 10e6      # input-referred noise: kT * B * F adds to the signal
+    noise_bandwidth_hz: float = 10e6  # input-referred noise: kT * B * F adds to the signal
     noise_figure_db: float = 22.0
-    saturation_dbm: float = 4.0           # soft compression toward this input level
-    ripple_db: float = 0.15               # log-conformance ripple of successive-detection stages,
-    ripple_period_db: float = 10.0        # with a period equal to the stage gain
+    saturation_dbm: float = 4.0  # soft compression toward this input level
+    ripple_db: float = 0.15  # log-conformance ripple of successive-detection stages,
+    ripple_period_db: float = 10.0  # with a period equal to the stage gain
     tau_rise_s: float = 0.002
     tau_fall_s: float = 0.006
-    tail_share: float = 0.0               # a slow part of every step (e.g. 0.01: 1 %, a thermal tail),
-    tau_tail_s: float = 0.2               # with its own time constant, the same both ways
-    output_noise_v: float = 0.0001        # rms at a 20 ms integration window, strong signal
-    floor_noise_v: float = 0.0004         # extra rms (20 ms window) as the input nears the floor
-    slope_tc_per_c: float = -2e-4         # relative slope change per degree from 25 C
-    intercept_tc_db_per_c: float = 0.01   # intercept shift per degree from 25 C
+    tail_share: float = 0.0  # a slow part of every step (e.g. 0.01: 1 %, a thermal tail),
+    tau_tail_s: float = 0.2  # with its own time constant, the same both ways
+    output_noise_v: float = 0.0001  # rms at a 20 ms integration window, strong signal
+    floor_noise_v: float = 0.0004  # extra rms (20 ms window) as the input nears the floor
+    slope_tc_per_c: float = -2e-4  # relative slope change per degree from 25 C
+    intercept_tc_db_per_c: float = 0.01  # intercept shift per degree from 25 C
 
     @property
     def floor_dbm(self) -> float:
         return thermal_noise_dbm_per_hz() + 10 * math.log10(self.noise_bandwidth_hz) + self.noise_figure_db
 
     def slope(self, frequency_hz: float, temperature_c: float = 25.0) -> float:
-        return (self.slope_v_per_db * (1.0 + self.slope_change_per_ghz * frequency_hz / GHZ)
-                * (1.0 + self.slope_tc_per_c * (temperature_c - 25.0)))
+        return (
+            self.slope_v_per_db
+            * (1.0 + self.slope_change_per_ghz * frequency_hz / GHZ)
+            * (1.0 + self.slope_tc_per_c * (temperature_c - 25.0))
+        )
 
     def intercept(self, frequency_hz: float, temperature_c: float = 25.0) -> float:
-        return (self.intercept_dbm + self.intercept_db_per_ghz * frequency_hz / GHZ
-                + self.intercept_tc_db_per_c * (temperature_c - 25.0))
+        return (
+            self.intercept_dbm
+            + self.intercept_db_per_ghz * frequency_hz / GHZ
+            + self.intercept_tc_db_per_c * (temperature_c - 25.0)
+        )
 
     def noise_share(self, dut_dbm: float) -> float:
         """N / (S + N) at the input: 0 for a strong signal, 1 with no signal."""
@@ -127,7 +133,8 @@ class DetectorConfig:
         if self.law != "log":
             raise ValueError(f"unknown detector law {self.law!r} (log, square or linear)")
         return self.slope(frequency_hz, temperature_c) * (
-            self.effective_dbm(dut_dbm) - self.intercept(frequency_hz, temperature_c))
+            self.effective_dbm(dut_dbm) - self.intercept(frequency_hz, temperature_c)
+        )
 
     def noise_v(self, dut_dbm: float, window_s: float) -> float:
         """Output noise rms seen by a meter integrating over `window_s` (white noise: 1/sqrt(T))."""
@@ -139,11 +146,11 @@ class DetectorConfig:
 class MeterConfig:
     line_hz: float = 50.0
     default_nplc: float = 0.1
-    noise_v: float = 2e-6                 # the meter's own rms noise at 1 NPLC
+    noise_v: float = 2e-6  # the meter's own rms noise at 1 NPLC
     ranges_v: tuple[float, ...] = (0.1, 1.0, 10.0, 100.0)
     default_range_v: float = 10.0
-    overrange: float = 1.2                # readings beyond range * overrange are overloads
-    resolution_ppm: float = 1.0           # of range
+    overrange: float = 1.2  # readings beyond range * overrange are overloads
+    resolution_ppm: float = 1.0  # of range
 
 
 @dataclass
@@ -153,11 +160,11 @@ class AdcConfig:
     full_scale_v: float = 5.0
     bits: int = 24
     conversion_s: float = 0.005
-    offset_counts: int = 37               # a small zero offset the plan's offset key removes
+    offset_counts: int = 37  # a small zero offset the plan's offset key removes
 
     @property
     def lsb_v(self) -> float:
-        return 2 * self.full_scale_v / 2 ** self.bits
+        return 2 * self.full_scale_v / 2**self.bits
 
 
 @dataclass
@@ -190,8 +197,9 @@ class BenchConfig:
                 if key not in kinds:
                     raise ValueError(f"unknown simulator config key '{section}.{key}'")
                 current = getattr(part, key)
-                setattr(part, key, tuple(float(v) for v in value) if isinstance(current, tuple)
-                        else type(current)(value))
+                setattr(
+                    part, key, tuple(float(v) for v in value) if isinstance(current, tuple) else type(current)(value)
+                )
         return config
 
 
@@ -235,7 +243,7 @@ class FirstOrderOutput:
                 continue
             a, b = max(0.0, lo - seg.t0), max(0.0, hi - seg.t0)
             gap = seg.start_v - seg.target_v
-            flat = max(0.0, min(hi, seg.t0) - lo)            # before the first segment's start
+            flat = max(0.0, min(hi, seg.t0) - lo)  # before the first segment's start
             total += seg.start_v * flat
             total += seg.target_v * (b - a) + gap * seg.tau * (math.exp(-a / seg.tau) - math.exp(-b / seg.tau))
         return total / (t_b - t_a)
@@ -262,7 +270,7 @@ class BenchModel:
         self.output_on = False
         share = self.config.detector.tail_share
         self.output = FirstOrderOutput(self.steady_output_v() * (1.0 - share), t)
-        self.tail = FirstOrderOutput(self.steady_output_v() * share, t)    # zero unless tail_share is set
+        self.tail = FirstOrderOutput(self.steady_output_v() * share, t)  # zero unless tail_share is set
         self._input_dbm = self.dut_dbm()
 
     # -- truth --------------------------------------------------------------------------
@@ -270,8 +278,9 @@ class BenchModel:
         s = self.config.source
         return s.level_offset_db + s.flatness_db_per_ghz * frequency_hz / GHZ
 
-    def dut_dbm(self, frequency_hz: float | None = None, level_dbm: float | None = None,
-                output_on: bool | None = None) -> float:
+    def dut_dbm(
+        self, frequency_hz: float | None = None, level_dbm: float | None = None, output_on: bool | None = None
+    ) -> float:
         """True DUT-plane level for a source state (the current one by default)."""
         f = self.frequency_hz if frequency_hz is None else frequency_hz
         level = self.level_dbm if level_dbm is None else level_dbm
@@ -286,8 +295,14 @@ class BenchModel:
         return self.config.detector.steady_v(dut_dbm, frequency_hz, self.config.temperature_c)
 
     # -- source side --------------------------------------------------------------------
-    def set_source(self, t: float, *, frequency_hz: float | None = None, level_dbm: float | None = None,
-                   output_on: bool | None = None) -> None:
+    def set_source(
+        self,
+        t: float,
+        *,
+        frequency_hz: float | None = None,
+        level_dbm: float | None = None,
+        output_on: bool | None = None,
+    ) -> None:
         with self.lock:
             if frequency_hz is not None:
                 self.frequency_hz = frequency_hz

@@ -86,18 +86,28 @@ Handler = Callable[[list[str]], "str | None"]
 
 # Unit suffix multipliers (IEEE 488.2 7.7.3); MHZ is mega-hertz by SCPI convention.
 SUFFIX_SCALE = {
-    "HZ": 1.0, "KHZ": 1e3, "MHZ": 1e6, "MAHZ": 1e6, "GHZ": 1e9,
+    "HZ": 1.0,
+    "KHZ": 1e3,
+    "MHZ": 1e6,
+    "MAHZ": 1e6,
+    "GHZ": 1e9,
     "DBM": 1.0,
-    "V": 1.0, "MV": 1e-3, "UV": 1e-6, "KV": 1e3,
-    "S": 1.0, "MS": 1e-3, "US": 1e-6,
+    "V": 1.0,
+    "MV": 1e-3,
+    "UV": 1e-6,
+    "KV": 1e3,
+    "S": 1.0,
+    "MS": 1e-3,
+    "US": 1e-6,
 }
 _MANTISSA = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:\s*[eE]\s*[+-]?\d+)?")
 _SUFFIX = re.compile(r"[A-Za-z]+")
-_BROKEN_EXPONENT = re.compile(r"[eE]\s*([+-]|$)")   # an exponent begun, its digits missing
+_BROKEN_EXPONENT = re.compile(r"[eE]\s*([+-]|$)")  # an exponent begun, its digits missing
 
 
-def parse_number(text: str, units: tuple[str, ...] = (), *, minimum: float | None = None,
-                 maximum: float | None = None) -> float:
+def parse_number(
+    text: str, units: tuple[str, ...] = (), *, minimum: float | None = None, maximum: float | None = None
+) -> float:
     """Decimal numeric program data (IEEE 488.2 7.7.2) with an optional suffix from `units`, or
     MIN/MAX where limits exist. Every malformed form is a ScpiCommandError with its standard code:
     -104 not numeric data at all, -121 a bad character in the number, -131 a suffix not allowed,
@@ -112,7 +122,7 @@ def parse_number(text: str, units: tuple[str, ...] = (), *, minimum: float | Non
         if word[:1] in ("+", "-", ".") or word[:1].isdigit():
             raise ScpiCommandError(-121, f"not a number: {text!r}")
         raise ScpiCommandError(-104, f"expected a number, got {text!r}")
-    rest = word[m.end():].lstrip()
+    rest = word[m.end() :].lstrip()
     if _BROKEN_EXPONENT.match(rest):
         raise ScpiCommandError(-121, f"exponent without digits in {text!r}")
     if rest and not _SUFFIX.fullmatch(rest):
@@ -123,8 +133,11 @@ def parse_number(text: str, units: tuple[str, ...] = (), *, minimum: float | Non
         if suffix not in units or suffix not in SUFFIX_SCALE:
             raise ScpiCommandError(-131, f"suffix {suffix!r} not allowed here")
         value *= SUFFIX_SCALE[suffix]
-    if not math.isfinite(value) or (minimum is not None and value < minimum) or (
-            maximum is not None and value > maximum):
+    if (
+        not math.isfinite(value)
+        or (minimum is not None and value < minimum)
+        or (maximum is not None and value > maximum)
+    ):
         low = "" if minimum is None else f"{minimum:g}"
         high = "" if maximum is None else f"{maximum:g}"
         raise ScpiCommandError(-222, f"{value:g} outside [{low}, {high}]")

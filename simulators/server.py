@@ -52,11 +52,20 @@ class TcpPort:
             except OSError:
                 return
             if self.bench.faults.away(self.name) == "drop":
-                conn.close()   # rebooting: accepts, then hangs up
+                conn.close()  # rebooting: accepts, then hangs up
                 continue
-            threading.Thread(target=serve_stream, daemon=True, args=(
-                SocketStream(conn), self.instrument, self.name, self.bench.faults,
-                self.bench.locks[self.name], self.bench.stop_event)).start()
+            threading.Thread(
+                target=serve_stream,
+                daemon=True,
+                args=(
+                    SocketStream(conn),
+                    self.instrument,
+                    self.name,
+                    self.bench.faults,
+                    self.bench.locks[self.name],
+                    self.bench.stop_event,
+                ),
+            ).start()
 
     def close(self) -> None:
         self.sock.close()
@@ -76,8 +85,15 @@ class PtyPort:
         return f"ASRL{self.path}::INSTR"
 
     def serve(self) -> None:
-        serve_stream(PtyStream(self.master), self.instrument, self.name, self.bench.faults,
-                     self.bench.locks[self.name], self.bench.stop_event, can_drop=False)
+        serve_stream(
+            PtyStream(self.master),
+            self.instrument,
+            self.name,
+            self.bench.faults,
+            self.bench.locks[self.name],
+            self.bench.stop_event,
+            can_drop=False,
+        )
 
     def close(self) -> None:
         for fd in (self.master, self.slave):
@@ -88,8 +104,16 @@ class PtyPort:
 class Bench:
     """The whole simulated bench: model, instruments, faults and the ports serving them."""
 
-    def __init__(self, config: BenchConfig | None = None, *, source_port: int = 0, meter_port: int = 0,
-                 log: TextIO | None = None, serial: bool = True, dialect: str = "scpi") -> None:
+    def __init__(
+        self,
+        config: BenchConfig | None = None,
+        *,
+        source_port: int = 0,
+        meter_port: int = 0,
+        log: TextIO | None = None,
+        serial: bool = True,
+        dialect: str = "scpi",
+    ) -> None:
         self.config = config or BenchConfig()
         self.model = BenchModel(self.config)
         self.faults = FaultInjector(self.config.faults, seed=self.config.seed)
@@ -98,16 +122,21 @@ class Bench:
         self.source = SimSource(self.model, log=log, faults=self.faults, dialect=dialect)
         self.meter = SimMeter(self.model, faults=self.faults, dialect=dialect)
         self.adc = SimAdc(self.model, faults=self.faults)
-        self.ports: list[Any] = [TcpPort(source_port, self.source, "source", self),
-                                 TcpPort(meter_port, self.meter, "meter", self)]
+        self.ports: list[Any] = [
+            TcpPort(source_port, self.source, "source", self),
+            TcpPort(meter_port, self.meter, "meter", self),
+        ]
         if serial:
             self.ports += [PtyPort(self.meter, "meter", self), PtyPort(self.adc, "adc", self)]
 
     def resources(self) -> dict[str, str | None]:
         serial = len(self.ports) > 2
-        return {"source": self.ports[0].resource, "meter": self.ports[1].resource,
-                "meter_serial": self.ports[2].resource if serial else None,
-                "adc_serial": self.ports[3].resource if serial else None}
+        return {
+            "source": self.ports[0].resource,
+            "meter": self.ports[1].resource,
+            "meter_serial": self.ports[2].resource if serial else None,
+            "adc_serial": self.ports[3].resource if serial else None,
+        }
 
     def start(self) -> None:
         self.threads = [threading.Thread(target=port.serve, daemon=True) for port in self.ports]
@@ -136,15 +165,22 @@ def load_config(path: str | None, fault_flags: Sequence[str] = (), seed: int | N
     return config
 
 
-def serve(*, source_port: int = 0, meter_port: int = 0, config_path: str | None = None,
-          log_path: str | None = None, faults: Sequence[str] = (), seed: int | None = None,
-          dialect: str = "scpi") -> int:
+def serve(
+    *,
+    source_port: int = 0,
+    meter_port: int = 0,
+    config_path: str | None = None,
+    log_path: str | None = None,
+    faults: Sequence[str] = (),
+    seed: int | None = None,
+    dialect: str = "scpi",
+) -> int:
     """Run the bench in this process until SIGTERM/SIGINT; print the resource line first."""
     config = load_config(config_path, faults, seed)
     with contextlib.ExitStack() as stack:
         log = stack.enter_context(open(log_path, "a", encoding="utf-8")) if log_path else None
         bench = Bench(config, source_port=source_port, meter_port=meter_port, log=log, dialect=dialect)
-        stack.callback(bench.stop)   # threads end before the log closes
+        stack.callback(bench.stop)  # threads end before the log closes
         stop = threading.Event()
         signal.signal(signal.SIGTERM, lambda *_: stop.set())
         signal.signal(signal.SIGINT, lambda *_: stop.set())
@@ -158,14 +194,24 @@ def serve(*, source_port: int = 0, meter_port: int = 0, config_path: str | None 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--source-port", type=int, default=0, help="TCP port of the source (0 = any free)")
     parser.add_argument("--meter-port", type=int, default=0, help="TCP port of the meter (0 = any free)")
-    parser.add_argument("--config", help="simulator config file (TOML: [source] [path] [detector] [meter] "
-                                         "[adc] sections, [[fault]] tables)")
+    parser.add_argument(
+        "--config",
+        help="simulator config file (TOML: [source] [path] [detector] [meter] [adc] sections, [[fault]] tables)",
+    )
     parser.add_argument("--log", help="append one JSON line per source state change to this file")
-    parser.add_argument("--fault", action="append", default=[],
-                        help="inject a fault: KIND@INSTRUMENT[:key=value,...], e.g. drop@meter:after=20")
+    parser.add_argument(
+        "--fault",
+        action="append",
+        default=[],
+        help="inject a fault: KIND@INSTRUMENT[:key=value,...], e.g. drop@meter:after=20",
+    )
     parser.add_argument("--seed", type=int, help="seed for noise and faults (default: the config's, 1)")
-    parser.add_argument("--dialect", choices=DIALECTS, default="scpi",
-                        help="command set: scpi (SCPI-1999) or alt (a non-standard set invented for tests)")
+    parser.add_argument(
+        "--dialect",
+        choices=DIALECTS,
+        default="scpi",
+        help="command set: scpi (SCPI-1999) or alt (a non-standard set invented for tests)",
+    )
 
 
 def main(argv: list[str] | None = None, prog: str = "nightbench.simulators.server") -> int:
@@ -173,8 +219,15 @@ def main(argv: list[str] | None = None, prog: str = "nightbench.simulators.serve
     add_arguments(parser)
     args = parser.parse_args(argv)
     try:
-        return serve(source_port=args.source_port, meter_port=args.meter_port, config_path=args.config,
-                     log_path=args.log, faults=args.fault, seed=args.seed, dialect=args.dialect)
+        return serve(
+            source_port=args.source_port,
+            meter_port=args.meter_port,
+            config_path=args.config,
+            log_path=args.log,
+            faults=args.fault,
+            seed=args.seed,
+            dialect=args.dialect,
+        )
     except (OSError, ValueError, tomllib.TOMLDecodeError) as exc:
         print(f"nightbench.simulators.server: cannot start the simulated bench: {exc}", file=sys.stderr)
         return 2

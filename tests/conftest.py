@@ -53,7 +53,7 @@ class RunningBench:
         self.proc = proc
         self.resources = proc.resources
         self.log = log
-        self.ceiling_dbm = 0.0   # plan_dict's limits.dut_max_dbm; a test with another sets this
+        self.ceiling_dbm = 0.0  # plan_dict's limits.dut_max_dbm; a test with another sets this
 
     def events(self) -> list[dict[str, Any]]:
         return source_log(self.log)
@@ -99,6 +99,7 @@ def write_plan(tmp_path: Path):
         path = tmp_path / name
         path.write_text(plan if isinstance(plan, str) else yaml.safe_dump(plan, sort_keys=False))
         return path
+
     return write
 
 
@@ -109,8 +110,9 @@ def db(tmp_path: Path) -> Path:
 
 def cli(*args: str, timeout: float = 120, **kwargs: Any) -> subprocess.CompletedProcess[str]:
     """Run the real command line in a child process."""
-    return subprocess.run([sys.executable, "-m", "nightbench", *args], capture_output=True, text=True,
-                          timeout=timeout, **kwargs)
+    return subprocess.run(
+        [sys.executable, "-m", "nightbench", *args], capture_output=True, text=True, timeout=timeout, **kwargs
+    )
 
 
 @pytest.fixture
@@ -141,10 +143,17 @@ def session(resource: str, timeout_s: float = 2.0, name: str = "instrument"):
     return ScpiSession(open_transport(resource, timeout_s=timeout_s), name)
 
 
-def store_run(db: Path, law: Callable[[float, float], float], *, dut_id: str = "T-1",
-              frequencies: list[float] | None = None, levels: list[float] | None = None,
-              analysis: dict[str, Any] | None = None, stdev_v: float | None = 1e-4,
-              status: Callable[[float, float], str] | None = None) -> int:
+def store_run(
+    db: Path,
+    law: Callable[[float, float], float],
+    *,
+    dut_id: str = "T-1",
+    frequencies: list[float] | None = None,
+    levels: list[float] | None = None,
+    analysis: dict[str, Any] | None = None,
+    stdev_v: float | None = 1e-4,
+    status: Callable[[float, float], str] | None = None,
+) -> int:
     """A completed run written through the real plan loader and Store, from a known law V(P, f).
 
     For checks whose expected values follow from the law by arithmetic (differences between two
@@ -155,8 +164,10 @@ def store_run(db: Path, law: Callable[[float, float], float], *, dut_id: str = "
     from nightbench.runs import new_run
     from nightbench.store.db import PointResult, Store
 
-    sweep = {"frequency_hz": frequencies or [100e6],
-             "power_dbm": levels if levels is not None else {"start": -80, "stop": 0, "step": 2}}
+    sweep = {
+        "frequency_hz": frequencies or [100e6],
+        "power_dbm": levels if levels is not None else {"start": -80, "stop": 0, "step": 2},
+    }
     plan = plan_dict(OFFLINE, dut={"id": dut_id}, sweep=sweep, **({"analysis": analysis} if analysis else {}))
     loaded = parse_plan(yaml.safe_dump(plan, sort_keys=False), "synthetic.yaml")
     store = Store(db)
@@ -165,8 +176,16 @@ def store_run(db: Path, law: Callable[[float, float], float], *, dut_id: str = "
     for point in expand(loaded):
         kind = status(point.power_dbm, point.frequency_hz) if status else "ok"
         value = None if kind == "overload" else law(point.power_dbm, point.frequency_hz)
-        result = PointResult(value, stdev_v if value is not None else None, 4 if value is not None else 0,
-                             0.01, 3, kind == "ok", kind == "overload", [(0.01, value, "measure")])
+        result = PointResult(
+            value,
+            stdev_v if value is not None else None,
+            4 if value is not None else 0,
+            0.01,
+            3,
+            kind == "ok",
+            kind == "overload",
+            [(0.01, value, "measure")],
+        )
         store.add_point(run_id, point, result)
     store.finish_run(run_id, "completed")
     store.close()

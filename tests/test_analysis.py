@@ -52,7 +52,7 @@ def test_ideal_detector_slope_trade_check():
     rows = [{"power_dbm": a, "value_v": b, "settled": 1, "overload": 0} for a, b in zip(p, v)]
     g = analyse_group(1e9, rows, (-90, 0), 1.0)
     assert round(g.slope_mv_per_db, 2) == 18.18
-    assert g.intercept_dbm == pytest.approx(-100, abs=1e-9)   # where the line reaches 0 V
+    assert g.intercept_dbm == pytest.approx(-100, abs=1e-9)  # where the line reaches 0 V
     assert g.dynamic_range_db == pytest.approx(110.0)
     assert g.max_abs_error_db == pytest.approx(0, abs=1e-9)
 
@@ -73,7 +73,7 @@ def test_range_ends_are_interpolated_to_a_tenth_of_a_db():
     levels = np.array([-50, -40, -30, -20, -10, 0.0])
     errors = np.array([2.0, 0.5, 0.0, 0.0, 0.25, 1.25])
     low, high = range_within(levels, errors, (-30, -20), 1.0)
-    assert low == pytest.approx(-40 - 10 * 0.5 / 1.5, abs=0.05)   # |e| crosses 1.0 a third of the way
+    assert low == pytest.approx(-40 - 10 * 0.5 / 1.5, abs=0.05)  # |e| crosses 1.0 a third of the way
     assert high == pytest.approx(-10 + 10 * 0.75 / 1.0, abs=0.05)
     assert math.isclose(low, round(low, 1)) and math.isclose(high, round(high, 1))
 
@@ -82,8 +82,8 @@ def test_points_that_did_not_settle_or_overloaded_are_left_out_and_named():
     # An ideal 20 mV/dB law; the bad points carry garbage that would bend the fit if it were used.
     p = np.arange(-70.0, 1.0, 2.0)
     rows = [{"power_dbm": a, "value_v": 0.02 * (a + 90), "settled": 1, "overload": 0} for a in p]
-    rows[10].update(value_v=9.9, settled=0)                 # -50 dBm: timed out while settling
-    rows[-1].update(value_v=None, settled=0, overload=1)    # 0 dBm: meter over range
+    rows[10].update(value_v=9.9, settled=0)  # -50 dBm: timed out while settling
+    rows[-1].update(value_v=None, settled=0, overload=1)  # 0 dBm: meter over range
     g = analyse_group(1e8, rows, (-60, -20), 1.0)
     assert g.slope_mv_per_db == pytest.approx(20.0) and g.intercept_dbm == pytest.approx(-90.0)
     assert (g.points, g.unsettled_points, g.overload_points) == (36, 1, 1)
@@ -100,4 +100,4 @@ def test_conformance_error_is_the_voltage_residual_divided_by_the_slope():
     rows.append({"power_dbm": -10.0, "value_v": 0.02 * 80 + 0.010, "settled": 1, "overload": 0})
     g = analyse_group(1e8, rows, (-60, -20), 1.0)
     assert dict(g.errors_db)[-10.0] == pytest.approx(0.5)
-    assert g.max_abs_error_db == pytest.approx(0.0, abs=1e-9)   # only the fit range counts
+    assert g.max_abs_error_db == pytest.approx(0.0, abs=1e-9)  # only the fit range counts

@@ -64,12 +64,13 @@ def edit(old: str, new: str):
     def apply(text: str) -> str:
         assert old in text, old
         return text.replace(old, new, 1)
+
     return apply
 
 
 BOMB = "a: &a [x, x, x, x, x, x, x, x, x, x]\n" + "".join(
-    f"{c}: &{c} [*{p}, *{p}, *{p}, *{p}, *{p}, *{p}, *{p}, *{p}, *{p}, *{p}]\n"
-    for p, c in zip("abcdefgh", "bcdefghi"))
+    f"{c}: &{c} [*{p}, *{p}, *{p}, *{p}, *{p}, *{p}, *{p}, *{p}, *{p}, *{p}]\n" for p, c in zip("abcdefgh", "bcdefghi")
+)
 
 # (what a tired engineer or an attacker might hand over, a word the message must contain)
 CORPUS = [
@@ -105,10 +106,12 @@ CORPUS = [
     ("bare serial path", edit("resource: TCPIP", "resource: /dev/ttyUSB0 #"), "resource"),
     ("empty resource", lambda t: t.replace("resource: TCPIP::127.0.0.1", "resource: ''  #", 1), "empty"),
     ("unknown driver", edit("driver: scpi-dmm", "driver: volt-o-matic"), "unknown driver"),
-    ("adc without pattern", edit("driver: scpi-dmm", "driver: serial-adc\n    query: R\n    scale: 1.0e-6"),
-     "pattern"),
-    ("bad regex", edit("driver: scpi-dmm", "driver: serial-adc\n    query: R\n    scale: 1.0\n    pattern: '(['"),
-     "regular expression"),
+    ("adc without pattern", edit("driver: scpi-dmm", "driver: serial-adc\n    query: R\n    scale: 1.0e-6"), "pattern"),
+    (
+        "bad regex",
+        edit("driver: scpi-dmm", "driver: serial-adc\n    query: R\n    scale: 1.0\n    pattern: '(['"),
+        "regular expression",
+    ),
     ("two path forms", edit("loss_db: 6.28", "loss_db: 6.28\n  table: [[1.0e8, 6]]"), "path"),
     ("table with a clash", edit("loss_db: 6.28", "table: [[1.0e8, 6], [1.0e8, 7]]"), "path"),
     ("missing touchstone", edit("loss_db: 6.28", "touchstone: cal/nowhere.s2p"), "nowhere.s2p"),
@@ -161,16 +164,60 @@ def test_missing_and_directory_plans(tmp_path):
 
 
 # -- fuzz ------------------------------------------------------------------------------------
-KEYS = ["name", "description", "dut", "id", "notes", "instruments", "source", "meter", "driver", "resource",
-        "timeout_s", "nplc", "path", "loss_db", "table", "touchstone", "limits", "dut_max_dbm", "sweep",
-        "frequency_hz", "power_dbm", "start", "stop", "step", "points", "settle", "tolerance_v",
-        "measure", "samples", "analysis", "fit_dbm", "error_limit_db", "elements", "coupler", "commands"]
-scalars = (st.none() | st.booleans() | st.integers(-10**12, 10**12) | st.floats(allow_nan=True, allow_infinity=True)
-           | st.text(max_size=12) | st.sampled_from(["scpi-source", "scpi-dmm", "serial-adc", "70e6", "-1e9",
-                                                    "TCPIP::127.0.0.1::1::SOCKET", "serial:", ".nan"]))
-documents = st.recursive(scalars, lambda inner: st.lists(inner, max_size=4)
-                         | st.dictionaries(st.sampled_from(KEYS) | st.text(max_size=6), inner, max_size=5),
-                         max_leaves=40)
+KEYS = [
+    "name",
+    "description",
+    "dut",
+    "id",
+    "notes",
+    "instruments",
+    "source",
+    "meter",
+    "driver",
+    "resource",
+    "timeout_s",
+    "nplc",
+    "path",
+    "loss_db",
+    "table",
+    "touchstone",
+    "limits",
+    "dut_max_dbm",
+    "sweep",
+    "frequency_hz",
+    "power_dbm",
+    "start",
+    "stop",
+    "step",
+    "points",
+    "settle",
+    "tolerance_v",
+    "measure",
+    "samples",
+    "analysis",
+    "fit_dbm",
+    "error_limit_db",
+    "elements",
+    "coupler",
+    "commands",
+]
+scalars = (
+    st.none()
+    | st.booleans()
+    | st.integers(-(10**12), 10**12)
+    | st.floats(allow_nan=True, allow_infinity=True)
+    | st.text(max_size=12)
+    | st.sampled_from(
+        ["scpi-source", "scpi-dmm", "serial-adc", "70e6", "-1e9", "TCPIP::127.0.0.1::1::SOCKET", "serial:", ".nan"]
+    )
+)
+documents = st.recursive(
+    scalars,
+    lambda inner: (
+        st.lists(inner, max_size=4) | st.dictionaries(st.sampled_from(KEYS) | st.text(max_size=6), inner, max_size=5)
+    ),
+    max_leaves=40,
+)
 
 
 def mutated_plans():
@@ -212,9 +259,12 @@ def test_fuzzed_plans_never_escape_as_anything_but_input_errors(doc):
         assert str(exc).startswith("fuzz.yaml"), str(exc)
 
 
-@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow,
-                                                                  HealthCheck.function_scoped_fixture],
-          derandomize=True)
+@settings(
+    max_examples=60,
+    deadline=None,
+    suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture],
+    derandomize=True,
+)
 @given(mutated_plans())
 def test_fuzzed_plans_through_the_cli(tmp_path, doc):
     plan = tmp_path / "fuzz.yaml"
@@ -223,6 +273,6 @@ def test_fuzzed_plans_through_the_cli(tmp_path, doc):
     assert result.exit_code in (0, 2), repr(result.exception)
     if result.exit_code == 0:
         assert result.exception is None and "valid plan" in result.stdout
-    else:   # refused by the CLI itself, in one plain message naming the file
+    else:  # refused by the CLI itself, in one plain message naming the file
         assert isinstance(result.exception, SystemExit), repr(result.exception)
         assert result.stderr.startswith(f"nightbench: {plan}"), result.stderr

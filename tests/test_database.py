@@ -23,13 +23,56 @@ DOC = Path(__file__).resolve().parent.parent / "docs" / "database.md"
 FREQS = [100e6, 500e6, 900e6]
 
 # the documented column lists of the stable views (docs/database.md): a contract for integrators
-V_POINTS = ["run_id", "run_name", "dut_id", "run_state", "run_started_at", "run_finished_at", "source_idn",
-            "meter_idn", "idx", "frequency_hz", "temperature_c", "power_dbm", "source_dbm", "value_v", "stdev_v",
-            "samples", "settle_s", "settle_readings", "settled", "overload", "measured_at"]
-V_FITS = ["run_id", "run_name", "dut_id", "run_state", "run_started_at", "run_finished_at", "frequency_hz",
-          "temperature_c", "slope_mv_per_db", "slope_u_mv_per_db", "intercept_dbm", "intercept_u_db",
-          "fit_low_dbm", "fit_high_dbm", "error_limit_db", "range_low_dbm", "range_high_dbm", "dynamic_range_db",
-          "max_abs_error_db", "points", "unsettled_points", "overload_points", "analysed_at"]
+V_POINTS = [
+    "run_id",
+    "run_name",
+    "dut_id",
+    "run_state",
+    "run_started_at",
+    "run_finished_at",
+    "source_idn",
+    "meter_idn",
+    "idx",
+    "frequency_hz",
+    "temperature_c",
+    "power_dbm",
+    "source_dbm",
+    "value_v",
+    "stdev_v",
+    "samples",
+    "settle_s",
+    "settle_readings",
+    "settled",
+    "overload",
+    "measured_at",
+    "chamber_c",
+    "dut_c",
+]
+V_FITS = [
+    "run_id",
+    "run_name",
+    "dut_id",
+    "run_state",
+    "run_started_at",
+    "run_finished_at",
+    "frequency_hz",
+    "temperature_c",
+    "slope_mv_per_db",
+    "slope_u_mv_per_db",
+    "intercept_dbm",
+    "intercept_u_db",
+    "fit_low_dbm",
+    "fit_high_dbm",
+    "error_limit_db",
+    "range_low_dbm",
+    "range_high_dbm",
+    "dynamic_range_db",
+    "max_abs_error_db",
+    "points",
+    "unsettled_points",
+    "overload_points",
+    "analysed_at",
+]
 
 
 def _complete(db: Path, run_id: int) -> None:
@@ -41,13 +84,23 @@ def _complete(db: Path, run_id: int) -> None:
 
 def _batch(db: Path) -> None:
     """Three invented boards, one of them twice, with known slopes; fits stored as on completion."""
-    def bad_top(p: float, f: float) -> str:   # board -01 overloads at the top and misses one point
+
+    def bad_top(p: float, f: float) -> str:  # board -01 overloads at the top and misses one point
         return "overload" if p == 0 else "unsettled" if (p, f) == (-40, 500e6) else "ok"
 
-    for dut, slope, icpt in (("B7-proto-03", 0.0200, -92.0), ("B7-proto-01", 0.0198, -91.0),
-                             ("B7-proto-03", 0.0201, -91.5), ("B7-proto-02", 0.0203, -93.0)):
-        store_run(db, lambda p, f, s=slope, i=icpt: s * (max(p, -80.0) - i), dut_id=dut, frequencies=FREQS,
-                  status=bad_top if dut == "B7-proto-01" else None)
+    for dut, slope, icpt in (
+        ("B7-proto-03", 0.0200, -92.0),
+        ("B7-proto-01", 0.0198, -91.0),
+        ("B7-proto-03", 0.0201, -91.5),
+        ("B7-proto-02", 0.0203, -93.0),
+    ):
+        store_run(
+            db,
+            lambda p, f, s=slope, i=icpt: s * (max(p, -80.0) - i),
+            dut_id=dut,
+            frequencies=FREQS,
+            status=bad_top if dut == "B7-proto-01" else None,
+        )
     for run_id in range(1, 5):
         _complete(db, run_id)
 
@@ -67,8 +120,9 @@ def test_views_have_the_documented_columns_and_one_row_per_point_and_per_group(t
     assert conn.execute("SELECT COUNT(*) FROM v_points").fetchone()[0] == points == 4 * 3 * 41
     assert conn.execute("SELECT COUNT(*) FROM v_fits").fetchone()[0] == 4 * 3
     # a stored fit is the law it came from: run 3 is 20.1 mV/dB, 0 V at -91.5 dBm
-    slope, icpt = conn.execute("SELECT slope_mv_per_db, intercept_dbm FROM v_fits WHERE run_id = 3 "
-                               "AND frequency_hz = 500e6").fetchone()
+    slope, icpt = conn.execute(
+        "SELECT slope_mv_per_db, intercept_dbm FROM v_fits WHERE run_id = 3 AND frequency_hz = 500e6"
+    ).fetchone()
     assert slope == pytest.approx(20.1) and icpt == pytest.approx(-91.5)
 
 
@@ -96,17 +150,23 @@ def _version_1(db: Path) -> None:
     """A file as version 1 wrote it (before fits, run_counts, the views and the file snapshots)."""
     store_run(db, lambda p, f: 0.02 * (p + 90.0))
     conn = sqlite3.connect(db)
-    conn.executescript("DROP VIEW v_points; DROP VIEW v_fits; DROP TRIGGER points_counted; "
-                       "DROP TRIGGER points_uncounted; DROP TABLE run_counts; DROP TABLE fits; DROP TABLE run_files; "
-                       "DROP TABLE jobs; DROP TABLE service; UPDATE meta SET value = '1' WHERE key = 'schema_version';")
+    conn.executescript(
+        "DROP VIEW v_points; DROP VIEW v_fits; DROP TRIGGER points_counted; "
+        "DROP TRIGGER points_uncounted; DROP TABLE run_counts; DROP TABLE fits; DROP TABLE run_files; "
+        "DROP TABLE jobs; DROP TABLE service; DROP TABLE soaks; ALTER TABLE points DROP COLUMN temperature_c; "
+        "ALTER TABLE points DROP COLUMN chamber_c; ALTER TABLE points DROP COLUMN dut_c; "
+        "UPDATE meta SET value = '1' WHERE key = 'schema_version';"
+    )
     conn.close()
 
 
 def _fingerprint(db: Path) -> tuple[str, str]:
     """sha256 of the file and of its write-ahead log (an absent log reads as empty)."""
     wal = Path(f"{db}-wal")
-    return (hashlib.sha256(db.read_bytes()).hexdigest(),
-            hashlib.sha256(wal.read_bytes() if wal.exists() else b"").hexdigest())
+    return (
+        hashlib.sha256(db.read_bytes()).hexdigest(),
+        hashlib.sha256(wal.read_bytes() if wal.exists() else b"").hexdigest(),
+    )
 
 
 def test_a_version_1_file_is_migrated_in_place(tmp_path):
@@ -116,6 +176,8 @@ def test_a_version_1_file_is_migrated_in_place(tmp_path):
     assert store.conn.execute("SELECT value FROM meta").fetchone()[0] == str(SCHEMA_VERSION)
     assert store.runs()[0]["points_done"] == 41
     assert store.conn.execute("SELECT COUNT(*) FROM v_points").fetchone()[0] == 41
+    # version 4 added columns to a table the file already had: they are there, NULL for old points
+    assert store.conn.execute("SELECT COUNT(*) FROM v_points WHERE temperature_c IS NULL").fetchone()[0] == 41
 
 
 def test_a_read_only_open_reads_an_old_file_as_it_is_and_writes_nothing(tmp_path):
@@ -194,7 +256,7 @@ def test_a_locked_database_is_an_error_naming_the_file_never_an_empty_result(tmp
     assert conn.execute("PRAGMA journal_mode = DELETE").fetchone()[0] == "delete"
     conn.close()
     store = Store.open_readonly(db, busy_timeout_s=0.05) if readonly else Store(db, busy_timeout_s=0.05)
-    if not readonly:   # opening for writing made it WAL again
+    if not readonly:  # opening for writing made it WAL again
         assert store.conn.execute("PRAGMA journal_mode = DELETE").fetchone()[0] == "delete"
     assert store.run_files(1) == {"cal/cable.s2p": "! a cable"}
     locker = _hold_exclusive_lock(db)
@@ -202,7 +264,7 @@ def test_a_locked_database_is_an_error_naming_the_file_never_an_empty_result(tmp
         with pytest.raises(NightbenchError) as info:
             getattr(store, read)(*([] if read == "runs" else [1]))
         assert str(db) in str(info.value) and "locked" in str(info.value)
-        assert info.value.exit_code == 1   # not bad input: the same command may work in a moment
+        assert info.value.exit_code == 1  # not bad input: the same command may work in a moment
     finally:
         locker.execute("ROLLBACK")
         locker.close()
@@ -246,8 +308,7 @@ def test_every_worked_query_in_the_docs_runs(tmp_path):
     assert len(queries) >= 4
     for query in queries:
         assert conn.execute(query).fetchall(), f"no rows from the documented query:\n{query}"
-    commands = [line for block in _doc_blocks("sh") for line in block.splitlines()
-                if line.startswith("sqlite-utils ")]
+    commands = [line for block in _doc_blocks("sh") for line in block.splitlines() if line.startswith("sqlite-utils ")]
     assert len(commands) >= 2
     tool = Path(sys.executable).with_name("sqlite-utils")
     for line in commands:

@@ -66,17 +66,19 @@ def assert_points_are_real(rows):
 
 
 METER_FAULTS = [
-    "drop@meter:after=12",                    # the link drops, the meter comes back
+    "drop@meter:after=12",  # the link drops, the meter comes back
     "silence@meter:after=12,duration_s=0.8",  # stops answering for a while
-    "delay@meter:after=12,delay_s=0.9",       # one reply later than the timeout: stale-reply trap
-    "garbage@meter:after=12",                 # junk instead of a reading
-    "spurious_error@meter:after=12",          # an error-queue entry out of nowhere
+    "delay@meter:after=12,delay_s=0.9",  # one reply later than the timeout: stale-reply trap
+    "garbage@meter:after=12",  # junk instead of a reading
+    "spurious_error@meter:after=12",  # an error-queue entry out of nowhere
 ]
 
 
 # A serial line cannot drop a connection (the pty stays), so drop runs on TCP only.
-@pytest.mark.parametrize("fault, meter_key", [(f, "meter") for f in METER_FAULTS]
-                         + [(f, "meter_serial") for f in METER_FAULTS if not f.startswith("drop")])
+@pytest.mark.parametrize(
+    "fault, meter_key",
+    [(f, "meter") for f in METER_FAULTS] + [(f, "meter_serial") for f in METER_FAULTS if not f.startswith("drop")],
+)
 def test_meter_faults_recover_and_store_only_real_points(tmp_path, fault, meter_key):
     with sim_with(tmp_path, fault) as sim:
         resources = dict(sim.resources, meter=sim.resources[meter_key])
@@ -88,13 +90,16 @@ def test_meter_faults_recover_and_store_only_real_points(tmp_path, fault, meter_
     assert last_output(tmp_path) is False
 
 
-@pytest.mark.parametrize("fault", [
-    "drop@source:after=6",
-    "silence@source:after=6,duration_s=0.8",
-    "garbage@source:after=6",
-    "spurious_error@source:after=6",
-    "refuse_level@source:level_dbm=-30",      # refused once, accepted on the retry
-])
+@pytest.mark.parametrize(
+    "fault",
+    [
+        "drop@source:after=6",
+        "silence@source:after=6,duration_s=0.8",
+        "garbage@source:after=6",
+        "spurious_error@source:after=6",
+        "refuse_level@source:level_dbm=-30",  # refused once, accepted on the retry
+    ],
+)
 def test_source_faults_recover(tmp_path, fault):
     with sim_with(tmp_path, fault) as sim:
         state, error, rows, events = run_plan(tmp_path, sim.resources)
@@ -105,11 +110,14 @@ def test_source_faults_recover(tmp_path, fault):
     assert last_output(tmp_path) is False
 
 
-@pytest.mark.parametrize("fault, words", [
-    ("drop@meter:after=12,duration_s=-1", "meter"),
-    ("silence@meter:after=12", "no reply"),
-    ("refuse_level@source:level_dbm=-30,count=0", "-222"),
-])
+@pytest.mark.parametrize(
+    "fault, words",
+    [
+        ("drop@meter:after=12,duration_s=-1", "meter"),
+        ("silence@meter:after=12", "no reply"),
+        ("refuse_level@source:level_dbm=-30,count=0", "-222"),
+    ],
+)
 def test_permanent_faults_fail_clearly_with_rf_off(tmp_path, fault, words):
     with sim_with(tmp_path, fault) as sim:
         state, error, rows, _ = run_plan(tmp_path, sim.resources)
@@ -133,9 +141,18 @@ def test_meter_overload_is_stored_flagged_not_as_a_value(tmp_path):
 def test_serial_adc_board_plan_completes(tmp_path):
     adc = TRUTH.config.adc
     with sim_with(tmp_path) as sim:
-        meter = {"driver": "serial-adc", "resource": sim.resources["adc_serial"], "identify": "V",
-                 "setup": ["A 2"], "query": "R", "pattern": r"R=([+-]\d+)", "overload": "OVER",
-                 "scale": adc.lsb_v, "offset": -adc.offset_counts * adc.lsb_v, "baud_rate": 115200}
+        meter = {
+            "driver": "serial-adc",
+            "resource": sim.resources["adc_serial"],
+            "identify": "V",
+            "setup": ["A 2"],
+            "query": "R",
+            "pattern": r"R=([+-]\d+)",
+            "overload": "OVER",
+            "scale": adc.lsb_v,
+            "offset": -adc.offset_counts * adc.lsb_v,
+            "baud_rate": 115200,
+        }
         instruments = {"source": {"driver": "scpi-source", "resource": sim.resources["source"]}, "meter": meter}
         state, error, rows, _ = run_plan(tmp_path, sim.resources, instruments=instruments)
     assert state == "completed", error
@@ -145,9 +162,18 @@ def test_serial_adc_board_plan_completes(tmp_path):
 
 def adc_meter(resource: str, **keys) -> dict:
     adc = TRUTH.config.adc
-    return {"driver": "serial-adc", "resource": resource, "setup": ["A 2"], "query": "R",
-            "pattern": r"R=([+-]\d+)", "overload": "OVER", "scale": adc.lsb_v,
-            "offset": -adc.offset_counts * adc.lsb_v, "baud_rate": 115200, **keys}
+    return {
+        "driver": "serial-adc",
+        "resource": resource,
+        "setup": ["A 2"],
+        "query": "R",
+        "pattern": r"R=([+-]\d+)",
+        "overload": "OVER",
+        "scale": adc.lsb_v,
+        "offset": -adc.offset_counts * adc.lsb_v,
+        "baud_rate": 115200,
+        **keys,
+    }
 
 
 # A pty cannot hang up, so `drop` makes the board go quiet for a while (see simulators/links.py).
@@ -156,8 +182,10 @@ def test_serial_adc_without_identify_reconnects_after_a_fault(tmp_path, fault):
     """A board with no identity query is proven back by a reading it answers, not by comparing
     identities: its "identity" would be a reading, which never repeats."""
     with sim_with(tmp_path, fault) as sim:
-        instruments = {"source": {"driver": "scpi-source", "resource": sim.resources["source"]},
-                       "meter": adc_meter(sim.resources["adc_serial"])}
+        instruments = {
+            "source": {"driver": "scpi-source", "resource": sim.resources["source"]},
+            "meter": adc_meter(sim.resources["adc_serial"]),
+        }
         state, error, rows, events = run_plan(tmp_path, sim.resources, instruments=instruments)
     assert state == "completed", error
     assert [e["message"] for e in events if e["kind"] == "reconnect"] == ["reconnecting the meter"]
@@ -175,11 +203,24 @@ def test_plain_pyserial_transport_plan_completes(tmp_path):
 
 
 # The simulator's invented non-standard dialect (simulators/instruments.py, "alt").
-ALT_SOURCE = {"set_frequency": "TONE:PITC {frequency_hz:.0f}", "set_level": "TONE:LOUD {level_dbm:.2f}",
-              "output_on": "TONE:SOUN ON", "output_off": "TONE:SOUN OFF", "query_frequency": "TONE:PITC?",
-              "query_level": "TONE:LOUD?", "query_output": "TONE:SOUN?", "error_query": "ERR?"}
-ALT_METER = {"configure": "CONF:DCV", "set_nplc": "DCV:INT {nplc:g}", "set_range": "DCV:RANG {range_v:g}",
-             "set_trigger": "TRIG:MODE IMM", "read": "DCV?", "error_query": "ERR?"}
+ALT_SOURCE = {
+    "set_frequency": "TONE:PITC {frequency_hz:.0f}",
+    "set_level": "TONE:LOUD {level_dbm:.2f}",
+    "output_on": "TONE:SOUN ON",
+    "output_off": "TONE:SOUN OFF",
+    "query_frequency": "TONE:PITC?",
+    "query_level": "TONE:LOUD?",
+    "query_output": "TONE:SOUN?",
+    "error_query": "ERR?",
+}
+ALT_METER = {
+    "configure": "CONF:DCV",
+    "set_nplc": "DCV:INT {nplc:g}",
+    "set_range": "DCV:RANG {range_v:g}",
+    "set_trigger": "TRIG:MODE IMM",
+    "read": "DCV?",
+    "error_query": "ERR?",
+}
 
 
 def test_dialect_override_completes_against_a_simulator_in_that_dialect(tmp_path):
@@ -197,13 +238,22 @@ def test_dialect_override_completes_against_a_simulator_in_that_dialect(tmp_path
     assert last_output(tmp_path) is False
 
 
-@pytest.mark.parametrize("sim_args, commands, kind, code, step, command", [
-    # a plan that overrides only the error query for the alternative dialect: the RF-off of
-    # configure() is refused (-113, undefined header) and the error queue says so
-    (["--dialect", "alt"], {"error_query": ALT_SOURCE["error_query"]}, ScpiError, -113,
-     "the source could not be configured", ":OUTPut:STATe OFF"),
-    (["--fault", "silence@source"], None, ConnectionLost, None, "the source did not identify itself", "*IDN?"),
-])
+@pytest.mark.parametrize(
+    "sim_args, commands, kind, code, step, command",
+    [
+        # a plan that overrides only the error query for the alternative dialect: the RF-off of
+        # configure() is refused (-113, undefined header) and the error queue says so
+        (
+            ["--dialect", "alt"],
+            {"error_query": ALT_SOURCE["error_query"]},
+            ScpiError,
+            -113,
+            "the source could not be configured",
+            ":OUTPut:STATe OFF",
+        ),
+        (["--fault", "silence@source"], None, ConnectionLost, None, "the source did not identify itself", "*IDN?"),
+    ],
+)
 def test_an_error_while_opening_keeps_its_type_and_fields(sim_args, commands, kind, code, step, command):
     with SimProcess(*sim_args) as sim:
         spec = SourceSpec(driver="scpi-source", resource=sim.resources["source"], timeout_s=0.5, commands=commands)
@@ -219,8 +269,9 @@ def test_adding_context_keeps_the_object_its_type_and_its_fields():
     err = ScpiError("source refused a setting", resource="TCPIP::h::1::SOCKET", scpi_code=-222)
     same = err.add_context("the source could not be configured", resource="other", command=":POW 5")
     assert same is err and type(same) is ScpiError
-    assert (err.resource, err.command, err.scpi_code) == ("TCPIP::h::1::SOCKET", ":POW 5", -222), \
+    assert (err.resource, err.command, err.scpi_code) == ("TCPIP::h::1::SOCKET", ":POW 5", -222), (
         "a field already set is kept; an unset one is filled"
+    )
     assert err.args == (err.message,) == ("the source could not be configured: source refused a setting",)
     plan_error = InputError("no such file", file="plan.yaml").add_context("path", resource="ignored", key="path")
     assert (plan_error.file, plan_error.key) == ("plan.yaml", "path") and not hasattr(plan_error, "resource")
@@ -239,21 +290,24 @@ def test_bad_command_templates_are_refused_at_check(write_plan, db):
     assert res.returncode == 2 and "does not format" in res.stderr
 
 
-@pytest.mark.parametrize("resource, ok", [
-    ("TCPIP::192.0.2.7::5025::SOCKET", True),
-    ("TCPIP0::192.0.2.7::inst0::INSTR", True),
-    ("GPIB0::22::INSTR", True),
-    ("USB0::0x1234::0x5678::SN001::INSTR", True),
-    ("ASRL/dev/ttyUSB0::INSTR", True),
-    ("serial:/dev/ttyUSB0", True),
-    ("serial:loop://", True),
-    ("ASRL::/dev/ttyUSB0::INSTR", False),     # FIELD-NOTES: rejected by pyvisa
-    ("TCPIP::192.0.2.7::SOCKET", False),      # no port
-    ("TCPIP::192.0.2.7::70000::SOCKET", False),
-    ("/dev/ttyUSB0", False),
-    ("serial:", False),
-    ("", False),
-])
+@pytest.mark.parametrize(
+    "resource, ok",
+    [
+        ("TCPIP::192.0.2.7::5025::SOCKET", True),
+        ("TCPIP0::192.0.2.7::inst0::INSTR", True),
+        ("GPIB0::22::INSTR", True),
+        ("USB0::0x1234::0x5678::SN001::INSTR", True),
+        ("ASRL/dev/ttyUSB0::INSTR", True),
+        ("serial:/dev/ttyUSB0", True),
+        ("serial:loop://", True),
+        ("ASRL::/dev/ttyUSB0::INSTR", False),  # FIELD-NOTES: rejected by pyvisa
+        ("TCPIP::192.0.2.7::SOCKET", False),  # no port
+        ("TCPIP::192.0.2.7::70000::SOCKET", False),
+        ("/dev/ttyUSB0", False),
+        ("serial:", False),
+        ("", False),
+    ],
+)
 def test_resource_strings_are_checked_without_opening(resource, ok):
     # VISA resource syntax per the VISA specification as pyvisa parses it (reference library).
     assert (check_resource(resource) is None) == ok
@@ -264,7 +318,10 @@ def test_program_and_response_messages():
     # ';', strings quoted), from memory.
     assert join_program(["FREQ 1", ":POW -3", "*OPC?"]) == ":FREQ 1;:POW -3;*OPC?"
     assert split_response('1;-222,"Data out of range; 99 > 20";+4.5E-1') == [
-        '1', '-222,"Data out of range; 99 > 20"', '+4.5E-1']
+        "1",
+        '-222,"Data out of range; 99 > 20"',
+        "+4.5E-1",
+    ]
 
 
 def test_unreachable_source_is_named_and_nothing_stored(tmp_path):
@@ -280,15 +337,16 @@ def test_points_and_readings_stay_consistent_after_faults(tmp_path):
         state, error, _, _ = run_plan(tmp_path, sim.resources)
     assert state == "completed", error
     conn = sqlite3.connect(tmp_path / "faults.db")
-    orphans = conn.execute("SELECT COUNT(*) FROM readings r LEFT JOIN points p ON p.run_id=r.run_id AND p.idx=r.idx "
-                           "WHERE p.idx IS NULL").fetchone()[0]
+    orphans = conn.execute(
+        "SELECT COUNT(*) FROM readings r LEFT JOIN points p ON p.run_id=r.run_id AND p.idx=r.idx WHERE p.idx IS NULL"
+    ).fetchone()[0]
     assert orphans == 0, "no raw readings of a point that was not stored"
 
 
 def test_a_plan_can_name_the_visa_library(tmp_path):
     with sim_with(tmp_path) as sim:
         plan = plan_dict(sim.resources)
-        plan["instruments"]["source"]["visa_library"] = "@py"     # explicit pyvisa-py
+        plan["instruments"]["source"]["visa_library"] = "@py"  # explicit pyvisa-py
         state, error, _, _ = run_plan(tmp_path, sim.resources, instruments=plan["instruments"])
         assert state == "completed", error
         plan["instruments"]["meter"]["visa_library"] = "@no-such-backend"

@@ -17,17 +17,32 @@ from nightbench.analysis.fit import analyse_group
 from nightbench.simulators.physics import BenchConfig, BenchModel
 from tests.conftest import cli, plan_dict
 
-REPORT_KEYS = {"frequency_hz", "temperature_c", "slope_mv_per_db", "slope_u_mv_per_db", "intercept_dbm",
-               "intercept_u_db", "fit_dbm", "error_limit_db", "range_low_dbm", "range_high_dbm",
-               "dynamic_range_db", "max_abs_error_db", "points", "unsettled_points"}
+REPORT_KEYS = {
+    "frequency_hz",
+    "temperature_c",
+    "slope_mv_per_db",
+    "slope_u_mv_per_db",
+    "intercept_dbm",
+    "intercept_u_db",
+    "fit_dbm",
+    "error_limit_db",
+    "range_low_dbm",
+    "range_high_dbm",
+    "dynamic_range_db",
+    "max_abs_error_db",
+    "points",
+    "unsettled_points",
+}
 
 
 def test_run_stores_points_that_match_the_simulated_law(bench, write_plan, db):
     truth = BenchModel(BenchConfig())
     freqs = [100e6, 900e6]
-    plan = plan_dict(bench.resources,
-                     path={"table": [[100e6, truth.config.path.loss(100e6)], [900e6, truth.config.path.loss(900e6)]]},
-                     sweep={"frequency_hz": freqs, "power_dbm": {"start": -70, "stop": -10, "step": 2}})
+    plan = plan_dict(
+        bench.resources,
+        path={"table": [[100e6, truth.config.path.loss(100e6)], [900e6, truth.config.path.loss(900e6)]]},
+        sweep={"frequency_hz": freqs, "power_dbm": {"start": -70, "stop": -10, "step": 2}},
+    )
     res = cli("run", str(write_plan(plan)), "--db", str(db))
     assert res.returncode == 0, res.stderr
     assert "completed" in res.stdout
@@ -52,8 +67,9 @@ def test_run_stores_points_that_match_the_simulated_law(bench, write_plan, db):
     for group in report["groups"]:
         assert set(group) == REPORT_KEYS
         f = group["frequency_hz"]
-        ideal = [{"power_dbm": p, "value_v": truth.truth_v(p, f), "settled": 1, "overload": 0}
-                 for p in range(-70, -9, 2)]
+        ideal = [
+            {"power_dbm": p, "value_v": truth.truth_v(p, f), "settled": 1, "overload": 0} for p in range(-70, -9, 2)
+        ]
         ref = analyse_group(f, ideal, (-60, -20), 1.0)
         assert group["slope_mv_per_db"] == pytest.approx(ref.slope_mv_per_db, rel=0.005)
         assert group["intercept_dbm"] == pytest.approx(ref.intercept_dbm, abs=0.3)
@@ -69,14 +85,24 @@ def test_rf_is_off_at_the_end_and_listing_and_export_follow_the_contract(bench, 
     assert max(e["dut_dbm"] for e in events if e["dut_dbm"] is not None and e["output"]) <= 0
 
     runs = json.loads(cli("runs", "--db", str(db), "--json").stdout)
-    assert runs == [{"id": 1, "name": "test-plan", "state": "completed", "points_done": 3, "points_total": 3,
-                     "started_at": runs[0]["started_at"], "finished_at": runs[0]["finished_at"]}]
+    assert runs == [
+        {
+            "id": 1,
+            "name": "test-plan",
+            "state": "completed",
+            "points_done": 3,
+            "points_total": 3,
+            "started_at": runs[0]["started_at"],
+            "finished_at": runs[0]["finished_at"],
+        }
+    ]
     assert runs[0]["started_at"] <= runs[0]["finished_at"]
 
     out = cli("export", "1", "--format", "csv", "--db", str(db)).stdout
     table = list(csv.DictReader(io.StringIO(out)))
-    assert {"frequency_hz", "power_dbm", "source_dbm", "value_v", "stdev_v", "samples", "settle_s",
-            "settled"} <= set(table[0])
+    assert {"frequency_hz", "power_dbm", "source_dbm", "value_v", "stdev_v", "samples", "settle_s", "settled"} <= set(
+        table[0]
+    )
     assert [float(r["power_dbm"]) for r in table] == [-40, -30, -20]
     assert {r["settled"] for r in table} == {"1"}
 

@@ -15,8 +15,12 @@ import pytest
 
 REPO = Path(__file__).resolve().parent.parent
 # folder -> the package name it is installed as (pyproject.toml [tool.setuptools.package-dir])
-ROOTS = {"runner": "nightbench", "drivers": "nightbench.drivers", "simulators": "nightbench.simulators",
-         "plans": "nightbench.plans"}
+ROOTS = {
+    "runner": "nightbench",
+    "drivers": "nightbench.drivers",
+    "simulators": "nightbench.simulators",
+    "plans": "nightbench.plans",
+}
 
 # layer -> the layers it may import (besides itself). `drivers.errors` is the root of the one
 # exception hierarchy and may be imported by every layer but the simulators.
@@ -56,7 +60,7 @@ def layer_of(module: str) -> str:
         return second
     if second in ("plan", "measure", "store", "analysis", "output", "service"):
         return second
-    return "app"   # cli, runs, demo, simproc, the public API: the shell around the layers
+    return "app"  # cli, runs, demo, simproc, the public API: the shell around the layers
 
 
 def imports_of(module: str, path: Path) -> list[tuple[int, str]]:
@@ -107,8 +111,11 @@ def test_the_layer_check_sees_a_forbidden_edge(tmp_path):
 
 
 def test_no_module_is_longer_than_the_limit():
-    long = [f"{p.relative_to(REPO)}: {n} lines" for _, p in module_files()
-            if (n := len(p.read_text(encoding="utf-8").splitlines())) > MAX_LINES]
+    long = [
+        f"{p.relative_to(REPO)}: {n} lines"
+        for _, p in module_files()
+        if (n := len(p.read_text(encoding="utf-8").splitlines())) > MAX_LINES
+    ]
     assert not long, long
 
 
@@ -120,7 +127,7 @@ def test_only_the_nightbench_name_is_installed_and_every_package_is():
     listed = set(config["packages"])
     assert all(name == "nightbench" or name.startswith("nightbench.") for name in listed), listed
     on_disk = {module for module, path in module_files() if path.name == "__init__.py"}
-    assert on_disk == listed, (on_disk ^ listed)
+    assert on_disk == listed, on_disk ^ listed
     assert config["package-dir"] == {"nightbench": "runner", **{v: k for k, v in ROOTS.items() if k != "runner"}}
 
 

@@ -51,6 +51,7 @@ def _line_of(text: str, fragment: str) -> int:
 
 # -- Touchstone parsing against scikit-rf -----------------------------------------------------
 
+
 def test_the_reference_files_cover_both_versions_all_formats_and_units():
     seen = [parse_touchstone(p.read_text(), str(p)) for p in TOUCHSTONE_FILES]
     assert {d.version for d in seen} == {"1.1", "2.0"}
@@ -92,20 +93,23 @@ def test_two_port_data_order_is_honoured():
 V2_HEAD = "[Version] 2.0\n# MHz S DB R 50\n[Number of Ports] 2\n[Two-Port Data Order] 21_12\n"
 
 
-@pytest.mark.parametrize("text, line, fragment", [
-    ("# MHz S DB R 50\n100 -30 0 -1 0 -1 0 -30 0\n200 -30 0 -1 O -1 0 -30 0\n", 3, "'O' is not a number"),
-    ("# MHz Y RI R 50\n100 0 0 1 0 1 0 0 0\n", 1, "S parameters"),
-    ("# MHz S DB Q 50\n100 -30 0 -1 0 -1 0 -30 0\n", 1, "unknown option 'q'"),
-    ("100 -30 0 -1 0 -1 0 -30 0\n# MHz S DB R 50\n", 1, "before the option line"),
-    ("# MHz S DB\n100 -30 0 -1 0 -1 0 -30 0\n90 -30 0 -1 0 -1 0 -30 0\n", 3, "increase"),
-    ("# MHz S DB\n100 -30 0 -1 0 -1 0 -30 0\n200 -30 0 -1 0\n", 3, "part-way"),
-    ("# MHz S MA\n100 0.1 0 0 0 0 0 0.1 0\n", 2, "|S21| is zero"),
-    (V2_HEAD + "[Number of Frequencies] 2\n[Network Data]\n100 -30 0 -1 0 -1 0 -30 0\n", 5, "says 2"),
-    (V2_HEAD.replace("Ports] 2", "Ports] 3") + "[Number of Frequencies] 1\n[Network Data]\n", 3, "two-port"),
-    (V2_HEAD + "[Network Data]\n100 -30 0 -1 0 -1 0 -30 0\n", None, "[Number Of Frequencies]"),
-    (V2_HEAD + "[Number of Frequencies] 1\n[Shoe Size] 9\n", 6, "unknown keyword"),
-    (V2_HEAD.replace("2.0", "3.7") + "[Number of Frequencies] 1\n", 1, "version '3.7'"),
-])
+@pytest.mark.parametrize(
+    "text, line, fragment",
+    [
+        ("# MHz S DB R 50\n100 -30 0 -1 0 -1 0 -30 0\n200 -30 0 -1 O -1 0 -30 0\n", 3, "'O' is not a number"),
+        ("# MHz Y RI R 50\n100 0 0 1 0 1 0 0 0\n", 1, "S parameters"),
+        ("# MHz S DB Q 50\n100 -30 0 -1 0 -1 0 -30 0\n", 1, "unknown option 'q'"),
+        ("100 -30 0 -1 0 -1 0 -30 0\n# MHz S DB R 50\n", 1, "before the option line"),
+        ("# MHz S DB\n100 -30 0 -1 0 -1 0 -30 0\n90 -30 0 -1 0 -1 0 -30 0\n", 3, "increase"),
+        ("# MHz S DB\n100 -30 0 -1 0 -1 0 -30 0\n200 -30 0 -1 0\n", 3, "part-way"),
+        ("# MHz S MA\n100 0.1 0 0 0 0 0 0.1 0\n", 2, "|S21| is zero"),
+        (V2_HEAD + "[Number of Frequencies] 2\n[Network Data]\n100 -30 0 -1 0 -1 0 -30 0\n", 5, "says 2"),
+        (V2_HEAD.replace("Ports] 2", "Ports] 3") + "[Number of Frequencies] 1\n[Network Data]\n", 3, "two-port"),
+        (V2_HEAD + "[Network Data]\n100 -30 0 -1 0 -1 0 -30 0\n", None, "[Number Of Frequencies]"),
+        (V2_HEAD + "[Number of Frequencies] 1\n[Shoe Size] 9\n", 6, "unknown keyword"),
+        (V2_HEAD.replace("2.0", "3.7") + "[Number of Frequencies] 1\n", 1, "version '3.7'"),
+    ],
+)
 def test_bad_touchstone_names_file_and_line(text, line, fragment):
     with pytest.raises(InputError) as info:
         parse_touchstone(text, "cal/bad.s2p").loss_db()
@@ -121,9 +125,12 @@ def test_a_file_named_for_another_port_count_is_refused():
 
 # -- tables: sorting, duplicates, interpolation, extrapolation ----------------------------
 
+
 def _plan_text(path: dict, freqs: list[float], **kw) -> str:
-    return yaml.safe_dump(plan_dict(OFFLINE, path=path, sweep={"frequency_hz": freqs, "power_dbm": [-40, -30, -20]},
-                                    **kw), sort_keys=False)
+    return yaml.safe_dump(
+        plan_dict(OFFLINE, path=path, sweep={"frequency_hz": freqs, "power_dbm": [-40, -30, -20]}, **kw),
+        sort_keys=False,
+    )
 
 
 def test_table_is_sorted_and_interpolated_linearly_in_db():
@@ -163,15 +170,18 @@ def test_frequency_beyond_the_table_is_refused_unless_extrapolation_is_asked_for
     np.testing.assert_allclose([linear.path.loss(x) for x in f], linear_ref(f), rtol=1e-12)
 
 
-@pytest.mark.parametrize("path, key, fragment", [
-    ({"loss_db": 6, "table": [[1e8, 6]]}, "path", "exactly one of"),
-    ({"loss_db": 6, "extrapolate": "linear"}, "path", "extrapolate applies"),
-    ({"table": [[1e8, 6]], "extrapolate": "sometimes"}, "path.extrapolate", "none"),
-    ({"elements": [{"loss_db": 3}, {"los_db": 2}]}, "path.elements.1.los_db", "unknown key"),
-    ({"elements": [{"coupler": {"coupling_db": 20, "arm": "side"}}]}, "path.elements.0.coupler.arm", "mainline"),
-    ({"coupler": {"coupling_db": 0, "arm": "coupled"}}, "path.coupler.coupling_db", "greater than 0"),
-    ({"elements": []}, "path.elements", "at least 1"),
-])
+@pytest.mark.parametrize(
+    "path, key, fragment",
+    [
+        ({"loss_db": 6, "table": [[1e8, 6]]}, "path", "exactly one of"),
+        ({"loss_db": 6, "extrapolate": "linear"}, "path", "extrapolate applies"),
+        ({"table": [[1e8, 6]], "extrapolate": "sometimes"}, "path.extrapolate", "none"),
+        ({"elements": [{"loss_db": 3}, {"los_db": 2}]}, "path.elements.1.los_db", "unknown key"),
+        ({"elements": [{"coupler": {"coupling_db": 20, "arm": "side"}}]}, "path.elements.0.coupler.arm", "mainline"),
+        ({"coupler": {"coupling_db": 0, "arm": "coupled"}}, "path.coupler.coupling_db", "greater than 0"),
+        ({"elements": []}, "path.elements", "at least 1"),
+    ],
+)
 def test_bad_path_keys_are_refused_with_their_key(path, key, fragment):
     with pytest.raises(InputError) as info:
         parse_plan(_plan_text(path, [100e6]), "p.yaml")
@@ -180,6 +190,7 @@ def test_bad_path_keys_are_refused_with_their_key(path, key, fragment):
 
 
 # -- couplers and chains ----------------------------------------------------------------------
+
 
 def test_coupler_mainline_loss_matches_the_published_formula():
     # Published formula (ideal lossless coupler): mainline loss = 10 log10(1 / (1 - 10^(-C/10))),
@@ -204,9 +215,12 @@ def test_chain_losses_add(write_plan, tmp_path):
     cal = tmp_path / "cal"
     cal.mkdir()
     (cal / "jumper.s2p").write_text((DATA / "ts11-cable-ri-hz.s2p").read_text())
-    elements = [{"name": "jumper", "touchstone": "cal/jumper.s2p"}, {"name": "pad", "loss_db": 10},
-                {"name": "tap", "coupler": {"coupling_db": 10, "arm": "coupled", "excess_loss_db": 0.3}},
-                {"name": "adapter", "table": [[1e7, 0.05], [3e9, 0.25]]}]
+    elements = [
+        {"name": "jumper", "touchstone": "cal/jumper.s2p"},
+        {"name": "pad", "loss_db": 10},
+        {"name": "tap", "coupler": {"coupling_db": 10, "arm": "coupled", "excess_loss_db": 0.3}},
+        {"name": "adapter", "table": [[1e7, 0.05], [3e9, 0.25]]},
+    ]
     freqs = [100e6, 777e6]
     loaded = load_plan(write_plan(_plan_text({"elements": elements}, freqs)))
     ref = _skrf(DATA / "ts11-cable-ri-hz.s2p")
@@ -216,7 +230,7 @@ def test_chain_losses_add(write_plan, tmp_path):
         expected = jumper + 10 + (10 + 0.3) + np.interp(f, [1e7, 3e9], [0.05, 0.25])
         assert loaded.path.loss(f) == pytest.approx(expected, abs=1e-9)
     for point in expand(loaded):
-        wanted = point.power_dbm + loaded.path.loss(point.frequency_hz)   # rounded down to 0.001 dB
+        wanted = point.power_dbm + loaded.path.loss(point.frequency_hz)  # rounded down to 0.001 dB
         assert wanted - 0.001 < point.source_dbm <= wanted + 1e-9
 
 
@@ -241,10 +255,14 @@ def test_bad_touchstone_in_a_plan_is_exit_2_naming_file_line_and_plan_key(write_
 
 # -- check --------------------------------------------------------------------------------------
 
+
 def test_check_shows_loss_and_source_range_per_frequency_and_refuses_beyond_the_source(write_plan, tmp_path):
     (tmp_path / "cable.s2p").write_text((DATA / "ts20-pad-db-mhz-lower.s2p").read_text())
-    plan = plan_dict(OFFLINE, path={"elements": [{"name": "pad", "touchstone": "cable.s2p"}, {"loss_db": 3}]},
-                     sweep={"frequency_hz": [100e6, 1e9], "power_dbm": [-60, -40, -20, -10]})
+    plan = plan_dict(
+        OFFLINE,
+        path={"elements": [{"name": "pad", "touchstone": "cable.s2p"}, {"loss_db": 3}]},
+        sweep={"frequency_hz": [100e6, 1e9], "power_dbm": [-60, -40, -20, -10]},
+    )
     res = cli("check", str(write_plan(plan)))
     assert res.returncode == 0, res.stderr
     ref = _skrf(DATA / "ts20-pad-db-mhz-lower.s2p")
@@ -262,16 +280,21 @@ def test_check_shows_loss_and_source_range_per_frequency_and_refuses_beyond_the_
 
 # -- snapshot -----------------------------------------------------------------------------------
 
+
 def test_snapshot_keeps_the_file_content_and_resume_uses_it(bench, write_plan, tmp_path, db):
     original = (DATA / "ts11-amp-db-mhz-noise.s2p").read_text()
     cal = tmp_path / "cal"
     cal.mkdir()
     (cal / "path.s2p").write_text(original)
-    plan = plan_dict(bench.resources, path={"touchstone": "cal/path.s2p"}, limits={"dut_max_dbm": -20},
-                     sweep={"frequency_hz": [100e6, 1e9], "power_dbm": [-50, -40, -30]})
+    plan = plan_dict(
+        bench.resources,
+        path={"touchstone": "cal/path.s2p"},
+        limits={"dut_max_dbm": -20},
+        sweep={"frequency_hz": [100e6, 1e9], "power_dbm": [-50, -40, -30]},
+    )
     loaded = load_plan(write_plan(plan))
     store = Store(db)
-    run_id = new_run(store, loaded)   # recorded (queued), not yet run
+    run_id = new_run(store, loaded)  # recorded (queued), not yet run
     assert store.run_files(run_id) == {"cal/path.s2p": original}
     expected = {p.index: p.source_dbm for p in expand(loaded)}
     store.close()
@@ -291,18 +314,24 @@ def test_snapshot_keeps_the_file_content_and_resume_uses_it(bench, write_plan, t
 
 # -- acceptance: the simulated bench, path given only as a Touchstone file ---------------------
 
+
 def test_run_with_touchstone_path_reproduces_the_simulators_dut_levels(bench, write_plan, tmp_path, db):
-    law = BenchConfig().path            # the simulator's path, whatever its law in frequency
+    law = BenchConfig().path  # the simulator's path, whatever its law in frequency
     grid = np.arange(1e6, 3e9 + 1, 1e6)
     lines = ["! generated by the test from the simulator's path law", "# MHz S MA R 50"]
     for f in grid:
         s21 = cmath.rect(10 ** (-law.loss(f) / 20), -2 * math.pi * f * 3e-9)
-        lines.append(f"{f / 1e6:g} 0.02 0 {abs(s21):.12f} {math.degrees(cmath.phase(s21)):.6f} "
-                     f"{abs(s21):.12f} {math.degrees(cmath.phase(s21)):.6f} 0.02 0")
+        lines.append(
+            f"{f / 1e6:g} 0.02 0 {abs(s21):.12f} {math.degrees(cmath.phase(s21)):.6f} "
+            f"{abs(s21):.12f} {math.degrees(cmath.phase(s21)):.6f} 0.02 0"
+        )
     (tmp_path / "bench-path.s2p").write_text("\n".join(lines) + "\n")
-    freqs = [100e6, 433.92e6, 915.5e6, 2.4537e9]     # off the file's grid on purpose
-    plan = plan_dict(bench.resources, path={"touchstone": "bench-path.s2p"},
-                     sweep={"frequency_hz": freqs, "power_dbm": {"start": -60, "stop": -10, "step": 10}})
+    freqs = [100e6, 433.92e6, 915.5e6, 2.4537e9]  # off the file's grid on purpose
+    plan = plan_dict(
+        bench.resources,
+        path={"touchstone": "bench-path.s2p"},
+        sweep={"frequency_hz": freqs, "power_dbm": {"start": -60, "stop": -10, "step": 10}},
+    )
     res = cli("run", str(write_plan(plan)), "--db", str(db))
     assert res.returncode == 0, res.stderr
 

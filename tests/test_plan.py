@@ -73,10 +73,19 @@ def test_type_b_accuracies_default_to_not_stated_and_accept_exponents():
 
 
 def test_endpoints_inclusive_and_outer_axis_first():
-    loaded = parse_plan(_yaml(plan_dict(OFFLINE, sweep={
-        "power_dbm": {"start": -10, "stop": -20, "step": -5},
-        "frequency_hz": {"start": 1e6, "stop": 3e6, "points": 3},
-    }, analysis={"fit_dbm": [-20, -10]})), "p.yaml")
+    loaded = parse_plan(
+        _yaml(
+            plan_dict(
+                OFFLINE,
+                sweep={
+                    "power_dbm": {"start": -10, "stop": -20, "step": -5},
+                    "frequency_hz": {"start": 1e6, "stop": 3e6, "points": 3},
+                },
+                analysis={"fit_dbm": [-20, -10]},
+            )
+        ),
+        "p.yaml",
+    )
     assert loaded.order == ("power_dbm", "frequency_hz")
     points = expand(loaded)
     assert [(p.power_dbm, p.frequency_hz) for p in points[:4]] == [(-10, 1e6), (-10, 2e6), (-10, 3e6), (-15, 1e6)]
@@ -107,12 +116,15 @@ def test_sweep_order_is_refused_like_any_unknown_key():
     assert "unknown key" in info.value.message
 
 
-@pytest.mark.parametrize("fit, words", [
-    ([0, 10], "lies wholly outside the sweep's levels (-70 to -10 dBm)"),          # above every level
-    ([-95, -75], "lies wholly outside the sweep's levels (-70 to -10 dBm)"),       # below every level
-    ([-42, -33], "holds 2 of the sweep's levels (-40, -35 dBm); a line fit with uncertainties needs at least 3"),
-    ([-10, 0], "holds 1 of the sweep's levels (-10 dBm)"),                         # touches the top level only
-])
+@pytest.mark.parametrize(
+    "fit, words",
+    [
+        ([0, 10], "lies wholly outside the sweep's levels (-70 to -10 dBm)"),  # above every level
+        ([-95, -75], "lies wholly outside the sweep's levels (-70 to -10 dBm)"),  # below every level
+        ([-42, -33], "holds 2 of the sweep's levels (-40, -35 dBm); a line fit with uncertainties needs at least 3"),
+        ([-10, 0], "holds 1 of the sweep's levels (-10 dBm)"),  # touches the top level only
+    ],
+)
 def test_a_fit_range_the_sweep_does_not_fill_is_refused(fit, words):
     # levels -70 .. -10 dBm in 5 dB steps (plan_dict); the report's line fit needs 3 levels in range
     text = _yaml(plan_dict(OFFLINE, analysis={"fit_dbm": fit, "error_limit_db": 1.0}))
@@ -128,15 +140,18 @@ def test_a_fit_range_with_three_levels_endpoints_included_is_accepted():
     assert loaded.plan.analysis.fit_dbm == (-20, -10)
 
 
-@pytest.mark.parametrize("edit, key", [
-    (lambda p: p["limits"].update(dut_max_dbm=-30), "sweep.power_dbm"),
-    (lambda p: p["sweep"].update(power_dbm={"start": -70, "stop": -10, "step": 7}), "sweep.power_dbm"),
-    (lambda p: p["settle"].update(timeout_s=-1), "settle.timeout_s"),
-    (lambda p: p["instruments"]["source"].update(resource="127.0.0.1:5025"), "instruments.source.resource"),
-    (lambda p: p["instruments"]["meter"].update(driver="volt-o-matic"), "instruments.meter.driver"),
-    (lambda p: p["analysis"].update(fit_dbm=[-10, -60]), "analysis.fit_dbm"),
-    (lambda p: p["analysis"].update(source_level_accuracy_db=-0.5), "analysis.source_level_accuracy_db"),
-])
+@pytest.mark.parametrize(
+    "edit, key",
+    [
+        (lambda p: p["limits"].update(dut_max_dbm=-30), "sweep.power_dbm"),
+        (lambda p: p["sweep"].update(power_dbm={"start": -70, "stop": -10, "step": 7}), "sweep.power_dbm"),
+        (lambda p: p["settle"].update(timeout_s=-1), "settle.timeout_s"),
+        (lambda p: p["instruments"]["source"].update(resource="127.0.0.1:5025"), "instruments.source.resource"),
+        (lambda p: p["instruments"]["meter"].update(driver="volt-o-matic"), "instruments.meter.driver"),
+        (lambda p: p["analysis"].update(fit_dbm=[-10, -60]), "analysis.fit_dbm"),
+        (lambda p: p["analysis"].update(source_level_accuracy_db=-0.5), "analysis.source_level_accuracy_db"),
+    ],
+)
 def test_bad_values_are_refused_with_their_key(edit, key):
     plan = plan_dict(OFFLINE)
     edit(plan)

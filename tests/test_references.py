@@ -7,7 +7,9 @@ import subprocess
 from pathlib import Path
 
 REPO = Path(__file__).resolve().parent.parent
-PATH = re.compile(r"(?<![\w./-])((?:runner|drivers|simulators|plans|tests|bench|docs)/[\w/.-]*\w\.(?:py|md|yaml|toml|csv|s2p))")
+PATH = re.compile(
+    r"(?<![\w./-])((?:runner|drivers|simulators|plans|tests|bench|docs)/[\w/.-]*\w\.(?:py|md|yaml|toml|csv|s2p))"
+)
 
 
 def tracked() -> list[Path]:
@@ -28,7 +30,10 @@ def test_every_path_named_in_code_and_docs_exists():
 
 def test_no_reference_to_a_design_file_outside_the_project():
     # the project's own design is docs/design.md; a bare DESIGN.md is a file users do not have
-    hits = [f"{f.relative_to(REPO)}:{n}" for f in tracked()
-            for n, line in enumerate(f.read_text(encoding="utf-8").splitlines(), 1)
-            if "DESIGN.md" in line]
+    hits = [
+        f"{f.relative_to(REPO)}:{n}"
+        for f in tracked()
+        for n, line in enumerate(f.read_text(encoding="utf-8").splitlines(), 1)
+        if "DESIGN.md" in line
+    ]
     assert not hits, hits

@@ -36,11 +36,17 @@ def measured(tmp_path_factory):
     tmp = tmp_path_factory.mktemp("report")
     truth = BenchModel(BenchConfig())
     with SimProcess() as sim:
-        plan = plan_dict(sim.resources,
-                         path={"table": [[f, truth.config.path.loss(f)] for f in FREQS]},
-                         sweep={"frequency_hz": FREQS, "power_dbm": {"start": -90, "stop": 0, "step": 2}},
-                         analysis={"fit_dbm": FIT, "error_limit_db": 1.0, "source_level_accuracy_db": 0.5,
-                                   "meter_gain_accuracy_pct": 0.01})
+        plan = plan_dict(
+            sim.resources,
+            path={"table": [[f, truth.config.path.loss(f)] for f in FREQS]},
+            sweep={"frequency_hz": FREQS, "power_dbm": {"start": -90, "stop": 0, "step": 2}},
+            analysis={
+                "fit_dbm": FIT,
+                "error_limit_db": 1.0,
+                "source_level_accuracy_db": 0.5,
+                "meter_gain_accuracy_pct": 0.01,
+            },
+        )
         plan_file = tmp / "plan.yaml"
         plan_file.write_text(yaml.safe_dump(plan, sort_keys=False))
         db = tmp / "run.db"
@@ -62,8 +68,11 @@ def _report(db: Path, *runs: str) -> dict:
 def _stored_levels(db: Path, frequency_hz: float) -> tuple[np.ndarray, np.ndarray]:
     """(DUT level the plan asked for, level the source was set to) of every stored point, read with sqlite3."""
     conn = sqlite3.connect(db)
-    rows = conn.execute("SELECT power_dbm, source_dbm FROM v_points WHERE run_id = 1 AND frequency_hz = ? "
-                        "AND settled = 1 AND overload = 0 ORDER BY power_dbm", (frequency_hz,)).fetchall()
+    rows = conn.execute(
+        "SELECT power_dbm, source_dbm FROM v_points WHERE run_id = 1 AND frequency_hz = ? "
+        "AND settled = 1 AND overload = 0 ORDER BY power_dbm",
+        (frequency_hz,),
+    ).fetchall()
     conn.close()
     return np.array([r[0] for r in rows]), np.array([r[1] for r in rows])
 
@@ -120,7 +129,7 @@ def test_uncertainty_in_the_report_includes_the_plans_type_b_terms(measured):
     for group in report["groups"]:
         # the source's ±0.5 dB alone gives U >= 2 * 0.5/sqrt(3) = 0.577 dB (JCGM 100:2008 4.3.7, 6.2.1)
         assert group["intercept_u_db"] >= 2 * 0.5 / np.sqrt(3) - 1e-12
-        assert group["intercept_u_db"] < 0.7   # and the Type A part is small on this bench
+        assert group["intercept_u_db"] < 0.7  # and the Type A part is small on this bench
 
 
 def test_fit_results_are_stored_when_the_run_completes(measured):
@@ -167,8 +176,9 @@ def test_json_export_carries_the_plan_and_the_run_metadata(measured):
     assert yaml.safe_load(data["plan_text"])["name"] == "test-plan"
     assert data["source_idn"] and data["meter_idn"] and data["started_at"] and data["finished_at"]
     assert len(data["points"]) == 2 * 46
-    assert {"frequency_hz", "power_dbm", "source_dbm", "value_v", "stdev_v", "samples", "settle_s",
-            "settled"} <= set(data["points"][0])
+    assert {"frequency_hz", "power_dbm", "source_dbm", "value_v", "stdev_v", "samples", "settle_s", "settled"} <= set(
+        data["points"][0]
+    )
 
 
 def test_two_runs_side_by_side_give_their_differences(tmp_path):
@@ -194,13 +204,37 @@ def test_two_runs_side_by_side_give_their_differences(tmp_path):
 # the JSON other programs rely on (docs/design.md, "JSON other programs rely on"), spelled out here
 # on purpose: the fields are declared once in the code, and this is what that declaration must give
 REPORT_KEYS = ["run_id", "name", "state", "dut_id", "started_at", "finished_at", "groups", "analysis", "details"]
-GROUP_KEYS = ["frequency_hz", "temperature_c", "slope_mv_per_db", "slope_u_mv_per_db", "intercept_dbm",
-              "intercept_u_db", "fit_dbm", "error_limit_db", "range_low_dbm", "range_high_dbm", "dynamic_range_db",
-              "max_abs_error_db", "points", "unsettled_points"]
+GROUP_KEYS = [
+    "frequency_hz",
+    "temperature_c",
+    "slope_mv_per_db",
+    "slope_u_mv_per_db",
+    "intercept_dbm",
+    "intercept_u_db",
+    "fit_dbm",
+    "error_limit_db",
+    "range_low_dbm",
+    "range_high_dbm",
+    "dynamic_range_db",
+    "max_abs_error_db",
+    "points",
+    "unsettled_points",
+]
 COMPARISON_KEYS = ["run_ids", "runs", "differences", "only_in_a_hz", "only_in_b_hz"]
-DIFFERENCE_KEYS = ["frequency_hz", "temperature_c", "slope_diff_mv_per_db", "intercept_diff_db", "range_low_diff_db",
-                   "range_high_diff_db", "dynamic_range_diff_db", "max_abs_error_diff_db", "slope_diff_u_mv_per_db",
-                   "intercept_diff_u_db", "slope_diff_u_type_a_mv_per_db", "intercept_diff_u_type_a_db"]
+DIFFERENCE_KEYS = [
+    "frequency_hz",
+    "temperature_c",
+    "slope_diff_mv_per_db",
+    "intercept_diff_db",
+    "range_low_diff_db",
+    "range_high_diff_db",
+    "dynamic_range_diff_db",
+    "max_abs_error_diff_db",
+    "slope_diff_u_mv_per_db",
+    "intercept_diff_u_db",
+    "slope_diff_u_type_a_mv_per_db",
+    "intercept_diff_u_type_a_db",
+]
 
 
 def test_the_json_shapes_are_the_documented_ones(tmp_path):
@@ -215,7 +249,7 @@ def test_the_json_shapes_are_the_documented_ones(tmp_path):
     cmp = _report(db, "1", "2")
     assert list(cmp) == COMPARISON_KEYS
     assert [list(r) for r in cmp["runs"]] == [REPORT_KEYS, REPORT_KEYS]
-    assert [list(d) for d in cmp["differences"]] == [DIFFERENCE_KEYS]   # only 500 MHz is in both
+    assert [list(d) for d in cmp["differences"]] == [DIFFERENCE_KEYS]  # only 500 MHz is in both
     assert cmp["only_in_a_hz"] == [100e6] and cmp["only_in_b_hz"] == [900e6]
 
 
@@ -241,8 +275,14 @@ def test_report_and_export_leave_the_database_byte_for_byte_unchanged(tmp_path, 
         writer.execute("INSERT INTO events (run_id, at, kind, message) VALUES (2, 'now', 'note', 'still writing')")
         assert Path(f"{db}-wal").stat().st_size > 0
     before = _fingerprint(db)
-    for args in (["report", "1"], ["report", "1", "--json"], ["report", "1", "2"], ["report", "1", "2", "--json"],
-                 ["report", "1", "2", "--out", str(tmp_path / "out")], ["export", "2", "--format", "json"]):
+    for args in (
+        ["report", "1"],
+        ["report", "1", "--json"],
+        ["report", "1", "2"],
+        ["report", "1", "2", "--json"],
+        ["report", "1", "2", "--out", str(tmp_path / "out")],
+        ["export", "2", "--format", "json"],
+    ):
         res = cli(*args, "--db", str(db))
         assert res.returncode == 0, (args, res.stderr)
         assert _fingerprint(db) == before, args
@@ -258,10 +298,13 @@ def test_report_and_export_of_a_missing_database_create_nothing(tmp_path):
     assert list(tmp_path.iterdir()) == []
 
 
-@pytest.mark.parametrize("args, message", [
-    (["1", "2", "3"], "one run, or two"),
-    (["7"], "there is no run 7"),
-])
+@pytest.mark.parametrize(
+    "args, message",
+    [
+        (["1", "2", "3"], "one run, or two"),
+        (["7"], "there is no run 7"),
+    ],
+)
 def test_bad_report_arguments_exit_2_and_store_nothing(tmp_path, args, message):
     db = tmp_path / "one.db"
     store_run(db, lambda p, f: 0.02 * (p + 90.0))

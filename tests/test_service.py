@@ -33,7 +33,7 @@ from nightbench.simulators.physics import BenchConfig, BenchModel
 from nightbench.store.db import Store
 from tests.conftest import OFFLINE, cli, plan_dict, wait_until
 
-SLOW_SWEEP = {"frequency_hz": [100e6], "power_dbm": {"start": -60, "stop": -15, "step": 3}}   # 16 points
+SLOW_SWEEP = {"frequency_hz": [100e6], "power_dbm": {"start": -60, "stop": -15, "step": 3}}  # 16 points
 QUICK_SWEEP = {"frequency_hz": [100e6], "power_dbm": [-50, -40, -30, -20]}
 HAS_PROC = Path("/proc/self/stat").exists()
 
@@ -65,7 +65,7 @@ def points_done(db: Path, run_id: int = 1) -> int:
     except sqlite3.OperationalError as exc:
         if "no such table" not in str(exc):
             raise
-        return 0   # the process under test has not created its tables yet
+        return 0  # the process under test has not created its tables yet
 
 
 def job_state(db: Path, job_id: int) -> str | None:
@@ -78,8 +78,11 @@ def assert_every_point_once(db: Path, run_id: int, total: int) -> None:
     readings are one unbroken sequence (nothing of a half-measured point was kept)."""
     idx = [r[0] for r in query(db, "SELECT idx FROM points WHERE run_id=? ORDER BY idx", run_id)]
     assert idx == list(range(total))
-    for r in query(db, "SELECT idx, COUNT(*) AS n, MIN(seq) AS lo, MAX(seq) AS hi FROM readings"
-                       " WHERE run_id=? GROUP BY idx", run_id):
+    for r in query(
+        db,
+        "SELECT idx, COUNT(*) AS n, MIN(seq) AS lo, MAX(seq) AS hi FROM readings WHERE run_id=? GROUP BY idx",
+        run_id,
+    ):
         assert (r["lo"], r["hi"]) == (0, r["n"] - 1), dict(r)
 
 
@@ -105,8 +108,12 @@ class Services:
 
     def start(self) -> subprocess.Popen[str]:
         err = self.tmp_path / f"serve-{len(self.procs)}.log"
-        proc = subprocess.Popen([sys.executable, "-m", "nightbench", "serve", "--db", str(self.db), "--poll", "0.1"],
-                                stdout=subprocess.DEVNULL, stderr=err.open("w"), text=True)
+        proc = subprocess.Popen(
+            [sys.executable, "-m", "nightbench", "serve", "--db", str(self.db), "--poll", "0.1"],
+            stdout=subprocess.DEVNULL,
+            stderr=err.open("w"),
+            text=True,
+        )
         self.procs.append((proc, err))
         return proc
 
@@ -134,11 +141,12 @@ def submit(plan: Path, db: Path, *extra: str) -> None:
 
 # -- acceptance 1: order and start times ----------------------------------------------------
 
+
 def test_jobs_run_in_order_of_not_before_and_never_early(bench, write_plan, db, services):
     quick = {"frequency_hz": [100e6], "power_dbm": [-50, -40, -30, -20]}
     later = write_plan(plan_dict(bench.resources, name="later-job", sweep=quick), "later.yaml")
     now_job = write_plan(plan_dict(bench.resources, name="now-job", sweep=quick), "now.yaml")
-    at = (datetime.now() + timedelta(seconds=3)).isoformat(timespec="seconds")   # naive: local time
+    at = (datetime.now() + timedelta(seconds=3)).isoformat(timespec="seconds")  # naive: local time
     submit(later, db, "--at", at)
     # a time in the past is due at once; written out, it stays before `at` however slow the submits are
     submit(now_job, db, "--at", (datetime.now() - timedelta(minutes=1)).isoformat(timespec="seconds"))
@@ -154,23 +162,24 @@ def test_jobs_run_in_order_of_not_before_and_never_early(bench, write_plan, db, 
     assert jobs[2]["state"] == "completed" and jobs[1]["state"] == "completed"
     first, second = runs[jobs[2]["run_id"]], runs[jobs[1]["run_id"]]
     assert first["name"] == "now-job" and second["name"] == "later-job"
-    assert first["finished_at"] <= second["started_at"]          # one at a time, in order
-    assert iso_ts(second["started_at"]) >= jobs[1]["not_before_ts"] >= iso_ts(at) # not early
-    assert [r["power_dbm"] for r in query(db, "SELECT power_dbm FROM points WHERE run_id=? ORDER BY idx",
-                                          second["id"])] == [-50, -40, -30, -20]
+    assert first["finished_at"] <= second["started_at"]  # one at a time, in order
+    assert iso_ts(second["started_at"]) >= jobs[1]["not_before_ts"] >= iso_ts(at)  # not early
+    assert [
+        r["power_dbm"] for r in query(db, "SELECT power_dbm FROM points WHERE run_id=? ORDER BY idx", second["id"])
+    ] == [-50, -40, -30, -20]
     log = services.log(proc)
     assert log.index("event=job-start job=2") < log.index("event=job-start job=1")
-    assert "\x1b[" not in log   # no colour codes in a log that is not a terminal
+    assert "\x1b[" not in log  # no colour codes in a log that is not a terminal
 
 
 # -- acceptance 2: SIGKILL mid-run, restart, RF off first, every point once -----------------
 
-def test_a_killed_service_makes_the_source_safe_first_and_finishes_every_point_once(bench, write_plan, db,
-                                                                                    services):
+
+def test_a_killed_service_makes_the_source_safe_first_and_finishes_every_point_once(bench, write_plan, db, services):
     submit(write_plan(slow_plan(bench.resources)), db)
     first = services.start()
     wait_for(lambda: points_done(db) >= 3, "three points")
-    first.kill()                         # SIGKILL: no handler runs, RF stays as it was
+    first.kill()  # SIGKILL: no handler runs, RF stays as it was
     first.wait()
     before = settled_log(bench)
     assert before[-1]["output"] is True, "the killed service left RF on: the test must start from that"
@@ -182,7 +191,7 @@ def test_a_killed_service_makes_the_source_safe_first_and_finishes_every_point_o
     second.send_signal(signal.SIGTERM)
     assert second.wait(10) == 0
 
-    after = bench.events()[len(before):]
+    after = bench.events()[len(before) :]
     # invariant 2: the first thing the source is told after the restart is output off
     assert after[0]["event"] == "output" and after[0]["output"] is False, after[:3]
     assert after[-1]["output"] is False
@@ -199,8 +208,11 @@ def test_a_killed_service_makes_the_source_safe_first_and_finishes_every_point_o
 
 
 def test_a_killed_foreground_run_is_found_and_resumed_by_serve(bench, write_plan, db, services):
-    run = subprocess.Popen([sys.executable, "-m", "nightbench", "run", str(write_plan(slow_plan(bench.resources))),
-                            "--db", str(db)], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    run = subprocess.Popen(
+        [sys.executable, "-m", "nightbench", "run", str(write_plan(slow_plan(bench.resources))), "--db", str(db)],
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
     try:
         wait_for(lambda: db.exists() and points_done(db) >= 2, "two points")
     finally:
@@ -209,7 +221,7 @@ def test_a_killed_foreground_run_is_found_and_resumed_by_serve(bench, write_plan
     before = settled_log(bench)
     proc = services.start()
     wait_for(lambda: job_state(db, 1) == "completed", "the adopted run's job")
-    after = bench.events()[len(before):]
+    after = bench.events()[len(before) :]
     assert after[0]["event"] == "output" and after[0]["output"] is False
     assert_every_point_once(db, 1, 16)
     assert [tuple(r) for r in query(db, "SELECT run_id, state FROM jobs")] == [(1, "completed")]
@@ -221,8 +233,10 @@ def test_a_killed_foreground_run_is_found_and_resumed_by_serve(bench, write_plan
 
 # -- acceptance 3: SIGTERM stops promptly with RF off; the next serve resumes ---------------
 
-def test_sigterm_stops_after_the_current_reading_with_rf_off_and_the_next_serve_resumes(bench, write_plan, db,
-                                                                                       services):
+
+def test_sigterm_stops_after_the_current_reading_with_rf_off_and_the_next_serve_resumes(
+    bench, write_plan, db, services
+):
     submit(write_plan(slow_plan(bench.resources)), db)
     proc = services.start()
     wait_for(lambda: points_done(db) >= 2, "two points")
@@ -231,7 +245,7 @@ def test_sigterm_stops_after_the_current_reading_with_rf_off_and_the_next_serve_
     assert listing.returncode == 0 and '"state": "running"' in listing.stdout
     assert '"state": "running"' in cli("runs", "--db", str(db), "--json").stdout
     proc.send_signal(signal.SIGTERM)
-    assert proc.wait(5) == 0             # "within a few seconds" (the issue): a point is ~0.25 s here
+    assert proc.wait(5) == 0  # "within a few seconds" (the issue): a point is ~0.25 s here
     assert settled_log(bench)[-1]["output"] is False
     assert query(db, "SELECT state FROM runs WHERE id=1")[0][0] == "interrupted"
     assert job_state(db, 1) == "interrupted"
@@ -247,6 +261,7 @@ def test_sigterm_stops_after_the_current_reading_with_rf_off_and_the_next_serve_
 
 # -- acceptance 4: one service per bench ----------------------------------------------------
 
+
 def test_a_second_serve_on_the_same_database_refuses(db, services, tmp_path):
     first = services.start()
     wait_for(lambda: "event=start" in services.log(first), "the first service")
@@ -257,7 +272,7 @@ def test_a_second_serve_on_the_same_database_refuses(db, services, tmp_path):
     assert first.poll() is None, "the first service must be untouched"
     queue = cli("queue", "--db", str(db))
     assert f"service: serving (pid {first.pid}" in queue.stdout
-    first.send_signal(signal.SIGINT)     # SIGINT is handled like SIGTERM
+    first.send_signal(signal.SIGINT)  # SIGINT is handled like SIGTERM
     assert first.wait(5) == 0
     assert "service: not running" in cli("queue", "--db", str(db)).stdout
     # the lock went with the process: a new service starts
@@ -267,11 +282,12 @@ def test_a_second_serve_on_the_same_database_refuses(db, services, tmp_path):
 
 # -- cancel ---------------------------------------------------------------------------------
 
+
 def test_cancel_stops_a_running_job_safely_and_the_service_goes_on(bench, write_plan, db, services):
     submit(write_plan(slow_plan(bench.resources), "slow.yaml"), db)
     proc = services.start()
     wait_for(lambda: points_done(db) >= 1, "a point")
-    res = cli("cancel", "1", "--db", str(db))     # waits for the service to confirm
+    res = cli("cancel", "1", "--db", str(db))  # waits for the service to confirm
     assert res.returncode == 0, res.stderr
     assert "job 1 cancelled" in res.stdout
     assert job_state(db, 1) == "cancelled"
@@ -285,7 +301,7 @@ def test_cancel_stops_a_running_job_safely_and_the_service_goes_on(bench, write_
     proc.send_signal(signal.SIGTERM)
     assert proc.wait(10) == 0
     assert job_state(db, 1) == "cancelled"
-    assert cli("cancel", "1", "--db", str(db)).returncode == 2   # already cancelled
+    assert cli("cancel", "1", "--db", str(db)).returncode == 2  # already cancelled
 
 
 def test_cancel_removes_a_waiting_job_and_unknown_jobs_are_refused(bench, write_plan, db):
@@ -300,6 +316,7 @@ def test_cancel_removes_a_waiting_job_and_unknown_jobs_are_refused(bench, write_
 
 
 # -- submit: bad input changes nothing; WHEN ------------------------------------------------
+
 
 def test_bad_plans_and_bad_times_are_refused_at_submit_and_write_nothing(write_plan, db):
     bad = write_plan(plan_dict(OFFLINE, limits={"dut_max_dbm": -30}))
@@ -325,8 +342,10 @@ def test_when_is_iso_8601_local_time_or_the_next_such_clock_time():
     # ISO 8601 without an offset is local time; with one, that instant (Python's fromisoformat)
     local = parse_when("2026-03-04T22:30")
     assert local.timestamp() == datetime(2026, 3, 4, 22, 30).timestamp()
-    assert parse_when("2026-03-04T22:30:00+01:00").timestamp() == datetime.fromisoformat(
-        "2026-03-04T21:30:00+00:00").timestamp()
+    assert (
+        parse_when("2026-03-04T22:30:00+01:00").timestamp()
+        == datetime.fromisoformat("2026-03-04T21:30:00+00:00").timestamp()
+    )
     for bad in ("tonight", "7pm", "24:00", "12:60", "2026-13-01T00:00"):
         with pytest.raises(InputError):
             parse_when(bad, now)
@@ -342,12 +361,12 @@ def test_a_process_is_gone_when_its_pid_is_dead_or_is_the_asker_or_the_heartbeat
     try:
         now = time.time()
         fresh = datetime.fromtimestamp(now).isoformat()
-        assert not owner_gone(live.pid, None, fresh, now)               # alive, started before its heartbeat
+        assert not owner_gone(live.pid, None, fresh, now)  # alive, started before its heartbeat
         assert not owner_gone(live.pid, socket.gethostname(), fresh, now)
     finally:
         live.kill()
         live.wait()
-    assert owner_gone(live.pid, None, fresh, now)                       # exited and reaped
+    assert owner_gone(live.pid, None, fresh, now)  # exited and reaped
     # the asking process has claimed nothing yet: a row naming its pid is an earlier process's
     assert owner_gone(os.getpid(), None, fresh, now)
     # another host: only an old heartbeat counts
@@ -357,7 +376,7 @@ def test_a_process_is_gone_when_its_pid_is_dead_or_is_the_asker_or_the_heartbeat
 
 @pytest.mark.skipif(not HAS_PROC, reason="process start times come from /proc (Linux); elsewhere the pid decides")
 def test_a_live_pid_that_started_after_the_last_heartbeat_is_not_the_owner():
-    live = sleeper()   # pid reuse, as after a reboot: the pid is alive but its process is younger
+    live = sleeper()  # pid reuse, as after a reboot: the pid is alive but its process is younger
     try:
         assert owner_gone(live.pid, None, "2001-01-01T00:00:00.000")
     finally:
@@ -367,10 +386,16 @@ def test_a_live_pid_that_started_after_the_last_heartbeat_is_not_the_owner():
 
 # -- `resume` and `serve` ask the same question the same way -----------------------------------
 
-@pytest.mark.parametrize("owner", [
-    pytest.param("reused pid", marks=pytest.mark.skipif(not HAS_PROC, reason="process start times come from /proc")),
-    "another host, silent for an hour",
-])
+
+@pytest.mark.parametrize(
+    "owner",
+    [
+        pytest.param(
+            "reused pid", marks=pytest.mark.skipif(not HAS_PROC, reason="process start times come from /proc")
+        ),
+        "another host, silent for an hour",
+    ],
+)
 def test_resume_takes_over_a_run_whose_owner_serve_would_call_gone(bench, write_plan, db, owner):
     # `resume` used to judge liveness on its own (any live pid, any other host: "still running")
     # and refused runs that `serve`'s recovery took over; now both use service.liveness.owner_gone.
@@ -400,7 +425,7 @@ def test_resume_refuses_a_run_whose_owner_is_alive(bench, write_plan, db):
     store.mark_running(run_id)
     live = sleeper()
     try:
-        store.conn.execute("UPDATE runs SET pid=? WHERE id=?", (live.pid, run_id))   # heartbeat: now
+        store.conn.execute("UPDATE runs SET pid=? WHERE id=?", (live.pid, run_id))  # heartbeat: now
         store.close()
         res = cli("resume", str(run_id), "--db", str(db))
     finally:
@@ -411,6 +436,7 @@ def test_resume_refuses_a_run_whose_owner_is_alive(bench, write_plan, db):
 
 
 # -- commands that read create nothing ---------------------------------------------------------
+
 
 @pytest.mark.parametrize("command", [["runs"], ["runs", "--json"], ["queue"], ["queue", "--json"], ["cancel", "1"]])
 def test_a_mistyped_db_is_refused_and_not_created(tmp_path, command):
@@ -438,6 +464,7 @@ def test_runs_and_queue_leave_an_existing_database_as_it_was(write_plan, db):
 
 # -- signals: one handler, a flag per run -------------------------------------------------------
 
+
 def test_a_signal_stops_the_service_and_its_run_while_a_cancel_stops_only_the_run():
     service = StopFlag()
     first = service.child()
@@ -448,7 +475,7 @@ def test_a_signal_stops_the_service_and_its_run_while_a_cancel_stops_only_the_ru
     previous = signal.getsignal(signal.SIGTERM), signal.getsignal(signal.SIGINT)
     try:
         service.install()
-        os.kill(os.getpid(), signal.SIGTERM)   # a real signal, through the installed handler
+        os.kill(os.getpid(), signal.SIGTERM)  # a real signal, through the installed handler
         wait_for(service.is_set, "the handler", timeout_s=5)
     finally:
         signal.signal(signal.SIGTERM, previous[0])
@@ -465,10 +492,10 @@ def test_log_lines_are_key_value_with_the_journal_priority_under_systemd(tmp_pat
         monkeypatch.delenv("JOURNAL_STREAM", raising=False)
         log("job-end", stream=stream, job=3, error='no reply to "*IDN?"\nafter 2 s', skipped=None)
         st = os.fstat(stream.fileno())
-        monkeypatch.setenv("JOURNAL_STREAM", f"{st.st_dev}:{st.st_ino}")   # what systemd sets (systemd.exec(5))
+        monkeypatch.setenv("JOURNAL_STREAM", f"{st.st_dev}:{st.st_ino}")  # what systemd sets (systemd.exec(5))
         log("unsafe", level="error", stream=stream, run=12)
     plain, journal = out.read_text().splitlines()
     stamp, rest = plain.split(" ", 1)
-    assert datetime.fromisoformat(stamp)                                # local time first, off the journal
+    assert datetime.fromisoformat(stamp)  # local time first, off the journal
     assert rest == 'level=info event=job-end job=3 error="no reply to \\"*IDN?\\"\\nafter 2 s"'
-    assert journal == "<3>level=error event=unsafe run=12"             # syslog severity 3 = error (RFC 5424)
+    assert journal == "<3>level=error event=unsafe run=12"  # syslog severity 3 = error (RFC 5424)

@@ -26,8 +26,8 @@ from nightbench.simulators.physics import BenchConfig, BenchModel
 from tests.conftest import cli, plan_dict
 
 TOL = 5e-4
-CADENCE_S = 0.0021        # one reading every 2.1 ms ...
-WINDOW_S = 0.002          # ... integrating over 2 ms (NPLC 0.1 at 50 Hz)
+CADENCE_S = 0.0021  # one reading every 2.1 ms ...
+WINDOW_S = 0.002  # ... integrating over 2 ms (NPLC 0.1 at 50 Hz)
 SAMPLES = 4
 TIMEOUT_S = 6.0
 MAX_TAU_S = 3.0
@@ -49,7 +49,7 @@ def run_point(det: SettleDetector, b: float, tau: float, sigma: float, rng: np.r
     det.begin("rise" if b < 0 else "fall")
     ends = CADENCE_S * np.arange(1, int(TIMEOUT_S / CADENCE_S) + 1)
     values = window_means(b, tau, ends) + rng.normal(0.0, sigma, len(ends)) if sigma else window_means(b, tau, ends)
-    values = np.round(values / 1e-6) * 1e-6        # the meter's 1 uV resolution
+    values = np.round(values / 1e-6) * 1e-6  # the meter's 1 uV resolution
     accepted = False
     t = float(ends[-1])
     for t_i, v in zip(ends, values):
@@ -63,8 +63,9 @@ def run_point(det: SettleDetector, b: float, tau: float, sigma: float, rng: np.r
     return t, accepted
 
 
-def detector(b: float, tau: float, sigma: float, rng: np.random.Generator, warm: bool,
-             tail_share: float | None = None) -> SettleDetector:
+def detector(
+    b: float, tau: float, sigma: float, rng: np.random.Generator, warm: bool, tail_share: float | None = None
+) -> SettleDetector:
     """A fresh detector, or one that has already seen a large step in the same direction."""
     extra = {} if tail_share is None else {"tail_share": tail_share}
     det = SettleDetector(TOL, samples=SAMPLES, max_tau_s=MAX_TAU_S, **extra)
@@ -80,7 +81,8 @@ def minimum_s(b: float, tau: float) -> float:
 
 taus = st.floats(5e-4, 0.5).map(float)
 steps = st.tuples(st.floats(math.log(0.1), math.log(1000.0)), st.sampled_from([-1.0, 1.0])).map(
-    lambda p: p[1] * TOL * math.exp(p[0]))
+    lambda p: p[1] * TOL * math.exp(p[0])
+)
 
 
 # -- the helpers and tables against outside references -------------------------------------
@@ -105,14 +107,14 @@ def test_student_t_and_chi_square_quantiles_match_scipy():
         assert t99(dof) == pytest.approx(stats.t.ppf(0.99, dof), rel=1e-3), dof
     for dof in (35, 60, 120, 1000):
         assert t99(dof) == pytest.approx(stats.t.ppf(0.99, dof), rel=5e-3), dof
-    for dof in range(1, 40):          # Wilson-Hilferty: within 4 %, and never below the true quantile
+    for dof in range(1, 40):  # Wilson-Hilferty: within 4 %, and never below the true quantile
         assert stats.chi2.ppf(0.999, dof) <= chi2_999(dof) <= 1.04 * stats.chi2.ppf(0.999, dof), dof
 
 
 # -- properties on synthetic streams -------------------------------------------------------
 @settings(max_examples=60, deadline=None, derandomize=True)
 @given(b=steps, tau=taus, warm=st.booleans())
-@example(b=10 * TOL, tau=0.3, warm=False)     # the trap: fast readings, long tau, small step
+@example(b=10 * TOL, tau=0.3, warm=False)  # the trap: fast readings, long tau, small step
 def test_noiseless_streams_never_accept_while_drift_exceeds_the_tolerance(b, tau, warm):
     rng = np.random.default_rng(0)
     det = detector(b, tau, 0.0, rng, warm)
@@ -168,9 +170,14 @@ def test_early_acceptance_rate_over_random_streams_is_below_one_percent():
 
 
 @settings(max_examples=40, deadline=None, derandomize=True)
-@given(tau=taus, noise=st.floats(0.0, 1.0), seed=st.integers(0, 2**32 - 1),
-       b=st.tuples(st.floats(math.log(4.0), math.log(1000.0)), st.sampled_from([-1.0, 1.0])).map(
-           lambda p: p[1] * TOL * math.exp(p[0])))
+@given(
+    tau=taus,
+    noise=st.floats(0.0, 1.0),
+    seed=st.integers(0, 2**32 - 1),
+    b=st.tuples(st.floats(math.log(4.0), math.log(1000.0)), st.sampled_from([-1.0, 1.0])).map(
+        lambda p: p[1] * TOL * math.exp(p[0])
+    ),
+)
 def test_a_warm_detector_accepts_within_1_5x_the_minimum(tau, noise, seed, b):
     """Stated factor: once the run has learned the direction, a step of at least 4x the
     tolerance with noise up to the tolerance is accepted within 1.5 x (the textbook time to
@@ -189,8 +196,8 @@ def test_rise_and_fall_are_learned_separately_and_mapped_to_level_steps():
     rng = np.random.default_rng(3)
     det = SettleDetector(TOL, samples=SAMPLES, max_tau_s=MAX_TAU_S)
     for _ in range(3):
-        run_point(det, -0.05, 0.004, 0.3 * TOL, rng)       # rise, tau 4 ms
-        run_point(det, 0.05, 0.040, 0.3 * TOL, rng)        # fall, tau 40 ms
+        run_point(det, -0.05, 0.004, 0.3 * TOL, rng)  # rise, tau 4 ms
+        run_point(det, 0.05, 0.040, 0.3 * TOL, rng)  # fall, tau 40 ms
     assert det.tau_s("rise") == pytest.approx(0.004, rel=0.1)
     assert det.tau_s("fall") == pytest.approx(0.040, rel=0.1)
     assert det.level_taus() == (det.tau_s("rise"), det.tau_s("fall"))
@@ -207,9 +214,9 @@ def test_one_tau_tightens_the_prior_and_a_level_dependent_tau_widens_it():
         run_point(varying, -0.02, 0.004 if i % 2 else 0.04, TOL, rng)
     one = steady.learned["rise"][-1]
     lo, hi = steady.prior("rise")
-    assert lo <= 0.01 <= hi and hi / lo < one.tau_hi_s / one.tau_lo_s     # joint: tighter than one point
+    assert lo <= 0.01 <= hi and hi / lo < one.tau_hi_s / one.tau_lo_s  # joint: tighter than one point
     lo, hi = varying.prior("rise")
-    assert lo <= 0.004 and hi >= 0.04                                      # both time constants allowed for
+    assert lo <= 0.004 and hi >= 0.04  # both time constants allowed for
 
 
 def noise_only_point(det: SettleDetector, rng: np.random.Generator, sigma: float, n: int = 300) -> None:
@@ -277,10 +284,10 @@ def test_levels_go_toward_the_fast_edge_once_both_are_known():
     seen = []
     for point in fast_edge_order(points_grid([1e8, 2e8], levels), ("frequency_hz", "power_dbm"), lambda: taus[-1]):
         seen.append((point.frequency_hz, point.power_dbm))
-        if len(seen) == 5:               # the first fall (return to the bottom) has been measured
-            taus.append((0.3, 0.001))    # rises slow, falls fast
+        if len(seen) == 5:  # the first fall (return to the bottom) has been measured
+            taus.append((0.3, 0.001))  # rises slow, falls fast
     assert seen[:5] == [(1e8, -40), (1e8, -30), (1e8, -20), (1e8, -10), (2e8, -40)]
-    assert seen[5:] == [(2e8, -10), (2e8, -20), (2e8, -30)]      # jump up once, then fall
+    assert seen[5:] == [(2e8, -10), (2e8, -20), (2e8, -30)]  # jump up once, then fall
 
 
 def test_order_keeps_direction_without_a_clear_winner_and_covers_every_point():
@@ -291,8 +298,8 @@ def test_order_keeps_direction_without_a_clear_winner_and_covers_every_point():
     pts = points_grid([1e8, 2e8, 3e8], [-30.0, -20.0, -10.0], power_outer=True)
     out = list(fast_edge_order(pts, ("power_dbm", "frequency_hz"), lambda: (0.3, 0.001)))
     assert sorted(p.index for p in out) == list(range(len(pts)))
-    assert [p.power_dbm for p in out] == [-10.0] * 3 + [-20.0] * 3 + [-30.0] * 3   # falls are fast: down
-    assert [p.frequency_hz for p in out[:3]] == [1e8, 2e8, 3e8]        # inner axis as planned
+    assert [p.power_dbm for p in out] == [-10.0] * 3 + [-20.0] * 3 + [-30.0] * 3  # falls are fast: down
+    assert [p.frequency_hz for p in out[:3]] == [1e8, 2e8, 3e8]  # inner axis as planned
 
 
 # -- the plan keys ---------------------------------------------------------------------------
@@ -329,14 +336,17 @@ def test_asymmetric_bench_with_noise_near_the_floor_meets_the_accuracy_target(tm
     truth = BenchModel(BenchConfig.from_dict({"detector": detector_cfg}))
     freqs = [100e6, 500e6, 900e6]
     with SimProcess("--config", str(sim_config(tmp_path, **detector_cfg))) as sim:
-        plan = plan_dict(sim.resources,
-                         path={"table": [[f, truth.config.path.loss(f)] for f in freqs]},
-                         sweep={"frequency_hz": freqs, "power_dbm": {"start": -100, "stop": -10, "step": 1}},
-                         settle={"tolerance_v": TOL, "timeout_s": 2, "level_order": "fast-edge"})
+        plan = plan_dict(
+            sim.resources,
+            path={"table": [[f, truth.config.path.loss(f)] for f in freqs]},
+            sweep={"frequency_hz": freqs, "power_dbm": {"start": -100, "stop": -10, "step": 1}},
+            settle={"tolerance_v": TOL, "timeout_s": 2, "level_order": "fast-edge"},
+        )
         res = cli("run", str(write_plan(plan)), "--db", str(db), timeout=60)
     assert res.returncode == 0, res.stderr
-    rows = sqlite3.connect(db).execute(
-        "SELECT power_dbm, frequency_hz, value_v, samples, settled FROM points").fetchall()
+    rows = (
+        sqlite3.connect(db).execute("SELECT power_dbm, frequency_hz, value_v, samples, settled FROM points").fetchall()
+    )
     assert len(rows) == 3 * 91
     window, det = truth.integration_s(0.1), truth.config.detector
 
@@ -357,8 +367,11 @@ def test_a_point_that_times_out_is_stored_flagged_and_counted(tmp_path, write_pl
     from nightbench.simproc import SimProcess
 
     with SimProcess("--config", str(sim_config(tmp_path, tau_rise_s=0.5, tau_fall_s=0.5))) as sim:
-        plan = plan_dict(sim.resources, sweep={"frequency_hz": [100e6], "power_dbm": [-60, -40, -20]},
-                         settle={"tolerance_v": TOL, "timeout_s": 0.05})
+        plan = plan_dict(
+            sim.resources,
+            sweep={"frequency_hz": [100e6], "power_dbm": [-60, -40, -20]},
+            settle={"tolerance_v": TOL, "timeout_s": 0.05},
+        )
         assert cli("run", str(write_plan(plan)), "--db", str(db)).returncode == 0
     rows = sqlite3.connect(db).execute("SELECT settled, settle_s, settle_readings, samples FROM points").fetchall()
     assert len(rows) == 3 and all(r[0] == 0 and r[1] >= 0.05 and r[2] > 0 and r[3] == 4 for r in rows)

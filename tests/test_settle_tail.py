@@ -20,7 +20,7 @@ TOL = 5e-4
 CADENCE_S = 0.0021
 WINDOW_S = 0.002
 SAMPLES = 4
-SIGMA_V = 0.0005          # one 2 ms reading's noise
+SIGMA_V = 0.0005  # one 2 ms reading's noise
 MAX_TAU_S = 2.0 / math.log(100.0)
 FAST_TAU_S = 0.002
 
@@ -56,7 +56,7 @@ def test_two_part_stream_matches_scipy_step_response():
 
     out = TwoPart(0.01, 0.002, 0.2, v0=0.0)
     out.retarget(1.0, 0.0)
-    t = np.linspace(0.0, 0.5, 501)        # scipy simulates from T[0] as time zero
+    t = np.linspace(0.0, 0.5, 501)  # scipy simulates from T[0] as time zero
     ref = np.zeros_like(t)
     for share, tau in ((0.99, 0.002), (0.01, 0.2)):
         _, y = signal.step(signal.lti([1.0], [tau, 1.0]), T=t)
@@ -163,16 +163,23 @@ def test_a_bench_with_a_slow_tail_stores_no_settled_point_outside_tolerance(tmp_
     truth = BenchModel(BenchConfig.from_dict({"detector": detector_cfg}))
     freqs = [100e6, 900e6]
     with SimProcess("--config", str(sim_config(tmp_path, **detector_cfg))) as sim:
-        plan = plan_dict(sim.resources,
-                         path={"table": [[f, truth.config.path.loss(f)] for f in freqs]},
-                         sweep={"frequency_hz": freqs, "power_dbm": {"start": -75, "stop": -10, "step": 5}},
-                         settle={"tolerance_v": TOL, "timeout_s": 2})
+        plan = plan_dict(
+            sim.resources,
+            path={"table": [[f, truth.config.path.loss(f)] for f in freqs]},
+            sweep={"frequency_hz": freqs, "power_dbm": {"start": -75, "stop": -10, "step": 5}},
+            settle={"tolerance_v": TOL, "timeout_s": 2},
+        )
         res = cli("run", str(write_plan(plan)), "--db", str(db), timeout=120)
     assert res.returncode == 0, res.stderr
-    rows = sqlite3.connect(db).execute("SELECT power_dbm, frequency_hz, value_v, samples, settled FROM points").fetchall()
+    rows = (
+        sqlite3.connect(db).execute("SELECT power_dbm, frequency_hz, value_v, samples, settled FROM points").fetchall()
+    )
     assert len(rows) == 2 * 14
     window, det = truth.integration_s(0.1), truth.config.detector
-    outside = [(p, f, round((v - truth.truth_v(p, f)) * 1e3, 3)) for p, f, v, n, settled in rows
-               if settled and abs(v - truth.truth_v(p, f)) > TOL + 3 * det.noise_v(p, window) / math.sqrt(n)]
+    outside = [
+        (p, f, round((v - truth.truth_v(p, f)) * 1e3, 3))
+        for p, f, v, n, settled in rows
+        if settled and abs(v - truth.truth_v(p, f)) > TOL + 3 * det.noise_v(p, window) / math.sqrt(n)
+    ]
     assert not outside, f"settled but outside tolerance (dBm, Hz, mV): {outside}"
     assert sum(r[4] for r in rows) >= len(rows) - 1, "nearly every point settles within the timeout"

@@ -35,10 +35,13 @@ def test_sim_prints_resources_serves_and_stops_cleanly(sig):
         proc.kill()
 
 
-@pytest.mark.parametrize("args, words", [
-    (["--fault", "explode@meter"], "unknown fault kind"),
-    (["--config", "CONFIG"], "unknown simulator config key 'detector.slpoe_v_per_db'"),
-])
+@pytest.mark.parametrize(
+    "args, words",
+    [
+        (["--fault", "explode@meter"], "unknown fault kind"),
+        (["--config", "CONFIG"], "unknown simulator config key 'detector.slpoe_v_per_db'"),
+    ],
+)
 def test_sim_refuses_bad_config_plainly(tmp_path, args, words):
     config = tmp_path / "bad.toml"
     config.write_text("[detector]\nslpoe_v_per_db = 0.02\n")
@@ -51,8 +54,10 @@ def test_sim_refuses_bad_config_plainly(tmp_path, args, words):
 
 def test_sim_config_file_sets_the_physics(tmp_path):
     config = tmp_path / "sim.toml"
-    config.write_text("seed = 5\n[detector]\ntau_rise_s = 0.05\n[meter]\nline_hz = 60\n"
-                      "[[fault]]\nkind = 'delay'\ninstrument = 'meter'\nafter = 1\n")
+    config.write_text(
+        "seed = 5\n[detector]\ntau_rise_s = 0.05\n[meter]\nline_hz = 60\n"
+        "[[fault]]\nkind = 'delay'\ninstrument = 'meter'\nafter = 1\n"
+    )
     from nightbench.simulators.server import load_config
 
     cfg = load_config(str(config))

@@ -31,7 +31,7 @@ def test_drop_after_n_messages_then_the_instrument_comes_back(inproc_bench):
     meter.query("*IDN?")
     meter.query("*IDN?")
     with pytest.raises(ConnectionLost):
-        meter.query("*IDN?")          # the third message: connection closed, no reply
+        meter.query("*IDN?")  # the third message: connection closed, no reply
     again = session(bench.resources()["meter"])
     assert again.identify().startswith(MAKER)
 
@@ -69,7 +69,7 @@ def test_stop_answering(inproc_bench):
     with pytest.raises(ConnectionLost, match="no reply"):
         src.query("*IDN?")
     with pytest.raises(ConnectionLost):
-        session(bench.resources()["source"], timeout_s=0.3).identify()   # silent for good
+        session(bench.resources()["source"], timeout_s=0.3).identify()  # silent for good
 
 
 def test_garbage_reply_is_reproducible_with_the_seed(inproc_bench):
@@ -121,6 +121,7 @@ def test_probability_faults_fire_at_the_same_messages_for_the_same_seed(inproc_b
             meter.query("*OPC?")
             out.append(bool(errors(meter)))
         return out
+
     first = pattern(3)
     assert first == pattern(3) and any(first) and not all(first)
 
@@ -143,15 +144,15 @@ def test_query_interrupted_and_unterminated(inproc_bench):
     port = int(bench.resources()["meter"].split("::")[2])
     sock = socket.create_connection(("127.0.0.1", port))
     f = sock.makefile("rb")
-    sock.sendall(b"VOLT:NPLC 10\nREAD?\n*OPC?\n")       # *OPC? arrives during the 200 ms reading
-    assert f.readline() == b"1\n"                        # only the second query is answered
+    sock.sendall(b"VOLT:NPLC 10\nREAD?\n*OPC?\n")  # *OPC? arrives during the 200 ms reading
+    assert f.readline() == b"1\n"  # only the second query is answered
     sock.sendall(b"SYST:ERR?\n")
     assert f.readline().startswith(b"-410,")
-    sock.sendall(b"*IDN?")                               # no terminator
+    sock.sendall(b"*IDN?")  # no terminator
     wait_until(lambda: any(code == -420 for code, _ in list(bench.meter.errors)), "the -420 entry")
     sock.sendall(b"\nSYST:ERR?\n")
     assert f.readline().startswith(b"-420,")
-    sock.sendall(b"\xff\xfe\n*OPC?\n")                   # garbage bytes from the controller
+    sock.sendall(b"\xff\xfe\n*OPC?\n")  # garbage bytes from the controller
     assert f.readline() == b"1\n"
     sock.sendall(b"SYST:ERR?\n")
     assert f.readline().startswith(b"-100,")

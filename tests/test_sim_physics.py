@@ -36,7 +36,7 @@ def test_settling_to_a_fraction_takes_tau_ln_inverse_fraction(fraction):
     # Textbook first-order settling: within a fraction e of the step after tau * ln(1/e).
     tau, step = 0.006, -1.5
     out = FirstOrderOutput(2.0, 0.0)
-    out.retarget(2.0 + step, 0.0, tau_rise=1.0, tau_fall=tau)   # a fall uses tau_fall
+    out.retarget(2.0 + step, 0.0, tau_rise=1.0, tau_fall=tau)  # a fall uses tau_fall
     t_e = tau * math.log(1 / fraction)
     assert abs(out.value(t_e) - (2.0 + step)) == pytest.approx(fraction * abs(step), rel=1e-9)
 
@@ -72,7 +72,7 @@ def test_floor_and_compression_are_power_sums():
     assert d.effective_dbm(d.floor_dbm) == pytest.approx(d.floor_dbm + 10 * math.log10(2), abs=0.01)
     assert d.effective_dbm(-math.inf) == pytest.approx(d.floor_dbm, abs=1e-6)
     assert d.effective_dbm(d.saturation_dbm) == pytest.approx(d.saturation_dbm - 10 * math.log10(2), abs=0.01)
-    mid = -40.0   # far from both: the log law itself
+    mid = -40.0  # far from both: the log law itself
     assert d.steady_v(mid, 0) == pytest.approx(d.slope_v_per_db * (mid - d.intercept_dbm), rel=1e-4)
 
 
@@ -82,7 +82,8 @@ def test_ripple_has_the_stage_gain_period():
     err = [d.effective_dbm(p) - ideal.effective_dbm(p) for p in np.arange(-60, -20, 0.5)]
     assert max(err) == pytest.approx(0.3, abs=0.01) and min(err) == pytest.approx(-0.3, abs=0.01)
     assert d.effective_dbm(-45) - ideal.effective_dbm(-45) == pytest.approx(
-        d.effective_dbm(-37) - ideal.effective_dbm(-37), abs=1e-3)
+        d.effective_dbm(-37) - ideal.effective_dbm(-37), abs=1e-3
+    )
 
 
 def test_temperature_coefficients():
@@ -111,7 +112,7 @@ def test_nplc_integration_time():
 def test_a_reading_takes_at_least_its_aperture(inproc_bench):
     bench = inproc_bench()
     meter = session(bench.resources()["meter"])
-    meter.apply(["VOLT:DC:NPLC 5"])   # 100 ms at 50 Hz
+    meter.apply(["VOLT:DC:NPLC 5"])  # 100 ms at 50 Hz
     t0 = time.monotonic()
     meter.query("READ?")
     assert time.monotonic() - t0 >= 0.1
@@ -126,7 +127,7 @@ def test_reading_right_after_a_step_differs_as_the_time_constant_predicts(inproc
     bench = inproc_bench(config)
     res = bench.resources()
     src, meter = session(res["source"]), session(res["meter"])
-    meter.apply(["VOLT:DC:NPLC 0.05"])   # 1 ms aperture
+    meter.apply(["VOLT:DC:NPLC 0.05"])  # 1 ms aperture
     src.apply(["FREQ 100MHZ", "POW -80", "OUTP ON"])
     wait_until(lambda: output_settled(bench.model, 1e-7), "the output to settle at the low level")
     model = bench.model
@@ -137,15 +138,17 @@ def test_reading_right_after_a_step_differs_as_the_time_constant_predicts(inproc
     reading = float(meter.query("READ?"))
     t_after = time.monotonic()
     v1 = model.truth_v(model.dut_dbm(), 100e6)
-    t_step = model.output.segments[-1].t0   # when the simulator applied the step (same clock)
+    t_step = model.output.segments[-1].t0  # when the simulator applied the step (same clock)
     assert t_before <= t_step <= t_set
+
     # The reading began after the setting was confirmed (t_set) and ended by t_after, so the
     # first-order law v1 - (v1 - v0) exp(-dt / tau) brackets it.
     def law(t):
         return v1 - (v1 - v0) * math.exp(-(t - t_step) / 0.3)
+
     assert law(t_set) - 1e-5 <= reading <= law(t_after) + 1e-5
     assert reading < v1 - 0.5 * (v1 - v0), "a reading right after the step is still far from the final value"
-    time.sleep(3.0)   # the law under test: 10 tau later it has arrived (within 5e-5 of the step)
+    time.sleep(3.0)  # the law under test: 10 tau later it has arrived (within 5e-5 of the step)
     assert float(meter.query("READ?")) == pytest.approx(v1, abs=abs(v1 - v0) * 5e-5 + 1e-5)
 
 

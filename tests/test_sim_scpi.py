@@ -28,10 +28,20 @@ def errors(inst):
         out.append(int(entry.split(",")[0]))
 
 
-@pytest.mark.parametrize("message", [
-    "SOURce:FREQuency:CW 250000000", "SOUR:FREQ:CW 250000000", "sour:freq:cw 250e6", "SoUrCe:FrEq 250E6",
-    ":FREQ 250 MHZ", "FREQ 250MHZ", "FREQuency 0.25 GHZ", "FREQ 250000 KHZ", "SOUR1:FREQ 250MHZ",
-])
+@pytest.mark.parametrize(
+    "message",
+    [
+        "SOURce:FREQuency:CW 250000000",
+        "SOUR:FREQ:CW 250000000",
+        "sour:freq:cw 250e6",
+        "SoUrCe:FrEq 250E6",
+        ":FREQ 250 MHZ",
+        "FREQ 250MHZ",
+        "FREQuency 0.25 GHZ",
+        "FREQ 250000 KHZ",
+        "SOUR1:FREQ 250MHZ",
+    ],
+)
 def test_long_short_forms_case_optional_nodes_and_suffixes(source, message):
     # SCPI-1999 vol. 1, 6.2.1 (mnemonics: short form = the upper-case part, case-insensitive),
     # 6.2.5 (optional [nodes]), 7.5.3 (suffix multipliers; MHZ means megahertz), from memory.
@@ -62,17 +72,20 @@ def test_level_in_volts_into_50_ohm(source):
     assert float(source.execute("POW?")) == pytest.approx(0.0, abs=0.001)
 
 
-@pytest.mark.parametrize("message, code", [
-    ("FREQ 1 DBM", -131),        # invalid suffix
-    ("FREQ lots", -104),         # data type error
-    ("FREQ 99 GHZ", -222),       # data out of range
-    ("POW 80", -222),
-    ("OUTP MAYBE", -224),        # illegal parameter value
-    ("NOSUCH:THING 1", -113),    # undefined header
-    ("FREQ", -109),              # missing parameter
-    ("OUTP ON,OFF", -108),       # parameter not allowed
-    ("FREQ::CW 1", -102),        # syntax error
-])
+@pytest.mark.parametrize(
+    "message, code",
+    [
+        ("FREQ 1 DBM", -131),  # invalid suffix
+        ("FREQ lots", -104),  # data type error
+        ("FREQ 99 GHZ", -222),  # data out of range
+        ("POW 80", -222),
+        ("OUTP MAYBE", -224),  # illegal parameter value
+        ("NOSUCH:THING 1", -113),  # undefined header
+        ("FREQ", -109),  # missing parameter
+        ("OUTP ON,OFF", -108),  # parameter not allowed
+        ("FREQ::CW 1", -102),  # syntax error
+    ],
+)
 def test_errors_get_the_standard_codes(source, message, code):
     # SCPI-1999 vol. 2, 21.8: standard error numbers.
     source.execute(message)
@@ -126,18 +139,21 @@ def test_meter_settings_and_queries():
     assert errors(meter) == [-222]
 
 
-@pytest.mark.parametrize("value, code", [
-    ("-1V", -222),          # a valid number and suffix, but no rms voltage is negative
-    ("-1 MV", -222),
-    ("1.2.3", -121),        # invalid character in number
-    ("-", -121),
-    ("1e", -121),           # an exponent without digits
-    ("1e+", -121),
-    ("5 XYZ", -131),        # invalid suffix
-    ("1V2", -131),
-    ("lots", -104),         # character data where a number belongs: data type error
-    ('"-10"', -104),        # string data
-])
+@pytest.mark.parametrize(
+    "value, code",
+    [
+        ("-1V", -222),  # a valid number and suffix, but no rms voltage is negative
+        ("-1 MV", -222),
+        ("1.2.3", -121),  # invalid character in number
+        ("-", -121),
+        ("1e", -121),  # an exponent without digits
+        ("1e+", -121),
+        ("5 XYZ", -131),  # invalid suffix
+        ("1V2", -131),
+        ("lots", -104),  # character data where a number belongs: data type error
+        ('"-10"', -104),  # string data
+    ],
+)
 def test_malformed_numbers_get_their_code_and_the_instrument_keeps_answering(inproc_bench, value, code):
     # IEEE 488.2 7.7.2 / 7.7.3 (decimal numeric program data and its suffix) and SCPI-1999 vol. 2,
     # 21.8 (-104 data type error, -121 invalid character in number, -131 invalid suffix, -222 data
@@ -159,11 +175,17 @@ def test_malformed_numbers_get_their_code_and_the_instrument_keeps_answering(inp
 NUMBER_HEADERS = ["FREQ", "POW", "OUTP", "SENS:VOLT:DC:NPLC", "VOLT:RANG", "CONF:VOLT:DC", "TRIG:SOUR"]
 
 
-NUMBERISH = st.builds("".join, st.tuples(   # decimal numeric program data, right and wrong
-    st.sampled_from(["", "+", "-"]), st.sampled_from(["", "0", "1", "25", "1.5", ".5", "1.", "1.2.3", "MIN"]),
-    st.sampled_from(["", "e", "E3", "e-2", "e+", "e999"]), st.sampled_from(["", " "]),
-    st.sampled_from(["", "V", "MV", "uv", "DBM", "HZ", "MHZ", "X", "V2", "#", "-"])))
-ANY_TEXT = st.text(alphabet=st.characters(min_codepoint=32, max_codepoint=126, exclude_characters=";\""), max_size=12)
+NUMBERISH = st.builds(
+    "".join,
+    st.tuples(  # decimal numeric program data, right and wrong
+        st.sampled_from(["", "+", "-"]),
+        st.sampled_from(["", "0", "1", "25", "1.5", ".5", "1.", "1.2.3", "MIN"]),
+        st.sampled_from(["", "e", "E3", "e-2", "e+", "e999"]),
+        st.sampled_from(["", " "]),
+        st.sampled_from(["", "V", "MV", "uv", "DBM", "HZ", "MHZ", "X", "V2", "#", "-"]),
+    ),
+)
+ANY_TEXT = st.text(alphabet=st.characters(min_codepoint=32, max_codepoint=126, exclude_characters=';"'), max_size=12)
 
 
 @settings(max_examples=400, deadline=None, derandomize=True)

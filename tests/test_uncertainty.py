@@ -33,8 +33,10 @@ def law(p: np.ndarray) -> np.ndarray:
 
 
 def rows(levels: np.ndarray, values: np.ndarray, stdev: float | None = None, samples: int = 4) -> list[dict]:
-    return [{"power_dbm": float(p), "value_v": float(v), "settled": 1, "overload": 0, "stdev_v": stdev,
-             "samples": samples} for p, v in zip(levels, values)]
+    return [
+        {"power_dbm": float(p), "value_v": float(v), "settled": 1, "overload": 0, "stdev_v": stdev, "samples": samples}
+        for p, v in zip(levels, values)
+    ]
 
 
 def test_elementary_formulas_are_the_gum_ones():
@@ -52,7 +54,7 @@ def test_elementary_formulas_are_the_gum_ones():
 def test_reading_scatter_propagation_matches_monte_carlo():
     # JCGM 101 style: points whose means scatter with known u(y_i), refitted many times.
     rng = np.random.default_rng(3)
-    u_y = np.linspace(0.0005, 0.002, LEVELS.size)    # noise grows toward one end, as near a floor
+    u_y = np.linspace(0.0005, 0.002, LEVELS.size)  # noise grows toward one end, as near a floor
     fits = [fit_line(LEVELS, law(LEVELS) + rng.normal(0, u_y)) for _ in range(4000)]
     u_b, u_x0 = propagate_through_fit(LEVELS, u_y, -0.025 * -88.0, 0.025)
     assert u_b == pytest.approx(np.std([f.slope_v_per_db for f in fits]), rel=0.05)
@@ -87,8 +89,13 @@ def test_meter_gain_scales_the_slope_and_offset_moves_the_intercept():
     slopes = [fit_line(LEVELS, law(LEVELS) * (1 + g)).slope_v_per_db * 1e3 for g in gains]
     offsets = rng.uniform(-offset_v, offset_v, 2000)
     x0 = [fit_line(LEVELS, law(LEVELS) + o).intercept_dbm for o in offsets]
-    g = analyse_group(1e8, rows(LEVELS, law(LEVELS)), (-60, -20), 1.0,
-                      {"meter_gain_accuracy_pct": gain_pct, "meter_offset_accuracy_v": offset_v})
+    g = analyse_group(
+        1e8,
+        rows(LEVELS, law(LEVELS)),
+        (-60, -20),
+        1.0,
+        {"meter_gain_accuracy_pct": gain_pct, "meter_offset_accuracy_v": offset_v},
+    )
     terms = {t.key: t for t in g.budget.terms}
     assert terms["meter_gain"].slope_mv_per_db == pytest.approx(np.std(slopes), rel=0.05)
     assert terms["meter_offset"].intercept_db == pytest.approx(np.std(x0), rel=0.05)
@@ -98,8 +105,12 @@ def test_meter_gain_scales_the_slope_and_offset_moves_the_intercept():
 def test_reported_uncertainty_is_k_times_the_root_sum_of_squares_of_the_included_terms():
     rng = np.random.default_rng(1)
     values = law(LEVELS) + rng.normal(0, 0.001, LEVELS.size)
-    accuracy = {"source_level_accuracy_db": 0.5, "path_loss_accuracy_db": 0.1,
-                "meter_gain_accuracy_pct": 0.01, "meter_offset_accuracy_v": 1e-4}
+    accuracy = {
+        "source_level_accuracy_db": 0.5,
+        "path_loss_accuracy_db": 0.1,
+        "meter_gain_accuracy_pct": 0.01,
+        "meter_offset_accuracy_v": 1e-4,
+    }
     g = analyse_group(1e8, rows(LEVELS, values, stdev=0.0004), (-60, -20), 1.0, accuracy)
     used = [t for t in g.budget.terms if t.included]
     assert {t.key for t in g.budget.terms} - {t.key for t in used} == {"reading_scatter"}
@@ -117,7 +128,15 @@ def test_only_the_larger_type_a_estimate_is_combined():
 
 
 def test_no_reading_scatter_term_without_sample_spread():
-    budget = build_budget(slope_v_per_db=0.025, intercept_v=2.2, u_slope_fit=1e-5, u_intercept_fit_db=0.01,
-                          residual_sd_v=1e-3, x=LEVELS, u_y=[None] * LEVELS.size, accuracy={})
+    budget = build_budget(
+        slope_v_per_db=0.025,
+        intercept_v=2.2,
+        u_slope_fit=1e-5,
+        u_intercept_fit_db=0.01,
+        residual_sd_v=1e-3,
+        x=LEVELS,
+        u_y=[None] * LEVELS.size,
+        accuracy={},
+    )
     assert [t.key for t in budget.terms if t.type == "A"] == ["fit"]
     assert budget.slope_u_mv_per_db == pytest.approx(1e-2)

@@ -56,12 +56,13 @@ class Difference:
 
     a: GroupResult
     b: GroupResult
-    values: dict[str, float | None]   # by JSON key: each declared difference, then its uncertainties
+    values: dict[str, float | None]  # by JSON key: each declared difference, then its uncertainties
 
     @classmethod
     def of(cls, a: GroupResult, b: GroupResult) -> Difference:
-        values: dict[str, float | None] = {f.diff: _minus(b.value(f.name), a.value(f.name))
-                                           for f in DIFFERENCES if f.diff}
+        values: dict[str, float | None] = {
+            f.diff: _minus(b.value(f.name), a.value(f.name)) for f in DIFFERENCES if f.diff
+        }
         for f in WITH_U:
             assert f.with_u is not None
             values[u_key(f)] = _rss(a.value(f.with_u), b.value(f.with_u))
@@ -84,9 +85,13 @@ class Comparison:
 
     def to_json(self) -> dict[str, Any]:
         """The `report A B --json` object: both reports, the differences B - A, groups found in one run only."""
-        return {"run_ids": [self.a.run_id, self.b.run_id], "runs": [self.a.to_json(), self.b.to_json()],
-                "differences": [d.to_json() for d in self.differences],
-                "only_in_a_hz": self.only_in_a_hz, "only_in_b_hz": self.only_in_b_hz}
+        return {
+            "run_ids": [self.a.run_id, self.b.run_id],
+            "runs": [self.a.to_json(), self.b.to_json()],
+            "differences": [d.to_json() for d in self.differences],
+            "only_in_a_hz": self.only_in_a_hz,
+            "only_in_b_hz": self.only_in_b_hz,
+        }
 
 
 def compare_reports(a: Report, b: Report) -> Comparison:

@@ -25,9 +25,9 @@ from nightbench.store.fields import BY_NAME, FIELDS, PUBLIC_KEYS, row_values
 
 @dataclass
 class LineFit:
-    intercept_v: float       # a
-    slope_v_per_db: float    # b
-    u_intercept_v: float     # standard uncertainty of a
+    intercept_v: float  # a
+    slope_v_per_db: float  # b
+    u_intercept_v: float  # standard uncertainty of a
     u_slope_v_per_db: float  # standard uncertainty of b
     cov_ab: float
     residual_sd_v: float
@@ -71,8 +71,9 @@ def conformance_db(fit: LineFit, x: np.ndarray, y: np.ndarray) -> np.ndarray:
     return (y - (fit.intercept_v + fit.slope_v_per_db * x)) / fit.slope_v_per_db
 
 
-def range_within(levels: np.ndarray, errors: np.ndarray, fit_dbm: tuple[float, float],
-                 limit_db: float) -> tuple[float | None, float | None]:
+def range_within(
+    levels: np.ndarray, errors: np.ndarray, fit_dbm: tuple[float, float], limit_db: float
+) -> tuple[float | None, float | None]:
     """Contiguous span around the fit range where |error| <= limit; ends interpolated, 0.1 dB."""
     order = np.argsort(levels)
     p, e = levels[order], np.abs(errors[order])
@@ -115,7 +116,7 @@ class GroupResult:
     fit_dbm: list[float]
     error_limit_db: float
     points: int
-    unsettled_points: int          # did not settle within settle.timeout_s (overloads counted apart)
+    unsettled_points: int  # did not settle within settle.timeout_s (overloads counted apart)
     overload_points: int = 0
     slope_mv_per_db: float | None = None
     slope_u_mv_per_db: float | None = None
@@ -125,12 +126,12 @@ class GroupResult:
     range_high_dbm: float | None = None
     dynamic_range_db: float | None = None
     max_abs_error_db: float | None = None
-    note: str | None = None        # why the group could not be fitted
+    note: str | None = None  # why the group could not be fitted
     line: LineFit | None = None
     budget: Budget | None = None
-    range_low_at_sweep_end: bool = False    # the range end is the last point swept, not a crossing
+    range_low_at_sweep_end: bool = False  # the range end is the last point swept, not a crossing
     range_high_at_sweep_end: bool = False
-    curve: list[dict[str, Any]] = field(default_factory=list)   # every point: level, value, error, status
+    curve: list[dict[str, Any]] = field(default_factory=list)  # every point: level, value, error, status
 
     @property
     def residual_sd_v(self) -> float | None:
@@ -146,8 +147,9 @@ class GroupResult:
 
     def at_sweep_end(self, name: str) -> bool:
         """Whether a range end (range_low_dbm or range_high_dbm) is the end of the sweep, not a crossing."""
-        return {"range_low_dbm": self.range_low_at_sweep_end,
-                "range_high_dbm": self.range_high_at_sweep_end}.get(name, False)
+        return {"range_low_dbm": self.range_low_at_sweep_end, "range_high_dbm": self.range_high_at_sweep_end}.get(
+            name, False
+        )
 
     @property
     def errors_db(self) -> list[tuple[float, float]]:
@@ -155,8 +157,11 @@ class GroupResult:
 
     @property
     def excluded(self) -> list[dict[str, Any]]:
-        return [{"power_dbm": c["power_dbm"], "reason": c["status"]} for c in self.curve
-                if c["status"] not in ("in_fit", "outside_fit")]
+        return [
+            {"power_dbm": c["power_dbm"], "reason": c["status"]}
+            for c in self.curve
+            if c["status"] not in ("in_fit", "outside_fit")
+        ]
 
     def public(self) -> dict[str, Any]:
         """The `report --json` group: exactly the public fields (docs/design.md)."""
@@ -168,28 +173,49 @@ class GroupResult:
 
     def detail(self) -> dict[str, Any]:
         """Everything else a reader or a plot needs: the line, the budget, every point and why."""
-        return {"frequency_hz": self.frequency_hz, "temperature_c": self.temperature_c, "note": self.note,
-                "line": None if self.line is None else {
-                    "intercept_v": self.line.intercept_v, "slope_v_per_db": self.line.slope_v_per_db,
-                    "residual_sd_v": self.line.residual_sd_v, "n": self.line.n},
-                "uncertainty": None if self.budget is None else self.budget.as_dict(),
-                "overload_points": self.overload_points,
-                "range_low_at_sweep_end": self.range_low_at_sweep_end,
-                "range_high_at_sweep_end": self.range_high_at_sweep_end,
-                "excluded": self.excluded, "curve": self.curve}
+        return {
+            "frequency_hz": self.frequency_hz,
+            "temperature_c": self.temperature_c,
+            "note": self.note,
+            "line": None
+            if self.line is None
+            else {
+                "intercept_v": self.line.intercept_v,
+                "slope_v_per_db": self.line.slope_v_per_db,
+                "residual_sd_v": self.line.residual_sd_v,
+                "n": self.line.n,
+            },
+            "uncertainty": None if self.budget is None else self.budget.as_dict(),
+            "overload_points": self.overload_points,
+            "range_low_at_sweep_end": self.range_low_at_sweep_end,
+            "range_high_at_sweep_end": self.range_high_at_sweep_end,
+            "excluded": self.excluded,
+            "curve": self.curve,
+        }
 
 
-def analyse_group(frequency_hz: float, rows: Sequence[Mapping[str, Any]], fit_dbm: tuple[float, float],
-                  limit_db: float, accuracy: dict[str, float] | None = None,
-                  temperature_c: float | None = None) -> GroupResult:
+def analyse_group(
+    frequency_hz: float,
+    rows: Sequence[Mapping[str, Any]],
+    fit_dbm: tuple[float, float],
+    limit_db: float,
+    accuracy: dict[str, float] | None = None,
+    temperature_c: float | None = None,
+) -> GroupResult:
     """Fit one group of stored points (mappings with power_dbm, value_v, settled, overload and,
     for the reading-scatter term, stdev_v and samples)."""
     rows = sorted(rows, key=lambda r: r["power_dbm"])
     reasons = [exclusion(r) for r in rows]
     usable = [r for r, why in zip(rows, reasons) if why is None]
-    group = GroupResult(frequency_hz=frequency_hz, temperature_c=temperature_c, fit_dbm=list(fit_dbm),
-                        error_limit_db=limit_db, points=len(rows), unsettled_points=reasons.count("unsettled"),
-                        overload_points=reasons.count("overload"))
+    group = GroupResult(
+        frequency_hz=frequency_hz,
+        temperature_c=temperature_c,
+        fit_dbm=list(fit_dbm),
+        error_limit_db=limit_db,
+        points=len(rows),
+        unsettled_points=reasons.count("unsettled"),
+        overload_points=reasons.count("overload"),
+    )
     levels = np.array([r["power_dbm"] for r in usable], dtype=float)
     values = np.array([r["value_v"] for r in usable], dtype=float)
     in_fit = (levels >= fit_dbm[0] - 1e-9) & (levels <= fit_dbm[1] + 1e-9)
@@ -213,9 +239,16 @@ def analyse_group(frequency_hz: float, rows: Sequence[Mapping[str, Any]], fit_db
     errors = conformance_db(fit, levels, values)
     low, high = range_within(levels, errors, fit_dbm, limit_db)
     u_y = [_u_mean(r) for r, ok in zip(usable, in_fit) if ok]
-    budget = build_budget(slope_v_per_db=fit.slope_v_per_db, intercept_v=fit.intercept_v,
-                          u_slope_fit=fit.u_slope_v_per_db, u_intercept_fit_db=fit.u_intercept_dbm,
-                          residual_sd_v=fit.residual_sd_v, x=levels[in_fit], u_y=u_y, accuracy=accuracy or {})
+    budget = build_budget(
+        slope_v_per_db=fit.slope_v_per_db,
+        intercept_v=fit.intercept_v,
+        u_slope_fit=fit.u_slope_v_per_db,
+        u_intercept_fit_db=fit.u_intercept_dbm,
+        residual_sd_v=fit.residual_sd_v,
+        x=levels[in_fit],
+        u_y=u_y,
+        accuracy=accuracy or {},
+    )
     group.slope_mv_per_db = fit.slope_v_per_db * 1e3
     group.slope_u_mv_per_db = expand(budget.slope_u_mv_per_db)
     group.intercept_dbm = fit.intercept_dbm
@@ -235,11 +268,17 @@ def _u_mean(row: Mapping[str, Any]) -> float | None:
     return None if stdev is None or n < 2 else type_a_of_mean(stdev, n)
 
 
-def analyse_run(points: Sequence[Mapping[str, Any]], fit_dbm: tuple[float, float], limit_db: float,
-                accuracy: dict[str, float] | None = None) -> list[GroupResult]:
+def analyse_run(
+    points: Sequence[Mapping[str, Any]],
+    fit_dbm: tuple[float, float],
+    limit_db: float,
+    accuracy: dict[str, float] | None = None,
+) -> list[GroupResult]:
     """One result per group: each frequency (and, once points carry it, each temperature)."""
     groups: dict[tuple[float, float | None], list[Mapping[str, Any]]] = {}
     for row in points:
         groups.setdefault((row["frequency_hz"], row.get("temperature_c")), []).append(row)
-    return [analyse_group(f, rows, fit_dbm, limit_db, accuracy, temperature_c=t)
-            for (f, t), rows in sorted(groups.items(), key=lambda kv: (kv[0][0], kv[0][1] or 0.0))]
+    return [
+        analyse_group(f, rows, fit_dbm, limit_db, accuracy, temperature_c=t)
+        for (f, t), rows in sorted(groups.items(), key=lambda kv: (kv[0][0], kv[0][1] or 0.0))
+    ]

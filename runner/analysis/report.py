@@ -20,10 +20,12 @@ from nightbench.analysis.uncertainty import K_EXPANSION, TERMS, describe_terms
 from nightbench.store.db import Store
 
 ACCURACY_KEYS = tuple(plan_key for _, plan_key, _ in TERMS.values() if plan_key)
-METHOD = ("JCGM 100:2008 (GUM): Type A from the fit and the reading scatter (the larger), Type B from "
-          "the plan's analysis.*_accuracy_* half-widths as rectangular distributions (a/sqrt(3)), "
-          "combined as a root sum of squares, expanded with k = 2")
-RUN_KEYS = ("run_id", "name", "state", "dut_id", "started_at", "finished_at")   # the JSON's run metadata
+METHOD = (
+    "JCGM 100:2008 (GUM): Type A from the fit and the reading scatter (the larger), Type B from "
+    "the plan's analysis.*_accuracy_* half-widths as rectangular distributions (a/sqrt(3)), "
+    "combined as a root sum of squares, expanded with k = 2"
+)
+RUN_KEYS = ("run_id", "name", "state", "dut_id", "started_at", "finished_at")  # the JSON's run metadata
 
 
 def plan_accuracy(analysis: Mapping[str, Any]) -> dict[str, float]:
@@ -42,12 +44,20 @@ class Settings:
 
     @classmethod
     def from_plan(cls, analysis: Mapping[str, Any]) -> Settings:
-        return cls((float(analysis["fit_dbm"][0]), float(analysis["fit_dbm"][1])),
-                   float(analysis["error_limit_db"]), plan_accuracy(analysis))
+        return cls(
+            (float(analysis["fit_dbm"][0]), float(analysis["fit_dbm"][1])),
+            float(analysis["error_limit_db"]),
+            plan_accuracy(analysis),
+        )
 
     def to_json(self) -> dict[str, Any]:
-        return {"fit_dbm": list(self.fit_dbm), "error_limit_db": self.error_limit_db, "k": self.k,
-                "method": METHOD, "uncertainty_terms": describe_terms(self.accuracy)}
+        return {
+            "fit_dbm": list(self.fit_dbm),
+            "error_limit_db": self.error_limit_db,
+            "k": self.k,
+            "method": METHOD,
+            "uncertainty_terms": describe_terms(self.accuracy),
+        }
 
 
 @dataclass
@@ -63,10 +73,12 @@ class Report:
 
     def to_json(self) -> dict[str, Any]:
         """The `report --json` object, exactly (a contract: docs/design.md)."""
-        return {**{k: getattr(self, k) for k in RUN_KEYS},
-                "groups": [g.public() for g in self.groups],
-                "analysis": self.settings.to_json(),
-                "details": [g.detail() for g in self.groups]}
+        return {
+            **{k: getattr(self, k) for k in RUN_KEYS},
+            "groups": [g.public() for g in self.groups],
+            "analysis": self.settings.to_json(),
+            "details": [g.detail() for g in self.groups],
+        }
 
 
 def analyse(run: Mapping[str, Any], points: Sequence[Mapping[str, Any]]) -> Report:
@@ -74,8 +86,16 @@ def analyse(run: Mapping[str, Any], points: Sequence[Mapping[str, Any]]) -> Repo
     its point rows; touches nothing else."""
     settings = Settings.from_plan(json.loads(run["plan_json"])["analysis"])
     groups = analyse_run(points, settings.fit_dbm, settings.error_limit_db, settings.accuracy)
-    return Report(run_id=int(run["id"]), name=run["name"], state=run["state"], dut_id=run["dut_id"],
-                  started_at=run["started_at"], finished_at=run["finished_at"], settings=settings, groups=groups)
+    return Report(
+        run_id=int(run["id"]),
+        name=run["name"],
+        state=run["state"],
+        dut_id=run["dut_id"],
+        started_at=run["started_at"],
+        finished_at=run["finished_at"],
+        settings=settings,
+        groups=groups,
+    )
 
 
 def build_report(store: Store, run_id: int) -> Report:

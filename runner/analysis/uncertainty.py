@@ -25,31 +25,54 @@ K_EXPANSION = 2.0
 
 # key -> (type, plan key or None, what the term is): the words the report prints
 TERMS: dict[str, tuple[str, str | None, str]] = {
-    "fit": ("A", None,
-            "scatter of the points about the fitted line (residual standard deviation, n - 2 degrees "
-            "of freedom), propagated by least squares; includes any curvature of the law in the fit range"),
-    "reading_scatter": ("A", None,
-                        "spread of the samples averaged at each point (s/sqrt(n) of the point's mean), "
-                        "propagated through the fit; the same random effect as 'fit', so only the larger "
-                        "of the two is combined"),
-    "source_level": ("B", "source_level_accuracy_db",
-                     "the source's absolute level accuracy (rectangular): an offset common to every level "
-                     "of a group, so it moves the intercept and not the slope"),
-    "path_loss": ("B", "path_loss_accuracy_db",
-                  "the calibration of the path loss to the DUT input (rectangular): an offset in DUT-plane "
-                  "level, so it moves the intercept and not the slope"),
-    "meter_gain": ("B", "meter_gain_accuracy_pct",
-                   "the meter's gain accuracy, % of reading (rectangular): scales every voltage and so the "
-                   "slope by the same fraction; the intercept (where the line reaches 0 V) does not move"),
-    "meter_offset": ("B", "meter_offset_accuracy_v",
-                     "the meter's offset accuracy, V (rectangular): shifts every voltage, so the intercept by "
-                     "offset/slope; the slope does not move"),
+    "fit": (
+        "A",
+        None,
+        "scatter of the points about the fitted line (residual standard deviation, n - 2 degrees "
+        "of freedom), propagated by least squares; includes any curvature of the law in the fit range",
+    ),
+    "reading_scatter": (
+        "A",
+        None,
+        "spread of the samples averaged at each point (s/sqrt(n) of the point's mean), "
+        "propagated through the fit; the same random effect as 'fit', so only the larger "
+        "of the two is combined",
+    ),
+    "source_level": (
+        "B",
+        "source_level_accuracy_db",
+        "the source's absolute level accuracy (rectangular): an offset common to every level "
+        "of a group, so it moves the intercept and not the slope",
+    ),
+    "path_loss": (
+        "B",
+        "path_loss_accuracy_db",
+        "the calibration of the path loss to the DUT input (rectangular): an offset in DUT-plane "
+        "level, so it moves the intercept and not the slope",
+    ),
+    "meter_gain": (
+        "B",
+        "meter_gain_accuracy_pct",
+        "the meter's gain accuracy, % of reading (rectangular): scales every voltage and so the "
+        "slope by the same fraction; the intercept (where the line reaches 0 V) does not move",
+    ),
+    "meter_offset": (
+        "B",
+        "meter_offset_accuracy_v",
+        "the meter's offset accuracy, V (rectangular): shifts every voltage, so the intercept by "
+        "offset/slope; the slope does not move",
+    ),
 }
 
 # which results each term can move (the others get a structural zero, printed as '-')
-AFFECTS = {"fit": ("slope", "intercept"), "reading_scatter": ("slope", "intercept"),
-           "source_level": ("intercept",), "path_loss": ("intercept",), "meter_gain": ("slope",),
-           "meter_offset": ("intercept",)}
+AFFECTS = {
+    "fit": ("slope", "intercept"),
+    "reading_scatter": ("slope", "intercept"),
+    "source_level": ("intercept",),
+    "path_loss": ("intercept",),
+    "meter_gain": ("slope",),
+    "meter_offset": ("intercept",),
+}
 
 
 def type_a_of_mean(stdev: float, n: int) -> float:
@@ -76,8 +99,8 @@ def expand(u: float, k: float = K_EXPANSION) -> float:
 class Term:
     key: str
     type: str
-    slope_mv_per_db: float      # standard uncertainty contributed to the slope
-    intercept_db: float         # standard uncertainty contributed to the intercept
+    slope_mv_per_db: float  # standard uncertainty contributed to the slope
+    intercept_db: float  # standard uncertainty contributed to the intercept
     included: bool = True
 
 
@@ -95,17 +118,28 @@ class Budget:
         return combine(*(t.intercept_db for t in self.terms if t.included))
 
     def as_dict(self) -> dict[str, Any]:
-        return {"k": self.k,
-                "terms": [{"key": t.key, "type": t.type, "slope_u_mv_per_db": t.slope_mv_per_db,
-                           "intercept_u_db": t.intercept_db, "included": t.included} for t in self.terms],
-                "slope_uc_mv_per_db": self.slope_u_mv_per_db,
-                "intercept_uc_db": self.intercept_u_db,
-                "slope_U_mv_per_db": expand(self.slope_u_mv_per_db, self.k),
-                "intercept_U_db": expand(self.intercept_u_db, self.k)}
+        return {
+            "k": self.k,
+            "terms": [
+                {
+                    "key": t.key,
+                    "type": t.type,
+                    "slope_u_mv_per_db": t.slope_mv_per_db,
+                    "intercept_u_db": t.intercept_db,
+                    "included": t.included,
+                }
+                for t in self.terms
+            ],
+            "slope_uc_mv_per_db": self.slope_u_mv_per_db,
+            "intercept_uc_db": self.intercept_u_db,
+            "slope_U_mv_per_db": expand(self.slope_u_mv_per_db, self.k),
+            "intercept_U_db": expand(self.intercept_u_db, self.k),
+        }
 
 
-def propagate_through_fit(x: np.ndarray, u_y: np.ndarray, intercept_v: float,
-                          slope_v_per_db: float) -> tuple[float, float]:
+def propagate_through_fit(
+    x: np.ndarray, u_y: np.ndarray, intercept_v: float, slope_v_per_db: float
+) -> tuple[float, float]:
     """Standard uncertainties of slope b (V/dB) and intercept x0 = -a/b (dB) from independent u(y_i).
 
     Least squares makes a and b linear in the y_i: b = sum c_i y_i with c_i = (x_i - mean x)/Sxx,
@@ -121,9 +155,17 @@ def propagate_through_fit(x: np.ndarray, u_y: np.ndarray, intercept_v: float,
     return u_b, u_x0
 
 
-def build_budget(*, slope_v_per_db: float, intercept_v: float, u_slope_fit: float, u_intercept_fit_db: float,
-                 residual_sd_v: float, x: ArrayLike, u_y: Sequence[float | None],
-                 accuracy: dict[str, float]) -> Budget:
+def build_budget(
+    *,
+    slope_v_per_db: float,
+    intercept_v: float,
+    u_slope_fit: float,
+    u_intercept_fit_db: float,
+    residual_sd_v: float,
+    x: ArrayLike,
+    u_y: Sequence[float | None],
+    accuracy: dict[str, float],
+) -> Budget:
     """The budget of one fitted group; `accuracy` holds the plan's Type B half-widths by plan key."""
     b_mv = abs(slope_v_per_db) * 1e3
     terms = [Term("fit", "A", u_slope_fit * 1e3, u_intercept_fit_db)]

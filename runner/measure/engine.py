@@ -22,8 +22,8 @@ from nightbench.store.states import RunState
 
 OVERLOAD_READINGS = 3  # consecutive overrange readings that end a point as overloaded
 CEILING_SLACK_DB = 1e-6
-POINT_ATTEMPTS = 4     # a point is tried this often across instrument faults before the run fails
-OPEN_BACKOFF_S = (0.3, 1.0, 0.0)   # waits after each failed attempt to open the instruments
+POINT_ATTEMPTS = 4  # a point is tried this often across instrument faults before the run fails
+OPEN_BACKOFF_S = (0.3, 1.0, 0.0)  # waits after each failed attempt to open the instruments
 
 
 class Interrupted(Exception):
@@ -34,9 +34,10 @@ Progress = Callable[[Point, PointResult, int, int], None]
 
 
 class Engine:
-    def __init__(self, loaded: LoadedPlan, store: Store, run_id: int, stop: StopFlag,
-                 progress: Progress | None = None) -> None:
-        self.loaded = loaded   # with the path's loss model and the sweep's axis order
+    def __init__(
+        self, loaded: LoadedPlan, store: Store, run_id: int, stop: StopFlag, progress: Progress | None = None
+    ) -> None:
+        self.loaded = loaded  # with the path's loss model and the sweep's axis order
         self.plan = loaded.plan
         self.store = store
         self.run_id = run_id
@@ -45,9 +46,14 @@ class Engine:
         self.bench: Bench | None = None
         s = self.plan.settle
         # one detector per run: it learns time constants and noise from point to point
-        self.detector = SettleDetector(s.tolerance_v, samples=self.plan.measure.samples,
-                                       min_wait_s=s.min_wait_s, max_tau_s=s.prior_tau_s, tail_share=s.tail_share)
-        self.last_dbm: float | None = None   # DUT level of the last point; None while RF is off
+        self.detector = SettleDetector(
+            s.tolerance_v,
+            samples=self.plan.measure.samples,
+            min_wait_s=s.min_wait_s,
+            max_tau_s=s.prior_tau_s,
+            tail_share=s.tail_share,
+        )
+        self.last_dbm: float | None = None  # DUT level of the last point; None while RF is off
 
     # -- safety ---------------------------------------------------------------------------
     def _check_ceiling(self, level_dbm: float, frequency_hz: float) -> None:
@@ -55,7 +61,8 @@ class Engine:
         if dut > self.plan.limits.dut_max_dbm + CEILING_SLACK_DB:
             raise SafetyError(
                 f"refusing to set {level_dbm:.2f} dBm at {frequency_hz:g} Hz: {dut:.2f} dBm at the DUT "
-                f"exceeds limits.dut_max_dbm = {self.plan.limits.dut_max_dbm:g} dBm")
+                f"exceeds limits.dut_max_dbm = {self.plan.limits.dut_max_dbm:g} dBm"
+            )
 
     def move_to(self, point: Point) -> None:
         """Set the source for a point without the DUT ever seeing more than the ceiling.
@@ -146,11 +153,16 @@ class Engine:
                 raise Interrupted(self.stop.reason)
             self.bench = self._open_bench()
             store.set_identities(run_id, self.bench.source.identity, self.bench.meter.identity)
-            visit = (fast_edge_order(todo, self.loaded.order, self.detector.level_taus)
-                     if self.plan.settle.level_order == "fast-edge" else todo)
+            visit = (
+                fast_edge_order(todo, self.loaded.order, self.detector.level_taus)
+                if self.plan.settle.level_order == "fast-edge"
+                else todo
+            )
             for point in visit:
-                self.doing = (f"measuring point {point.index} ({point.frequency_hz / 1e6:g} MHz, "
-                              f"{point.power_dbm:g} dBm at the DUT)")
+                self.doing = (
+                    f"measuring point {point.index} ({point.frequency_hz / 1e6:g} MHz, "
+                    f"{point.power_dbm:g} dBm at the DUT)"
+                )
                 result = self._point_with_recovery(point)
                 store.add_point(run_id, point, result)
                 done.add(point.index)
@@ -160,7 +172,7 @@ class Engine:
             state, error = RunState.INTERRUPTED, f"stopped by {exc}"
         except NightbenchError as exc:
             state, error = RunState.FAILED, f"{exc}, while {self.doing}"
-        except BaseException as exc:   # a bug: never recorded as completed; RF still goes off
+        except BaseException as exc:  # a bug: never recorded as completed; RF still goes off
             state, error = RunState.FAILED, f"internal error ({type(exc).__name__}: {exc}), while {self.doing}"
             raise
         finally:
@@ -192,7 +204,7 @@ class Engine:
                 try:
                     self._recover(exc)
                 except NightbenchError:
-                    if self.stop.is_set():   # a signal cut the reconnect short: resumable, not failed
+                    if self.stop.is_set():  # a signal cut the reconnect short: resumable, not failed
                         raise Interrupted(self.stop.reason) from None
                     raise
         raise AssertionError("unreachable")
@@ -224,7 +236,7 @@ class Engine:
             self.store.event(self.run_id, "reconnect", f"reconnecting the {name}")
             self.bench.reconnect(name, self.stop.is_set)
             if name == "source":
-                self.last_dbm = None   # RF was switched off: the next step is a rise from nothing
+                self.last_dbm = None  # RF was switched off: the next step is a rise from nothing
 
     def _make_safe(self) -> str | None:
         """RF off on every way out; if the link is in doubt, a new one is opened to do it (the

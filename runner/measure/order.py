@@ -51,7 +51,7 @@ def fast_edge_order(points: list[Point], order: tuple[str, ...], taus: Taus) -> 
     A generator: each choice is made after the previous point was measured, so what the run has
     just learned counts.
     """
-    outer = order[:order.index(LEVEL_AXIS)]
+    outer = order[: order.index(LEVEL_AXIS)]
     groups: dict[tuple[float, ...], dict[float, list[Point]]] = {}
     for p in points:
         key = tuple(getattr(p, axis) for axis in outer)

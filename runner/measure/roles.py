@@ -34,7 +34,9 @@ def _open(name: str, spec: SourceSpec | DmmSpec | AdcSpec, build: Callable[[Link
         exc.add_context(f"the {name} cannot be opened", resource=spec.resource)
         raise
     steps: tuple[tuple[str, Callable[[], None]], ...] = (
-        ("did not identify itself", role.prove), ("could not be configured", role.configure))
+        ("did not identify itself", role.prove),
+        ("could not be configured", role.configure),
+    )
     for failed, step in steps:
         try:
             step()
@@ -48,20 +50,31 @@ def _open(name: str, spec: SourceSpec | DmmSpec | AdcSpec, build: Callable[[Link
 def open_source(spec: SourceSpec) -> SourceRole:
     """Open the source and make it safe before anything else (RF off, invariant 2)."""
     commands = merged(SOURCE_COMMANDS, spec.commands)
-    return _open("source", spec, lambda link: RfSource.open(link, min_dbm=spec.min_dbm, max_dbm=spec.max_dbm,
-                                                             commands=commands))
+    return _open(
+        "source", spec, lambda link: RfSource.open(link, min_dbm=spec.min_dbm, max_dbm=spec.max_dbm, commands=commands)
+    )
 
 
 def open_meter(spec: DmmSpec | AdcSpec) -> MeterRole:
     if isinstance(spec, AdcSpec):
         adc = spec
-        return _open("meter", adc, lambda link: SerialAdc.open(
-            link, query=adc.query, pattern=adc.pattern, scale=adc.scale, offset=adc.offset, identify=adc.identify,
-            setup=adc.setup, overload=adc.overload))
+        return _open(
+            "meter",
+            adc,
+            lambda link: SerialAdc.open(
+                link,
+                query=adc.query,
+                pattern=adc.pattern,
+                scale=adc.scale,
+                offset=adc.offset,
+                identify=adc.identify,
+                setup=adc.setup,
+                overload=adc.overload,
+            ),
+        )
     commands = merged(METER_COMMANDS, spec.commands)
     dmm = spec
-    return _open("meter", dmm, lambda link: ScpiDmm.open(link, nplc=dmm.nplc, range_v=dmm.range_v,
-                                                         commands=commands))
+    return _open("meter", dmm, lambda link: ScpiDmm.open(link, nplc=dmm.nplc, range_v=dmm.range_v, commands=commands))
 
 
 @dataclass
@@ -107,4 +120,3 @@ class Bench:
     def close(self) -> None:
         for role in (self.source, self.meter):
             role.close()
-

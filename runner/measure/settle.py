@@ -31,29 +31,58 @@ from nightbench.measure.tail import pooled_share, slow_amplitudes, tail_bound, t
 Direction = Literal["rise", "fall"]
 DIRECTIONS: tuple[Direction, Direction] = ("rise", "fall")
 
-GRID_MIN_S = 1e-5          # faster than any reading cadence: such outputs are done before one reading
-GRID_RATIO = 1.04          # 4 % steps in tau: finer than the intervals the data can resolve
-DRIFT_SHARE = 0.75         # accept when the drift bound is within this share of the tolerance
-MIN_READINGS = 2           # A and C; with no residual left, the learned tau interval decides
-DENSE_READINGS = 32        # judge after every reading up to this many, then every n // 32th
-PRIOR_NOISE_DOF = 5        # weight (degrees of freedom) of the noise learned from earlier points
-COMPAT_SCALE = 2.0         # interval: rss within 2 k^2 s^2 of the best (~99.9 %: many looks per point)
-ALONE_DOF = 10             # local degrees of freedom needed before any noise has been learned
-LEARN_KEEP = 7             # recent points whose tau evidence is kept per direction
-NOISE_FLOOR = 1e-3         # noise below this share of the tolerance counts as this much (clean streams)
-NOISE_KEEP = 12            # recent points pooled for the noise prior
-TAIL_SHARE = 0.02          # default: a slow tail may be up to 2 % of a step until the run shows less
-TAIL_KEEP = 12             # recent points whose tail evidence is pooled
-TAIL_READINGS = 160        # at most this many readings enter a tail fit
-STEP_Z = 3.9               # a step is real (has a direction) beyond this many standard errors:
-                           # the best of the grid's time constants is picked, and at 2.33 (one
-                           # t test at 99 %) about 9 % of pure-noise points showed a "step"
+GRID_MIN_S = 1e-5  # faster than any reading cadence: such outputs are done before one reading
+GRID_RATIO = 1.04  # 4 % steps in tau: finer than the intervals the data can resolve
+DRIFT_SHARE = 0.75  # accept when the drift bound is within this share of the tolerance
+MIN_READINGS = 2  # A and C; with no residual left, the learned tau interval decides
+DENSE_READINGS = 32  # judge after every reading up to this many, then every n // 32th
+PRIOR_NOISE_DOF = 5  # weight (degrees of freedom) of the noise learned from earlier points
+COMPAT_SCALE = 2.0  # interval: rss within 2 k^2 s^2 of the best (~99.9 %: many looks per point)
+ALONE_DOF = 10  # local degrees of freedom needed before any noise has been learned
+LEARN_KEEP = 7  # recent points whose tau evidence is kept per direction
+NOISE_FLOOR = 1e-3  # noise below this share of the tolerance counts as this much (clean streams)
+NOISE_KEEP = 12  # recent points pooled for the noise prior
+TAIL_SHARE = 0.02  # default: a slow tail may be up to 2 % of a step until the run shows less
+TAIL_KEEP = 12  # recent points whose tail evidence is pooled
+TAIL_READINGS = 160  # at most this many readings enter a tail fit
+STEP_Z = 3.9  # a step is real (has a direction) beyond this many standard errors:
+# the best of the grid's time constants is picked, and at 2.33 (one
+# t test at 99 %) about 9 % of pure-noise points showed a "step"
 
 # One-sided 99 % quantiles of Student's t for 1..30 degrees of freedom (from memory of the
 # standard table; tests/test_settle.py checks them against scipy.stats.t.ppf).
-_T99 = (31.821, 6.965, 4.541, 3.747, 3.365, 3.143, 2.998, 2.896, 2.821, 2.764, 2.718, 2.681, 2.650,
-        2.624, 2.602, 2.583, 2.567, 2.552, 2.539, 2.528, 2.518, 2.508, 2.500, 2.492, 2.485, 2.479,
-        2.473, 2.467, 2.462, 2.457)
+_T99 = (
+    31.821,
+    6.965,
+    4.541,
+    3.747,
+    3.365,
+    3.143,
+    2.998,
+    2.896,
+    2.821,
+    2.764,
+    2.718,
+    2.681,
+    2.650,
+    2.624,
+    2.602,
+    2.583,
+    2.567,
+    2.552,
+    2.539,
+    2.528,
+    2.518,
+    2.508,
+    2.500,
+    2.492,
+    2.485,
+    2.479,
+    2.473,
+    2.467,
+    2.462,
+    2.457,
+)
 _Z99 = 2.3263
 
 
@@ -87,12 +116,12 @@ class Assessment:
     """The detector's view after a reading: the reason behind a yes or a no, for logs and tests."""
 
     n: int
-    drift_bound_v: float            # upper bound on the mean drift of the next `samples` readings
-    tau_s: float | None             # best-fitting time constant
-    tau_hi_s: float | None          # slowest time constant allowed for
-    noise_v: float | None           # reading noise used (rms)
-    direction: Direction | None     # output direction, if the data or the hint tells it
-    tail_v: float = 0.0             # the part of the bound a slow tail could still cause
+    drift_bound_v: float  # upper bound on the mean drift of the next `samples` readings
+    tau_s: float | None  # best-fitting time constant
+    tau_hi_s: float | None  # slowest time constant allowed for
+    noise_v: float | None  # reading noise used (rms)
+    direction: Direction | None  # output direction, if the data or the hint tells it
+    tail_v: float = 0.0  # the part of the bound a slow tail could still cause
 
 
 @dataclass(frozen=True)
@@ -114,8 +143,15 @@ class SettleDetector:
     and observed directions agree (a detector whose output falls with power flips the mapping).
     """
 
-    def __init__(self, tolerance_v: float, *, samples: int = 4, min_wait_s: float = 0.0,
-                 max_tau_s: float = 5.0, tail_share: float = TAIL_SHARE) -> None:
+    def __init__(
+        self,
+        tolerance_v: float,
+        *,
+        samples: int = 4,
+        min_wait_s: float = 0.0,
+        max_tau_s: float = 5.0,
+        tail_share: float = TAIL_SHARE,
+    ) -> None:
         if tolerance_v <= 0 or max_tau_s <= 0:
             raise ValueError("tolerance_v and max_tau_s must be positive")
         self.tolerance_v = tolerance_v
@@ -126,14 +162,14 @@ class SettleDetector:
         self.grid = GRID_MIN_S * GRID_RATIO ** np.arange(math.ceil(math.log(top / GRID_MIN_S, GRID_RATIO)) + 1)
         self.learned: dict[Direction, deque[Learned]] = {d: deque(maxlen=LEARN_KEEP) for d in DIRECTIONS}
         self.profiles: dict[Direction, deque[np.ndarray]] = {d: deque(maxlen=LEARN_KEEP) for d in DIRECTIONS}
-        self.noise: deque[tuple[float, int]] = deque(maxlen=NOISE_KEEP)   # (rss, dof) per point
-        self.polarity = 0          # +1: hints match the output's direction; -1: they are inverted
+        self.noise: deque[tuple[float, int]] = deque(maxlen=NOISE_KEEP)  # (rss, dof) per point
+        self.polarity = 0  # +1: hints match the output's direction; -1: they are inverted
         self.last: Assessment | None = None
         # slow tails (nightbench.measure.tail): the share allowed for, and what points proved about it
         self.tail_share = tail_share
         self.tail_taus = tail_grid(max_tau_s)
         self.tail_evidence: deque[tuple[np.ndarray, np.ndarray]] = deque(maxlen=TAIL_KEEP)
-        self.settled_v: float | None = None      # the previous point's value: where this step started
+        self.settled_v: float | None = None  # the previous point's value: where this step started
         self.begin(None)
 
     # -- one point ------------------------------------------------------------------------
@@ -172,7 +208,7 @@ class SettleDetector:
         if self.n < MIN_READINGS or t < self.min_wait_s:
             return False
         if self.n > DENSE_READINGS and self.n % (self.n // DENSE_READINGS):
-            return False           # long settles: judge every ~3 % of the elapsed readings (CPU)
+            return False  # long settles: judge every ~3 % of the elapsed readings (CPU)
         self.last = self._assess()
         return self.last.drift_bound_v <= DRIFT_SHARE * self.tolerance_v
 
@@ -189,18 +225,17 @@ class SettleDetector:
         s2 = max((float(rss[best]) + nu0 * s0) / (dof + nu0), (NOISE_FLOOR * self.tolerance_v) ** 2)
         k = t99(dof + nu0)
         self._learn_tail(best, s2, float(c[best]))
-        direction = step_direction(c[best], math.sqrt(s2 / sxx[best]) if sxx[best] > 0 else math.inf,
-                                   dof + nu0)
+        direction = step_direction(c[best], math.sqrt(s2 / sxx[best]) if sxx[best] > 0 else math.inf, dof + nu0)
         if direction is None:
-            return None            # no step to learn from (or too small to tell its direction)
+            return None  # no step to learn from (or too small to tell its direction)
         if self.hint is not None:
             self.polarity = max(-3, min(3, self.polarity + (1 if self.hint == direction else -1)))
-        profile = (rss - rss[best]) / s2          # deviance of each tau against the best one
+        profile = (rss - rss[best]) / s2  # deviance of each tau against the best one
         self.profiles[direction].append(profile)
         inside = np.flatnonzero(profile <= k * k)
         lo, hi = int(inside[0]), int(inside[-1])
         if hi == len(self.grid) - 1:
-            return None            # the data cannot tell how slow: no interval of its own
+            return None  # the data cannot tell how slow: no interval of its own
         fact = Learned(direction, float(self.grid[best]), float(self.grid[lo]), float(self.grid[hi]))
         self.learned[direction].append(fact)
         return fact
@@ -281,7 +316,7 @@ class SettleDetector:
         lo, hi = self.prior(direction)
         plausible = (self.grid >= lo / GRID_RATIO) & (self.grid <= hi * GRID_RATIO)
         allowed = compatible & plausible
-        if not allowed.any():          # data and prior disagree: allow for both
+        if not allowed.any():  # data and prior disagree: allow for both
             allowed = compatible | plausible
         # mean of exp(-(t_j - t_first)/tau) over the next `samples` readings at the cadence so far
         step = (self.t_last - self.t_first) / (self.n - 1)
@@ -292,11 +327,10 @@ class SettleDetector:
             bound = np.where(u > 0, (np.abs(c[allowed]) + k * se_c[allowed]) * u, 0.0)
         main = float(bound.max())
         tail = 0.0
-        if main <= DRIFT_SHARE * self.tolerance_v:     # only then can a tail be what holds the point
+        if main <= DRIFT_SHARE * self.tolerance_v:  # only then can a tail be what holds the point
             fast = int(np.flatnonzero(allowed)[np.argmin(rss[allowed])])
             tail = self._tail_drift(fast, s2, k, float(c[fast]), ahead[:, 0])
-        return Assessment(self.n, main + tail, float(self.grid[best]), float(tau.max()),
-                          math.sqrt(s2), direction, tail)
+        return Assessment(self.n, main + tail, float(self.grid[best]), float(tau.max()), math.sqrt(s2), direction, tail)
 
     # -- slow tails -----------------------------------------------------------------------
     def _step_v(self, c_best: float, i: int) -> float:
@@ -305,7 +339,7 @@ class SettleDetector:
         final = self.y0 + (self.sy - c_best * self.sx[i]) / self.n if self.n else self.y0
         seen = abs(self.ys[-1] - self.ys[0]) + abs(c_best) if self.ys else 0.0
         if self.settled_v is None or abs(final - self.settled_v) < seen:
-            return -math.copysign(seen, c_best)    # C > 0: the output is above its final value, a fall
+            return -math.copysign(seen, c_best)  # C > 0: the output is above its final value, a fall
         return final - self.settled_v
 
     def _tail_caps(self, k: float) -> np.ndarray:
@@ -324,7 +358,7 @@ class SettleDetector:
         remaining = np.exp(-ahead[:, None] / self.tail_taus[None, :]).mean(axis=0)
         remaining = np.where(self.tail_taus >= fast_tau_s * 3.0, remaining, 0.0)
         if float((caps * remaining).max(initial=0.0)) <= 0.05 * self.tolerance_v:
-            return 0.0                 # the largest tail allowed for is negligible: no fit needed
+            return 0.0  # the largest tail allowed for is negligible: no fit needed
         t, y = self._tail_readings()
         amp, se = slow_amplitudes(t, y, fast_tau_s, self.tail_taus, s2)
         return tail_bound(amp, se, k, caps, remaining)
@@ -340,9 +374,9 @@ class SettleDetector:
         """Keep what this point's readings prove about a tail's share of its step, and its value."""
         fast_tau_s = float(self.grid[best])
         step = self._step_v(c_best, best)
-        self.settled_v = float(np.mean(self.ys[-self.samples:]))
+        self.settled_v = float(np.mean(self.ys[-self.samples :]))
         if self.tail_share <= 0 or abs(step) < 20 * self.tolerance_v:
-            return                     # a small step says little about a share of it
+            return  # a small step says little about a share of it
         t, y = self._tail_readings()
         amp, se = slow_amplitudes(t, y, fast_tau_s, self.tail_taus, s2)
         self.tail_evidence.append((amp / step, se / step))

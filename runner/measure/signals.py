@@ -21,7 +21,7 @@ class StopFlag:
 
     def __init__(self) -> None:
         self._event = threading.Event()
-        self._lock = threading.RLock()   # re-entrant: a signal handler may run while the main thread holds it
+        self._lock = threading.RLock()  # re-entrant: a signal handler may run while the main thread holds it
         self._children: list[StopFlag] = []
         self.reason: str | None = None
 
@@ -57,6 +57,7 @@ class StopFlag:
 
     def install(self) -> StopFlag:
         """Route SIGINT and SIGTERM to this flag (main thread only); the reason is the signal's name."""
+
         def handler(signum: int, frame: FrameType | None) -> None:
             self.set(signal.Signals(signum).name)
 

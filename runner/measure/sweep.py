@@ -15,11 +15,11 @@ if TYPE_CHECKING:
 class Point:
     index: int
     frequency_hz: float
-    power_dbm: float      # at the DUT input
-    source_dbm: float     # what the source is set to: DUT level plus path loss, on the grid below
+    power_dbm: float  # at the DUT input
+    source_dbm: float  # what the source is set to: DUT level plus path loss, on the grid below
 
 
-LEVEL_STEP_DB = 0.001     # the source level is commanded with three decimals
+LEVEL_STEP_DB = 0.001  # the source level is commanded with three decimals
 
 
 def source_level(power_dbm: float, loss_db: float) -> float:

@@ -21,9 +21,9 @@ import math
 
 import numpy as np
 
-TAIL_SEPARATION = 3.0    # a tail is at least this much slower than the main part's time constant
-TAIL_GRID_RATIO = 1.25   # coarse steps in tau_s: the bound varies slowly with it
-TAIL_GRID_MIN_S = 1e-3   # tails faster than this are done within a few readings: the main fit sees them
+TAIL_SEPARATION = 3.0  # a tail is at least this much slower than the main part's time constant
+TAIL_GRID_RATIO = 1.25  # coarse steps in tau_s: the bound varies slowly with it
+TAIL_GRID_MIN_S = 1e-3  # tails faster than this are done within a few readings: the main fit sees them
 
 
 def tail_grid(max_tau_s: float) -> np.ndarray:
@@ -34,8 +34,9 @@ def tail_grid(max_tau_s: float) -> np.ndarray:
     return max_tau_s / TAIL_GRID_RATIO ** np.arange(n, -1, -1)
 
 
-def slow_amplitudes(t: np.ndarray, y: np.ndarray, fast_tau_s: float, taus: np.ndarray,
-                    s2: float) -> tuple[np.ndarray, np.ndarray]:
+def slow_amplitudes(
+    t: np.ndarray, y: np.ndarray, fast_tau_s: float, taus: np.ndarray, s2: float
+) -> tuple[np.ndarray, np.ndarray]:
     """Least-squares C_s and its standard error for each tau_s (t from the first reading).
 
     Columns 1, exp(-t/tau_f), exp(-t/tau_s): a 3x3 normal-equation solve per tau_s. Where the
@@ -49,7 +50,7 @@ def slow_amplitudes(t: np.ndarray, y: np.ndarray, fast_tau_s: float, taus: np.nd
         return amp, se
     slow = taus[use]
     xf = np.exp(-t / fast_tau_s)
-    xs = np.exp(-t[None, :] / slow[:, None])                  # (m, n)
+    xs = np.exp(-t[None, :] / slow[:, None])  # (m, n)
     g = np.empty((len(slow), 3, 3))
     g[:, 0, 0] = float(len(t))
     g[:, 0, 1] = g[:, 1, 0] = xf.sum()
@@ -78,7 +79,7 @@ def tail_bound(amp: np.ndarray, se: np.ndarray, k: float, cap_v: np.ndarray, rem
     of it still to come (`remaining`, the mean of exp(-t/tau_s) over the readings ahead).
     """
     hi = np.abs(amp) + k * se
-    shown = (np.abs(amp) - k * se) > cap_v          # the data show more tail than the cap: believe them
+    shown = (np.abs(amp) - k * se) > cap_v  # the data show more tail than the cap: believe them
     bounded = np.where(shown, hi, np.minimum(hi, cap_v))
     with np.errstate(invalid="ignore"):
         drift = np.where(remaining > 0, bounded * remaining, 0.0)

@@ -12,11 +12,35 @@ from typing import TextIO
 
 from nightbench.store.db import Store
 
-COLUMNS = ["frequency_hz", "power_dbm", "source_dbm", "value_v", "stdev_v", "samples", "settle_s", "settled",
-           "overload", "settle_readings", "idx", "measured_at"]
+COLUMNS = [
+    "frequency_hz",
+    "power_dbm",
+    "source_dbm",
+    "value_v",
+    "stdev_v",
+    "samples",
+    "settle_s",
+    "settled",
+    "overload",
+    "settle_readings",
+    "idx",
+    "measured_at",
+]
 # the run's metadata in a JSON export; the plan comes both parsed (as validated) and as the exact text
-RUN_METADATA = ("name", "state", "dut_id", "points_total", "created_at", "started_at", "finished_at", "error",
-                "host", "source_idn", "meter_idn", "plan_file")
+RUN_METADATA = (
+    "name",
+    "state",
+    "dut_id",
+    "points_total",
+    "created_at",
+    "started_at",
+    "finished_at",
+    "error",
+    "host",
+    "source_idn",
+    "meter_idn",
+    "plan_file",
+)
 
 
 def write_export(store: Store, run_id: int, fmt: str, out: TextIO) -> None:
@@ -28,6 +52,9 @@ def write_export(store: Store, run_id: int, fmt: str, out: TextIO) -> None:
         writer.writerows(rows)
         return
     meta = {k: run[k] for k in RUN_METADATA}
-    json.dump({"run_id": run_id, **meta, "plan": json.loads(run["plan_json"]), "plan_text": run["plan_text"],
-               "points": rows}, out, indent=1)
+    json.dump(
+        {"run_id": run_id, **meta, "plan": json.loads(run["plan_json"]), "plan_text": run["plan_text"], "points": rows},
+        out,
+        indent=1,
+    )
     out.write("\n")

@@ -41,8 +41,9 @@ def write_results_csv(reports: list[Report], path: Path) -> Path:
         writer.writeheader()
         for report in reports:
             for g in report.groups:
-                writer.writerow({"run_id": report.run_id,
-                                 **row_values({f.name: g.value(f.name) for f in fields}, fields)})
+                writer.writerow(
+                    {"run_id": report.run_id, **row_values({f.name: g.value(f.name) for f in fields}, fields)}
+                )
     return path
 
 

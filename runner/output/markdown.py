@@ -12,7 +12,7 @@ from nightbench.store.fields import TABLE_FIELDS, Field
 
 
 def _md(text: str) -> str:
-    return text.replace("|", "\\|")   # a bar inside a cell would end it
+    return text.replace("|", "\\|")  # a bar inside a cell would end it
 
 
 def _header(f: Field) -> str:
@@ -20,22 +20,32 @@ def _header(f: Field) -> str:
 
 
 def _results(report: Report) -> list[str]:
-    out = ["| " + " | ".join(_md(_header(f)) for f in TABLE_FIELDS) + " |",
-           "|" + " ---: |" * len(TABLE_FIELDS)]
+    out = ["| " + " | ".join(_md(_header(f)) for f in TABLE_FIELDS) + " |", "|" + " ---: |" * len(TABLE_FIELDS)]
     out += ["| " + " | ".join(_md(cell(f, g)) for f in TABLE_FIELDS) + " |" for g in report.groups]
     return out
 
 
 def _run_section(report: Report) -> list[str]:
     s = report.settings
-    return [f"## Run {report.run_id}: {report.name}", "",
-            f"- DUT: {report.dut_id or 'not given'}; state: {report.state}; "
-            f"started {report.started_at or '-'}, finished {report.finished_at or '-'}",
-            f"- straight line fitted over {s.fit_dbm[0]:g} .. {s.fit_dbm[1]:g} dBm at the DUT; dynamic "
-            f"range = contiguous span with |error| <= {s.error_limit_db:g} dB, ends interpolated to 0.1 dB "
-            "('<=' or '>=': the sweep ended first)",
-            f"- ± is the expanded uncertainty U = k u_c with k = {s.k:g}: {s.to_json()['method']}", "",
-            *_results(report), "", "```", *render_budget(report), "", *render_excluded(report), "```", ""]
+    return [
+        f"## Run {report.run_id}: {report.name}",
+        "",
+        f"- DUT: {report.dut_id or 'not given'}; state: {report.state}; "
+        f"started {report.started_at or '-'}, finished {report.finished_at or '-'}",
+        f"- straight line fitted over {s.fit_dbm[0]:g} .. {s.fit_dbm[1]:g} dBm at the DUT; dynamic "
+        f"range = contiguous span with |error| <= {s.error_limit_db:g} dB, ends interpolated to 0.1 dB "
+        "('<=' or '>=': the sweep ended first)",
+        f"- ± is the expanded uncertainty U = k u_c with k = {s.k:g}: {s.to_json()['method']}",
+        "",
+        *_results(report),
+        "",
+        "```",
+        *render_budget(report),
+        "",
+        *render_excluded(report),
+        "```",
+        "",
+    ]
 
 
 def markdown_summary(reports: list[Report], comparison_text: str | None, files: list[str]) -> str:

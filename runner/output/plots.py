@@ -28,8 +28,7 @@ def _label(report: Report, group: GroupResult, several: bool) -> str:
 
 
 def _title(reports: list[Report]) -> str:
-    parts = [f"run {r.run_id} {r.name}" + (f" (DUT {r.dut_id})" if r.dut_id else "")
-             for r in reports]
+    parts = [f"run {r.run_id} {r.name}" + (f" (DUT {r.dut_id})" if r.dut_id else "") for r in reports]
     return " vs ".join(parts)
 
 
@@ -74,18 +73,31 @@ def transfer_plot(reports: list[Report], path: Path) -> Path:
     for r_i, colour, g, label in _groups(reports):
         used = [c for c in g.curve if c["error_db"] is not None]
         left_out = [c for c in g.curve if c["error_db"] is None and c["value_v"] is not None]
-        ax.plot([c["power_dbm"] for c in used], [c["value_v"] for c in used], MARKERS[r_i], ms=3.5,
-                color=colour, label=label)
+        ax.plot(
+            [c["power_dbm"] for c in used],
+            [c["value_v"] for c in used],
+            MARKERS[r_i],
+            ms=3.5,
+            color=colour,
+            label=label,
+        )
         if left_out:
-            ax.plot([c["power_dbm"] for c in left_out], [c["value_v"] for c in left_out], "x", ms=7, mew=1.5,
-                    color="tab:red", zorder=5, label=left_out_label)
+            ax.plot(
+                [c["power_dbm"] for c in left_out],
+                [c["value_v"] for c in left_out],
+                "x",
+                ms=7,
+                mew=1.5,
+                color="tab:red",
+                zorder=5,
+                label=left_out_label,
+            )
             left_out_label = "_nolegend_"
         line = g.line
         if line is not None:
             levels = [c["power_dbm"] for c in g.curve]
             xs = [min(levels), max(levels)]
-            ax.plot(xs, [line.intercept_v + line.slope_v_per_db * x for x in xs], LINESTYLES[r_i],
-                    lw=0.9, color=colour)
+            ax.plot(xs, [line.intercept_v + line.slope_v_per_db * x for x in xs], LINESTYLES[r_i], lw=0.9, color=colour)
     _level_axes(ax, reports, "detector output (V)", "Transfer curve and straight-line fit")
     return _save(fig, path)
 
@@ -97,8 +109,16 @@ def conformance_plot(reports: list[Report], path: Path) -> Path:
     limit = reports[0].settings.error_limit_db
     for r_i, colour, g, label in _groups(reports):
         used = [c for c in g.curve if c["error_db"] is not None]
-        ax.plot([c["power_dbm"] for c in used], [c["error_db"] for c in used], LINESTYLES[r_i],
-                marker=MARKERS[r_i], ms=2.5, lw=0.9, color=colour, label=label)
+        ax.plot(
+            [c["power_dbm"] for c in used],
+            [c["error_db"] for c in used],
+            LINESTYLES[r_i],
+            marker=MARKERS[r_i],
+            ms=2.5,
+            lw=0.9,
+            color=colour,
+            label=label,
+        )
         for end in (g.range_low_dbm, g.range_high_dbm):
             if end is not None:
                 ax.axvline(end, color=colour, lw=0.6, ls=":")
@@ -116,10 +136,24 @@ def slope_intercept_plot(reports: list[Report], path: Path) -> Path:
         fitted = [g for g in report.groups if g.slope_mv_per_db is not None]
         mhz = [g.frequency_hz / 1e6 for g in fitted]
         name = f"run {report.run_id}" + (f" ({report.dut_id})" if report.dut_id else "")
-        top.errorbar(mhz, [g.slope_mv_per_db for g in fitted], yerr=[g.slope_u_mv_per_db for g in fitted],
-                     fmt=MARKERS[r_i] + LINESTYLES[r_i], capsize=3, ms=4, label=name)
-        bottom.errorbar(mhz, [g.intercept_dbm for g in fitted], yerr=[g.intercept_u_db for g in fitted],
-                        fmt=MARKERS[r_i] + LINESTYLES[r_i], capsize=3, ms=4, label=name)
+        top.errorbar(
+            mhz,
+            [g.slope_mv_per_db for g in fitted],
+            yerr=[g.slope_u_mv_per_db for g in fitted],
+            fmt=MARKERS[r_i] + LINESTYLES[r_i],
+            capsize=3,
+            ms=4,
+            label=name,
+        )
+        bottom.errorbar(
+            mhz,
+            [g.intercept_dbm for g in fitted],
+            yerr=[g.intercept_u_db for g in fitted],
+            fmt=MARKERS[r_i] + LINESTYLES[r_i],
+            capsize=3,
+            ms=4,
+            label=name,
+        )
     top.set_ylabel("slope (mV/dB)")
     bottom.set_ylabel("intercept (dBm)")
     bottom.set_xlabel("frequency (MHz)")
@@ -131,5 +165,8 @@ def slope_intercept_plot(reports: list[Report], path: Path) -> Path:
 
 
 def write_plots(reports: list[Report], out: Path) -> list[Path]:
-    return [transfer_plot(reports, out / "transfer.png"), conformance_plot(reports, out / "conformance.png"),
-            slope_intercept_plot(reports, out / "slope-intercept.png")]
+    return [
+        transfer_plot(reports, out / "transfer.png"),
+        conformance_plot(reports, out / "conformance.png"),
+        slope_intercept_plot(reports, out / "slope-intercept.png"),
+    ]

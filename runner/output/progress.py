@@ -15,13 +15,23 @@ def progress_printer(name: str, run_id: int) -> Iterator[Any]:
         return
     from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
 
-    with Progress(TextColumn(f"run {run_id} {name}"), BarColumn(), MofNCompleteColumn(),
-                  TextColumn("{task.fields[where]}"), TimeRemainingColumn(), transient=False) as bar:
+    with Progress(
+        TextColumn(f"run {run_id} {name}"),
+        BarColumn(),
+        MofNCompleteColumn(),
+        TextColumn("{task.fields[where]}"),
+        TimeRemainingColumn(),
+        transient=False,
+    ) as bar:
         task = bar.add_task("sweep", total=None, where="")
 
         def update(point: Any, result: Any, done: int, total: int) -> None:
             flag = "" if result.settled else " (unsettled)"
-            bar.update(task, completed=done, total=total,
-                       where=f"{point.frequency_hz / 1e6:.3f} MHz {point.power_dbm:+.1f} dBm{flag}")
+            bar.update(
+                task,
+                completed=done,
+                total=total,
+                where=f"{point.frequency_hz / 1e6:.3f} MHz {point.power_dbm:+.1f} dBm{flag}",
+            )
 
         yield update

@@ -56,8 +56,7 @@ def align(rows: Sequence[Sequence[str]]) -> list[str]:
 
 
 def title(report: Report) -> str:
-    return (f"run {report.run_id} {report.name} ({report.state})"
-            + (f", DUT {report.dut_id}" if report.dut_id else ""))
+    return f"run {report.run_id} {report.name} ({report.state})" + (f", DUT {report.dut_id}" if report.dut_id else "")
 
 
 def render_table(report: Report) -> str:
@@ -72,9 +71,11 @@ def render_table(report: Report) -> str:
     if not report.groups:
         lines.append(f"{'':{width}} no points stored for this run")
     s = report.settings
-    lines.append(f"fit over {s.fit_dbm[0]:g} .. {s.fit_dbm[1]:g} dBm; range where |error| <= "
-                 f"{s.error_limit_db:g} dB ('<=', '>=': the sweep ends first); "
-                 f"± is the expanded uncertainty U (k = {s.k:g})")
+    lines.append(
+        f"fit over {s.fit_dbm[0]:g} .. {s.fit_dbm[1]:g} dBm; range where |error| <= "
+        f"{s.error_limit_db:g} dB ('<=', '>=': the sweep ends first); "
+        f"± is the expanded uncertainty U (k = {s.k:g})"
+    )
     lines += ["", *render_budget(report), "", *render_excluded(report)]
     return "\n".join(lines)
 
@@ -87,15 +88,17 @@ def render_budget(report: Report) -> list[str]:
         term_key = "slope_u_mv_per_db" if quantity == "slope" else "intercept_u_db"
         out.append(f"{quantity} budget: standard uncertainties in {unit} (* = combined)")
         widths = [max(len(k), 7) + 1 for k in keys]
-        out.append(f"{header(FREQUENCY):>10} " + " ".join(f"{k:>{w}}" for k, w in zip(keys, widths))
-                   + f" {'u_c':>8} {'U (k=2)':>8}")
+        out.append(
+            f"{header(FREQUENCY):>10} "
+            + " ".join(f"{k:>{w}}" for k, w in zip(keys, widths))
+            + f" {'u_c':>8} {'U (k=2)':>8}"
+        )
         for g in report.groups:
             if g.budget is None:
                 continue
             u = g.budget.as_dict()
             terms = {t["key"]: t for t in u["terms"]}
-            cells = [f"{_term(terms.get(k), term_key, fmt, quantity in AFFECTS[k]):>{w}}"
-                     for k, w in zip(keys, widths)]
+            cells = [f"{_term(terms.get(k), term_key, fmt, quantity in AFFECTS[k]):>{w}}" for k, w in zip(keys, widths)]
             uc = u["slope_uc_mv_per_db"] if quantity == "slope" else u["intercept_uc_db"]
             big = u["slope_U_mv_per_db"] if quantity == "slope" else u["intercept_U_db"]
             out.append(f"{shown(FREQUENCY, g):>10} " + " ".join(cells) + f" {uc:8{fmt}} {big:8{fmt}}")
@@ -103,15 +106,18 @@ def render_budget(report: Report) -> list[str]:
     for t in report.settings.to_json()["uncertainty_terms"]:
         stated = ""
         if "plan_key" in t:
-            stated = (f", ±{t['half_width']:g} from {t['plan_key']}" if t["half_width"]
-                      else f", not stated ({t['plan_key']} = 0)")
+            stated = (
+                f", ±{t['half_width']:g} from {t['plan_key']}"
+                if t["half_width"]
+                else f", not stated ({t['plan_key']} = 0)"
+            )
         out.append(f"  {t['key']} (Type {t['type']}{stated}): {t['what']}")
     return out
 
 
 def _term(term: dict[str, Any] | None, key: str, fmt: str, affects: bool) -> str:
     if term is None:
-        return "n/a "    # e.g. no reading scatter when a point has a single sample
+        return "n/a "  # e.g. no reading scatter when a point has a single sample
     if not affects:
         return "- "
     return num(term[key], fmt) + ("*" if term["included"] else " ")
@@ -136,12 +142,13 @@ def render_excluded(report: Report, shown_levels: int = 12) -> list[str]:
 
 # -- two runs ---------------------------------------------------------------------------------
 
+
 def _label(report: Report) -> str:
     return f"run {report.run_id} {report.name}" + (f" (DUT {report.dut_id})" if report.dut_id else "")
 
 
 def _diff_unit(f: Field) -> str:
-    return "dB" if f.unit == "dBm" else f.unit   # a difference of two levels is a ratio
+    return "dB" if f.unit == "dBm" else f.unit  # a difference of two levels is a ratio
 
 
 def _exceeds(diff: float | None, u: float | None) -> str:
@@ -174,11 +181,12 @@ def render_comparison(cmp: Comparison) -> str:
                 row.append(num(d.values[f.diff], "+" + f.fmt))
         rows.append(row)
     lines = [f"A = {_label(cmp.a)}", f"B = {_label(cmp.b)}", *align(rows)]
-    lines.append("± is the Type A part of both runs' expanded uncertainties (k = 2), right on one bench where the "
-                 "Type B terms are shared; '!' marks a difference larger than it. With all terms: "
-                 "slope_diff_u_* and intercept_diff_u_* in --json.")
+    lines.append(
+        "± is the Type A part of both runs' expanded uncertainties (k = 2), right on one bench where the "
+        "Type B terms are shared; '!' marks a difference larger than it. With all terms: "
+        "slope_diff_u_* and intercept_diff_u_* in --json."
+    )
     for which, freqs in (("A", cmp.only_in_a_hz), ("B", cmp.only_in_b_hz)):
         if freqs:
             lines.append(f"only in {which}: " + ", ".join(f"{f / 1e6:g} MHz" for f in freqs))
     return "\n".join(lines)
-

@@ -24,6 +24,7 @@ FIT_SLACK_DB = 1e-9
 
 def check_consistency(plan: Plan, path: PathModel, file: str, lines: dict[KeyPath, int]) -> None:
     """Raise InputError (file, line, key) for the first cross-section problem."""
+
     def fail(message: str, *key: str) -> InputError:
         return at_key(message, key, file, lines)
 
@@ -34,8 +35,9 @@ def check_consistency(plan: Plan, path: PathModel, file: str, lines: dict[KeyPat
     ceiling = plan.limits.dut_max_dbm
     top = max(levels)
     if top > ceiling:
-        raise fail(f"level {top:g} dBm exceeds the DUT ceiling limits.dut_max_dbm = {ceiling:g} dBm",
-                   "sweep", "power_dbm")
+        raise fail(
+            f"level {top:g} dBm exceeds the DUT ceiling limits.dut_max_dbm = {ceiling:g} dBm", "sweep", "power_dbm"
+        )
     src = plan.instruments.source
     for f in freqs:
         try:
@@ -44,8 +46,12 @@ def check_consistency(plan: Plan, path: PathModel, file: str, lines: dict[KeyPat
             raise from_problem(exc, file, lines) from None
         lo, hi = min(levels) + loss, top + loss
         if lo < src.min_dbm or hi > src.max_dbm:
-            raise fail(f"at {f:g} Hz the source would need {lo:.2f} to {hi:.2f} dBm, outside its limits "
-                       f"[{src.min_dbm:g}, {src.max_dbm:g}] dBm", "sweep", "power_dbm")
+            raise fail(
+                f"at {f:g} Hz the source would need {lo:.2f} to {hi:.2f} dBm, outside its limits "
+                f"[{src.min_dbm:g}, {src.max_dbm:g}] dBm",
+                "sweep",
+                "power_dbm",
+            )
     _check_fit_range(plan, levels, fail)
 
 
@@ -55,9 +61,17 @@ def _check_fit_range(plan: Plan, levels: list[float], fail: Callable[..., InputE
     inside = sorted({lv for lv in levels if low - FIT_SLACK_DB <= lv <= high + FIT_SLACK_DB})
     span = f"[{low:g}, {high:g}] dBm"
     if not inside:
-        raise fail(f"the fit range {span} lies wholly outside the sweep's levels ({min(levels):g} to "
-                   f"{max(levels):g} dBm): the report could fit nothing", "analysis", "fit_dbm")
+        raise fail(
+            f"the fit range {span} lies wholly outside the sweep's levels ({min(levels):g} to "
+            f"{max(levels):g} dBm): the report could fit nothing",
+            "analysis",
+            "fit_dbm",
+        )
     if len(inside) < MIN_FIT_LEVELS:
-        raise fail(f"the fit range {span} holds {len(inside)} of the sweep's levels "
-                   f"({', '.join(f'{lv:g}' for lv in inside)} dBm); a line fit with uncertainties needs "
-                   f"at least {MIN_FIT_LEVELS}", "analysis", "fit_dbm")
+        raise fail(
+            f"the fit range {span} holds {len(inside)} of the sweep's levels "
+            f"({', '.join(f'{lv:g}' for lv in inside)} dBm); a line fit with uncertainties needs "
+            f"at least {MIN_FIT_LEVELS}",
+            "analysis",
+            "fit_dbm",
+        )

@@ -16,7 +16,7 @@ from typing import Any
 from nightbench.drivers.errors import InputError
 from nightbench.plan.yamlfile import read_text
 
-MAX_REFERENCED_BYTES = 16 << 20   # a dense network-analyser sweep runs to a few MB
+MAX_REFERENCED_BYTES = 16 << 20  # a dense network-analyser sweep runs to a few MB
 
 
 class PlanProblem(ValueError):
@@ -34,8 +34,12 @@ class PlanProblem(ValueError):
 class PlanFiles:
     """Reads referenced files from disk (relative to `base_dir`) or from a run's snapshot."""
 
-    def __init__(self, base_dir: Path | None, snapshot: Mapping[str, str] | None = None,
-                 snapshot_label: str = "the run's snapshot") -> None:
+    def __init__(
+        self,
+        base_dir: Path | None,
+        snapshot: Mapping[str, str] | None = None,
+        snapshot_label: str = "the run's snapshot",
+    ) -> None:
         self.base_dir = base_dir or Path(".")
         self.snapshot = dict(snapshot) if snapshot is not None else None
         self.snapshot_label = snapshot_label

@@ -47,8 +47,9 @@ def axis_order(data: Mapping[str, Any]) -> tuple[str, ...]:
     return tuple(k for k in data["sweep"] if k in AXES)
 
 
-def parse_plan(text: str, file: str, *, base_dir: Path | None = None,
-               files: Mapping[str, str] | None = None) -> LoadedPlan:
+def parse_plan(
+    text: str, file: str, *, base_dir: Path | None = None, files: Mapping[str, str] | None = None
+) -> LoadedPlan:
     """Validate plan text; raise InputError naming file, line and key path of the first problem.
 
     Referenced files are read relative to `base_dir` (default: the plan file's folder), or, when

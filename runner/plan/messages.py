@@ -20,7 +20,7 @@ if TYPE_CHECKING:
 # a union (a list of values, or a {start, stop, step} span) reports each branch; a branch whose
 # shape the input did not have only says "should be a list"
 SHAPE_ERRORS = {"list_type", "model_type", "model_attributes_type", "dict_type", "tuple_type"}
-MAX_ALSO = 5    # further problems listed after the first
+MAX_ALSO = 5  # further problems listed after the first
 
 
 def line_for(path: KeyPath, lines: dict[KeyPath, int]) -> int | None:
@@ -67,9 +67,12 @@ def from_validation(exc: ValidationError, file: str, lines: dict[KeyPath, int]) 
     """The first problem as the error (its line and key), up to MAX_ALSO more in the message."""
     located = [(_key_path(tuple(e["loc"])), e) for e in exc.errors()]
     # drop a shape complaint when another branch has something to say about the same key
-    errors = [e for p, e in located
-              if e.get("type") not in SHAPE_ERRORS
-              or not any(q[:len(p)] == p and o.get("type") not in SHAPE_ERRORS for q, o in located if o is not e)]
+    errors = [
+        e
+        for p, e in located
+        if e.get("type") not in SHAPE_ERRORS
+        or not any(q[: len(p)] == p and o.get("type") not in SHAPE_ERRORS for q, o in located if o is not e)
+    ]
     # the same location may be reported once per union branch: keep the first of each
     seen: dict[KeyPath, str] = {}
     for err in errors:

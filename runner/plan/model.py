@@ -48,7 +48,7 @@ class _Link(_Strict):
 
     resource: Resource
     timeout_s: Positive = 2.0
-    visa_library: str = "@py"          # another VISA library for sites that have one
+    visa_library: str = "@py"  # another VISA library for sites that have one
     baud_rate: Annotated[int, Field(gt=0, le=10_000_000)] | None = None
 
 
@@ -69,8 +69,8 @@ def _meter_commands(value: dict[str, str] | None) -> dict[str, str] | None:
 
 class SourceSpec(_Link):
     driver: Literal["scpi-source"]
-    min_dbm: Finite = DEFAULT_MIN_DBM   # the source's own level limits (the driver's defaults); plans beyond
-    max_dbm: Finite = DEFAULT_MAX_DBM   # them are refused
+    min_dbm: Finite = DEFAULT_MIN_DBM  # the source's own level limits (the driver's defaults); plans beyond
+    max_dbm: Finite = DEFAULT_MAX_DBM  # them are refused
     commands: Annotated[dict[str, str] | None, AfterValidator(_source_commands)] = None
 
     @model_validator(mode="after")
@@ -107,9 +107,9 @@ class AdcSpec(_Link):
     pattern: Annotated[str, AfterValidator(_regex)]
     scale: Annotated[float, Field(allow_inf_nan=False)]
     offset: Finite = 0.0
-    identify: str | None = None        # a query whose reply names the board
-    setup: list[str] = []              # queries sent once after opening
-    overload: str | None = None        # a reply containing this is an overrange reading
+    identify: str | None = None  # a query whose reply names the board
+    setup: list[str] = []  # queries sent once after opening
+    overload: str | None = None  # a reply containing this is an overrange reading
 
     @field_validator("scale")
     @classmethod
@@ -145,9 +145,9 @@ class PathElementSpec(_Strict):
     name: Annotated[str, Field(min_length=1, max_length=80)] | None = None
     loss_db: Finite | None = None
     table: Annotated[list[tuple[Positive, Finite]], Field(min_length=1)] | None = None
-    touchstone: Annotated[str, Field(min_length=1)] | None = None   # relative to the plan file
+    touchstone: Annotated[str, Field(min_length=1)] | None = None  # relative to the plan file
     coupler: CouplerSpec | None = None
-    extrapolate: Extrapolate = "none"   # beyond a table or file: refused unless hold or linear
+    extrapolate: Extrapolate = "none"  # beyond a table or file: refused unless hold or linear
 
     @model_validator(mode="after")
     def _one_form(self) -> PathElementSpec:
@@ -243,9 +243,9 @@ class Settle(_Strict):
 
     tolerance_v: Positive
     timeout_s: Positive
-    min_wait_s: NonNegative = 0.0     # never accept sooner after a change (a DUT with a known dead time)
+    min_wait_s: NonNegative = 0.0  # never accept sooner after a change (a DUT with a known dead time)
     max_tau_s: Positive | None = None  # slowest time constant allowed for before one is learned
-    level_order: Literal["planned", "fast-edge"] = "planned"   # fast-edge: sweep levels toward the faster edge
+    level_order: Literal["planned", "fast-edge"] = "planned"  # fast-edge: sweep levels toward the faster edge
     # the share of a step a slow tail may have until the readings bound it (measure/tail.py);
     # 0 for a part known to have none: large steps then settle as fast as their main response
     tail_share: Annotated[float, Field(ge=0, le=0.5, allow_inf_nan=False)] = 0.02
@@ -266,10 +266,10 @@ class Analysis(_Strict):
     error_limit_db: Positive = 1.0
     # What the bench's data sheets promise, as half-widths of rectangular distributions (the
     # Type B inputs of JCGM 100:2008, 4.3.7). 0 = not stated: the term is shown as 0, not guessed.
-    source_level_accuracy_db: NonNegative = 0.0   # absolute level accuracy of the source, +/- dB
-    path_loss_accuracy_db: NonNegative = 0.0      # calibration of the path loss, +/- dB
-    meter_gain_accuracy_pct: NonNegative = 0.0    # meter accuracy, +/- % of reading
-    meter_offset_accuracy_v: NonNegative = 0.0    # meter offset (the "% of range" part), +/- V
+    source_level_accuracy_db: NonNegative = 0.0  # absolute level accuracy of the source, +/- dB
+    path_loss_accuracy_db: NonNegative = 0.0  # calibration of the path loss, +/- dB
+    meter_gain_accuracy_pct: NonNegative = 0.0  # meter accuracy, +/- % of reading
+    meter_offset_accuracy_v: NonNegative = 0.0  # meter offset (the "% of range" part), +/- V
 
     @field_validator("fit_dbm")
     @classmethod

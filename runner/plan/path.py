@@ -26,7 +26,7 @@ if TYPE_CHECKING:
     from nightbench.plan.model import PathElementSpec, PathSpec
 
 Key = tuple[Any, ...]
-REL_SLACK = 1e-9     # a frequency this close to a table's end counts as on it (900e6 vs 9.0e8)
+REL_SLACK = 1e-9  # a frequency this close to a table's end counts as on it (900e6 vs 9.0e8)
 
 
 class PathModel(Protocol):
@@ -84,7 +84,9 @@ class Interpolated:
             if self.extrapolate == "none":
                 raise PlanProblem(
                     f"{f:g} Hz lies outside {self.label} ({freqs[0]:g} to {freqs[-1]:g} Hz); extend the data "
-                    "or allow it with extrapolate: hold (end value) or linear (end slope)", self.key)
+                    "or allow it with extrapolate: hold (end value) or linear (end slope)",
+                    self.key,
+                )
             if self.extrapolate == "hold" or len(freqs) == 1:
                 return losses[0] if f < freqs[0] else losses[-1]
             i = 1 if f < freqs[0] else len(freqs) - 1
@@ -124,8 +126,9 @@ class Chain:
 def build_path(spec: PathSpec, files: PlanFiles) -> PathModel:
     """The model for a validated `path` section; PlanProblem/InputError for what keys cannot say."""
     if spec.elements is not None:
-        return Chain(tuple(_element(e, files, ("path", "elements", i), f"element {i + 1}")
-                           for i, e in enumerate(spec.elements)))
+        return Chain(
+            tuple(_element(e, files, ("path", "elements", i), f"element {i + 1}") for i, e in enumerate(spec.elements))
+        )
     return _element(spec, files, ("path",), "")
 
 
@@ -137,12 +140,16 @@ def _element(spec: PathElementSpec, files: PlanFiles, key: Key, default_label: s
         arm_loss = c.coupling_db if c.arm == "coupled" else mainline_loss_db(c.coupling_db)
         loss = arm_loss + c.excess_loss_db
         extra = f" + {c.excess_loss_db:g} dB excess" if c.excess_loss_db else ""
-        return Constant(spec.name or f"{default_label} coupler".strip(), loss,
-                        f"{c.coupling_db:g} dB coupler, {c.arm} arm{extra} = {loss:.4f} dB")
+        return Constant(
+            spec.name or f"{default_label} coupler".strip(),
+            loss,
+            f"{c.coupling_db:g} dB coupler, {c.arm} arm{extra} = {loss:.4f} dB",
+        )
     if spec.table is not None:
         freqs, losses = _sorted_table(spec.table, key + ("table",))
-        return Interpolated(spec.name or f"{default_label} table".strip(), freqs, losses, spec.extrapolate,
-                            key + ("table",), "table")
+        return Interpolated(
+            spec.name or f"{default_label} table".strip(), freqs, losses, spec.extrapolate, key + ("table",), "table"
+        )
     assert spec.touchstone is not None
     from nightbench.plan.touchstone import parse_touchstone
 
@@ -150,12 +157,18 @@ def _element(spec: PathElementSpec, files: PlanFiles, key: Key, default_label: s
     try:
         data = parse_touchstone(text, name)
         losses = tuple(data.loss_db())
-    except InputError as exc:   # the file's own line, and the plan key that named the file
+    except InputError as exc:  # the file's own line, and the plan key that named the file
         exc.key = ".".join(map(str, key + ("touchstone",)))
         raise
     ref = "/".join(f"{r:g}" for r in dict.fromkeys(data.reference_ohm))
-    return Interpolated(spec.name or spec.touchstone, data.frequency_hz, losses, spec.extrapolate,
-                        key + ("touchstone",), f"Touchstone {data.version}, |S21| at {ref} ohm")
+    return Interpolated(
+        spec.name or spec.touchstone,
+        data.frequency_hz,
+        losses,
+        spec.extrapolate,
+        key + ("touchstone",),
+        f"Touchstone {data.version}, |S21| at {ref} ohm",
+    )
 
 
 def _sorted_table(rows: list[tuple[float, float]], key: Key) -> tuple[tuple[float, ...], tuple[float, ...]]:
@@ -169,8 +182,11 @@ def _sorted_table(rows: list[tuple[float, float]], key: Key) -> tuple[tuple[floa
         if freqs and f == freqs[-1]:
             if loss != losses[-1]:
                 j = first[f]
-                raise PlanProblem(f"{f:g} Hz appears twice with different losses ({losses[-1]:g} dB in row "
-                                  f"{j + 1}, {loss:g} dB in row {i + 1})", key + (max(i, j),))
+                raise PlanProblem(
+                    f"{f:g} Hz appears twice with different losses ({losses[-1]:g} dB in row "
+                    f"{j + 1}, {loss:g} dB in row {i + 1})",
+                    key + (max(i, j),),
+                )
             continue
         first[f] = i
         freqs.append(f)

@@ -48,7 +48,7 @@ class Touchstone:
     reference_ohm: tuple[float, ...]
     frequency_hz: tuple[float, ...]
     s: tuple[tuple[complex, complex, complex, complex], ...]
-    lines: tuple[int, ...]          # the line each frequency's data starts on, for messages
+    lines: tuple[int, ...]  # the line each frequency's data starts on, for messages
 
     def loss_db(self) -> list[float]:
         """-20 log10 |S21| per frequency (positive = loss); a zero |S21| is no usable path."""
@@ -56,8 +56,9 @@ class Touchstone:
         for f, s, line in zip(self.frequency_hz, self.s, self.lines):
             mag = abs(s[1])
             if mag == 0.0:
-                raise InputError(f"|S21| is zero at {f:g} Hz: the path passes no signal there",
-                                 file=self.name, line=line)
+                raise InputError(
+                    f"|S21| is zero at {f:g} Hz: the path passes no signal there", file=self.name, line=line
+                )
             out.append(-20.0 * math.log10(mag))
         return out
 
@@ -113,12 +114,14 @@ class _Reader:
                 reference = float(tokens[i + 1])
                 i += 1
             else:
-                raise self.fail(f"unknown option '{token}' (units Hz/kHz/MHz/GHz, parameter S, "
-                                "format RI/MA/DB, R <ohms>)", line)
+                raise self.fail(
+                    f"unknown option '{token}' (units Hz/kHz/MHz/GHz, parameter S, format RI/MA/DB, R <ohms>)", line
+                )
             i += 1
         if parameter != "s":
-            raise self.fail(f"the file holds {parameter.upper()} parameters; a path loss needs S parameters "
-                            "(|S21|)", line)
+            raise self.fail(
+                f"the file holds {parameter.upper()} parameters; a path loss needs S parameters (|S21|)", line
+            )
         return _Options(unit, parameter, data_format, reference)
 
     def pair(self, a: float, b: float, data_format: str) -> complex:
@@ -160,8 +163,9 @@ def _parse_v1(reader: _Reader) -> Touchstone:
                 options = reader.options(line, content)
             continue  # 1.1: option lines after the first are ignored
         if content.startswith("["):
-            raise reader.fail("keywords in [brackets] belong to Touchstone 2.0; the file must start with "
-                              "[Version] 2.0", line)
+            raise reader.fail(
+                "keywords in [brackets] belong to Touchstone 2.0; the file must start with [Version] 2.0", line
+            )
         if options is None:
             raise reader.fail("data before the option line (# <unit> S <format> R <ohms>)", line)
         values = reader.numbers(line, content)
@@ -187,8 +191,13 @@ def _parse_v2(reader: _Reader) -> Touchstone:
 
 
 V2_SECTIONS = {"begin information": "information", "network data": "network", "noise data": "noise"}
-V2_HEADER = ("number of ports", "two-port data order", "number of frequencies", "number of noise frequencies",
-             "matrix format")
+V2_HEADER = (
+    "number of ports",
+    "two-port data order",
+    "number of frequencies",
+    "number of noise frequencies",
+    "matrix format",
+)
 
 
 class _V2Walk:
@@ -257,7 +266,7 @@ class _V2Walk:
         if self.section == "network":
             self.tokens.extend((line, v) for v in self.reader.numbers(line, content))
         elif self.section == "noise":
-            self.reader.numbers(line, content)   # checked, then skipped
+            self.reader.numbers(line, content)  # checked, then skipped
         else:
             raise self.reader.fail("data outside [Network Data]", line)
 
@@ -286,35 +295,46 @@ class _V2Walk:
         references = tuple(self.reference) if self.reference else (options.reference_ohm,) * 2
         result = _build(reader, "2.0", options, references, self.tokens, order, matrix)
         if not count.isdigit() or int(count) != len(result.frequency_hz):
-            raise reader.fail(f"[Number of Frequencies] says {count} but the file holds "
-                              f"{len(result.frequency_hz)}", count_line)
+            raise reader.fail(
+                f"[Number of Frequencies] says {count} but the file holds {len(result.frequency_hz)}", count_line
+            )
         return result
 
 
-def _build(reader: _Reader, version: str, options: _Options, references: tuple[float, ...],
-           tokens: list[tuple[int, float]], order: str, matrix: str) -> Touchstone:
+def _build(
+    reader: _Reader,
+    version: str,
+    options: _Options,
+    references: tuple[float, ...],
+    tokens: list[tuple[int, float]],
+    order: str,
+    matrix: str,
+) -> Touchstone:
     width = 9 if matrix == "full" else 7
     if not tokens:
         raise reader.fail("the file holds no network data", None)
     if len(tokens) % width:
         line = tokens[len(tokens) - len(tokens) % width][0]
-        raise reader.fail(f"a two-port frequency needs {width} values (frequency and "
-                          f"{(width - 1) // 2} complex numbers); the data ends part-way through one", line)
+        raise reader.fail(
+            f"a two-port frequency needs {width} values (frequency and "
+            f"{(width - 1) // 2} complex numbers); the data ends part-way through one",
+            line,
+        )
     scale = UNITS[options.unit]
     freqs: list[float] = []
     matrices: list[tuple[complex, complex, complex, complex]] = []
     lines: list[int] = []
     for start in range(0, len(tokens), width):
         line = tokens[start][0]
-        values = [v for _, v in tokens[start:start + width]]
+        values = [v for _, v in tokens[start : start + width]]
         f = values[0] * scale
         if f < 0 or (freqs and f <= freqs[-1]):
             raise reader.fail("frequencies must be positive and increase from line to line", line)
         n = [reader.pair(values[i], values[i + 1], options.data_format) for i in range(1, width, 2)]
-        if matrix == "lower":        # rows of the lower triangle: N11; N21 N22 (symmetric)
+        if matrix == "lower":  # rows of the lower triangle: N11; N21 N22 (symmetric)
             s11, s21, s22 = n
             s12 = s21
-        elif matrix == "upper":      # rows of the upper triangle: N11 N12; N22 (symmetric)
+        elif matrix == "upper":  # rows of the upper triangle: N11 N12; N22 (symmetric)
             s11, s12, s22 = n
             s21 = s12
         elif order == "21_12":
@@ -324,5 +344,6 @@ def _build(reader: _Reader, version: str, options: _Options, references: tuple[f
         freqs.append(f)
         matrices.append((s11, s21, s12, s22))
         lines.append(line)
-    return Touchstone(reader.name, version, options.unit, options.data_format, references, tuple(freqs),
-                      tuple(matrices), tuple(lines))
+    return Touchstone(
+        reader.name, version, options.unit, options.data_format, references, tuple(freqs), tuple(matrices), tuple(lines)
+    )

@@ -42,20 +42,26 @@ def _line_map(root: yaml.Node, file: str) -> dict[KeyPath, int]:
         budget[0] -= 1
         if budget[0] < 0:
             raise InputError(
-                f"the document expands to more than {MAX_NODES} values (too many aliases?); refused",
-                file=file)
+                f"the document expands to more than {MAX_NODES} values (too many aliases?); refused", file=file
+            )
         lines.setdefault(path, node.start_mark.line + 1)
         if isinstance(node, yaml.MappingNode):
             seen: set[Any] = set()
             for key_node, value_node in node.value:
                 key = key_node.value
                 if not isinstance(key, str):
-                    raise InputError("a key must be a plain name, not a list or mapping", file=file,
-                                     line=key_node.start_mark.line + 1)
-                if key in seen:   # YAML loaders keep the last silently: a typo'd copy would win
-                    raise InputError(f"key '{key}' appears twice in the same mapping", file=file,
-                                     line=key_node.start_mark.line + 1,
-                                     key=".".join(map(str, path + (key,))))
+                    raise InputError(
+                        "a key must be a plain name, not a list or mapping",
+                        file=file,
+                        line=key_node.start_mark.line + 1,
+                    )
+                if key in seen:  # YAML loaders keep the last silently: a typo'd copy would win
+                    raise InputError(
+                        f"key '{key}' appears twice in the same mapping",
+                        file=file,
+                        line=key_node.start_mark.line + 1,
+                        key=".".join(map(str, path + (key,))),
+                    )
                 seen.add(key)
                 lines.setdefault(path + (key,), key_node.start_mark.line + 1)
                 stack.append((value_node, path + (key,)))

@@ -17,8 +17,8 @@ import time
 from datetime import datetime
 from pathlib import Path
 
-FOREIGN_STALE_S = 900.0   # a run of another host counts as abandoned after this long without a heartbeat
-START_SLACK_S = 2.0       # /proc gives the boot time in whole seconds
+FOREIGN_STALE_S = 900.0  # a run of another host counts as abandoned after this long without a heartbeat
+START_SLACK_S = 2.0  # /proc gives the boot time in whole seconds
 PROC = Path("/proc")
 
 
@@ -42,9 +42,9 @@ def _alive(pid: int, heartbeat_ts: float | None) -> bool:
     except ProcessLookupError:
         return False
     except PermissionError:
-        pass   # someone else's process: it exists
+        pass  # someone else's process: it exists
     state, started = _proc_stat(pid)
-    if state in ("Z", "X"):   # a zombie, or ended since os.kill
+    if state in ("Z", "X"):  # a zombie, or ended since os.kill
         return False
     return not (started is not None and heartbeat_ts is not None and started > heartbeat_ts + START_SLACK_S)
 
@@ -56,12 +56,11 @@ def _proc_stat(pid: int) -> tuple[str | None, float | None]:
         return None, None
     try:
         stat = (PROC / str(pid) / "stat").read_text()
-    except (FileNotFoundError, ProcessLookupError):   # it exited since os.kill (or hidepid=2 hides it: not ours)
+    except (FileNotFoundError, ProcessLookupError):  # it exited since os.kill (or hidepid=2 hides it: not ours)
         return "X", None
-    except PermissionError:   # hidepid=1: listed but unreadable; the pid alone decides
+    except PermissionError:  # hidepid=1: listed but unreadable; the pid alone decides
         return None, None
-    boot = next(int(line.split()[1]) for line in (PROC / "stat").read_text().splitlines()
-                if line.startswith("btime "))
-    fields = stat.rsplit(")", 1)[1].split()   # the command name in parentheses may hold spaces
+    boot = next(int(line.split()[1]) for line in (PROC / "stat").read_text().splitlines() if line.startswith("btime "))
+    fields = stat.rsplit(")", 1)[1].split()  # the command name in parentheses may hold spaces
     # proc(5): field 3 is the state, field 22 the start time in clock ticks after boot
     return fields[0], boot + int(fields[19]) / os.sysconf("SC_CLK_TCK")

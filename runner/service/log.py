@@ -15,14 +15,14 @@ from typing import Any, TextIO
 
 from nightbench.store.db import now_iso
 
-PRIORITY = {"info": 6, "warning": 4, "error": 3}   # syslog severities (RFC 5424)
+PRIORITY = {"info": 6, "warning": 4, "error": 3}  # syslog severities (RFC 5424)
 
 
 def _value(value: Any) -> str:
     text = str(value)
     if text and text.isprintable() and not any(c in text for c in ' "=\\'):
         return text
-    return json.dumps(text, ensure_ascii=False)   # quoted, with quotes and newlines escaped
+    return json.dumps(text, ensure_ascii=False)  # quoted, with quotes and newlines escaped
 
 
 def _to_journal(stream: TextIO) -> bool:

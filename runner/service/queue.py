@@ -26,7 +26,7 @@ from nightbench.store.db import Store, now_iso
 from nightbench.store.errors import StoreError, is_busy
 from nightbench.store.states import JOB_FINISHED, JOB_PENDING, JobState, RunState, ServiceState, sql_in
 
-if TYPE_CHECKING:   # the plan model (pydantic) is imported only where a plan is read: `queue` stays quick
+if TYPE_CHECKING:  # the plan model (pydantic) is imported only where a plan is read: `queue` stays quick
     from nightbench.plan.load import LoadedPlan
 
 
@@ -64,8 +64,18 @@ class JobQueue:
             cur = self.conn.execute(
                 "INSERT INTO jobs (plan_name, plan_file, plan_text, files_json, points_total, not_before,"
                 " not_before_ts, submitted_at, state) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                (loaded.plan.name, os.path.abspath(loaded.file), loaded.text, json.dumps(loaded.files),
-                 len(expand(loaded)), shown, at.timestamp(), now_iso(), JobState.QUEUED))
+                (
+                    loaded.plan.name,
+                    os.path.abspath(loaded.file),
+                    loaded.text,
+                    json.dumps(loaded.files),
+                    len(expand(loaded)),
+                    shown,
+                    at.timestamp(),
+                    now_iso(),
+                    JobState.QUEUED,
+                ),
+            )
         return _new_id(cur), shown
 
     def adopt(self, run_id: int) -> int:
@@ -78,8 +88,19 @@ class JobQueue:
             cur = self.conn.execute(
                 "INSERT INTO jobs (plan_name, plan_file, plan_text, files_json, points_total, not_before,"
                 " not_before_ts, submitted_at, state, run_id) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                (row["name"], row["plan_file"], row["plan_text"], json.dumps(files), row["points_total"],
-                 at.isoformat(timespec="seconds"), at.timestamp(), now_iso(), JobState.INTERRUPTED, run_id))
+                (
+                    row["name"],
+                    row["plan_file"],
+                    row["plan_text"],
+                    json.dumps(files),
+                    row["points_total"],
+                    at.isoformat(timespec="seconds"),
+                    at.timestamp(),
+                    now_iso(),
+                    JobState.INTERRUPTED,
+                    run_id,
+                ),
+            )
         return _new_id(cur)
 
     def job(self, job_id: int) -> Job:
@@ -97,10 +118,22 @@ class JobQueue:
         with self._sql("listing the jobs"):
             rows = self.conn.execute(
                 "SELECT j.*, COALESCE(c.points_done, 0) AS points_done FROM jobs j"
-                " LEFT JOIN run_counts c ON c.run_id = j.run_id ORDER BY j.id").fetchall()
-        return [{"id": r["id"], "name": r["plan_name"], "state": r["state"], "not_before": r["not_before"],
-                 "submitted_at": r["submitted_at"], "run_id": r["run_id"], "points_done": r["points_done"],
-                 "points_total": r["points_total"], "error": r["error"]} for r in rows]
+                " LEFT JOIN run_counts c ON c.run_id = j.run_id ORDER BY j.id"
+            ).fetchall()
+        return [
+            {
+                "id": r["id"],
+                "name": r["plan_name"],
+                "state": r["state"],
+                "not_before": r["not_before"],
+                "submitted_at": r["submitted_at"],
+                "run_id": r["run_id"],
+                "points_done": r["points_done"],
+                "points_total": r["points_total"],
+                "error": r["error"],
+            }
+            for r in rows
+        ]
 
     def job_of_run(self, run_id: int) -> Job | None:
         with self._sql(f"looking for the job of run {run_id}"):
@@ -113,8 +146,9 @@ class JobQueue:
 
         with self._sql(f"reading the plan of job {job.id}"):
             row = self.conn.execute("SELECT plan_text, files_json FROM jobs WHERE id=?", (job.id,)).fetchone()
-        return parse_plan(row["plan_text"], job.plan_file or f"job {job.id} plan snapshot",
-                          files=json.loads(row["files_json"]))
+        return parse_plan(
+            row["plan_text"], job.plan_file or f"job {job.id} plan snapshot", files=json.loads(row["files_json"])
+        )
 
     # -- what serve does ------------------------------------------------------------------
     def next_due(self, now_ts: float) -> Job | None:
@@ -123,20 +157,24 @@ class JobQueue:
         with self._sql("looking for the next job"):
             row = self.conn.execute(
                 f"SELECT * FROM jobs WHERE state IN {sql_in(JOB_PENDING)} AND not_before_ts <= ?"
-                " ORDER BY state = ?, not_before_ts, id LIMIT 1", (now_ts, JobState.QUEUED)).fetchone()
+                " ORDER BY state = ?, not_before_ts, id LIMIT 1",
+                (now_ts, JobState.QUEUED),
+            ).fetchone()
         return _job(row) if row else None
 
     def next_later(self) -> tuple[Job, float] | None:
         """The pending job that comes due first, and when (epoch seconds)."""
         with self._sql("looking for the next job"):
-            row = self.conn.execute(f"SELECT * FROM jobs WHERE state IN {sql_in(JOB_PENDING)}"
-                                    " ORDER BY not_before_ts, id LIMIT 1").fetchone()
+            row = self.conn.execute(
+                f"SELECT * FROM jobs WHERE state IN {sql_in(JOB_PENDING)} ORDER BY not_before_ts, id LIMIT 1"
+            ).fetchone()
         return (_job(row), row["not_before_ts"]) if row else None
 
     def start(self, job_id: int, run_id: int) -> None:
         with self._sql(f"starting job {job_id}"):
-            self.conn.execute("UPDATE jobs SET state=?, run_id=?, error=NULL WHERE id=?",
-                              (JobState.RUNNING, run_id, job_id))
+            self.conn.execute(
+                "UPDATE jobs SET state=?, run_id=?, error=NULL WHERE id=?", (JobState.RUNNING, run_id, job_id)
+            )
 
     def finish(self, job_id: int, state: str, error: str | None = None) -> None:
         with self._sql(f"storing the end of job {job_id}"):
@@ -174,7 +212,7 @@ class JobQueue:
         """Polled often beside a running job: reads one column, not the job's plan snapshot."""
         with self._sql(f"reading job {job_id}"):
             row = self.conn.execute("SELECT cancel_requested FROM jobs WHERE id=?", (job_id,)).fetchone()
-        if row is None:   # jobs are never deleted: a missing one is a caller's mistake, not "no"
+        if row is None:  # jobs are never deleted: a missing one is a caller's mistake, not "no"
             raise InputError(f"there is no job {job_id}", file=self.store.path)
         return bool(row[0])
 
@@ -182,9 +220,11 @@ class JobQueue:
     def service_started(self) -> None:
         now = now_iso()
         with self._sql("registering the service"):
-            self.conn.execute("INSERT OR REPLACE INTO service (id, pid, host, state, started_at, heartbeat_at)"
-                              " VALUES (1, ?, ?, ?, ?, ?)",
-                              (os.getpid(), socket.gethostname(), ServiceState.SERVING, now, now))
+            self.conn.execute(
+                "INSERT OR REPLACE INTO service (id, pid, host, state, started_at, heartbeat_at)"
+                " VALUES (1, ?, ?, ?, ?, ?)",
+                (os.getpid(), socket.gethostname(), ServiceState.SERVING, now, now),
+            )
 
     def heartbeat(self, run_id: int | None = None) -> None:
         now = now_iso()
@@ -195,8 +235,9 @@ class JobQueue:
 
     def service_stopped(self) -> None:
         with self._sql("storing the service's stop"):
-            self.conn.execute("UPDATE service SET state=?, heartbeat_at=? WHERE id=1",
-                              (ServiceState.STOPPED, now_iso()))
+            self.conn.execute(
+                "UPDATE service SET state=?, heartbeat_at=? WHERE id=1", (ServiceState.STOPPED, now_iso())
+            )
 
     def service_status(self) -> dict[str, Any] | None:
         """The last service of this database: pid, host, state, started_at, heartbeat_at, and
@@ -208,8 +249,9 @@ class JobQueue:
         if row is None:
             return None
         status = dict(row)
-        status["alive"] = (row["state"] == ServiceState.SERVING
-                           and not owner_gone(row["pid"], row["host"], row["heartbeat_at"]))
+        status["alive"] = row["state"] == ServiceState.SERVING and not owner_gone(
+            row["pid"], row["host"], row["heartbeat_at"]
+        )
         return status
 
 
@@ -219,8 +261,15 @@ def points_text(store: Store, run_id: int) -> str:
 
 
 def _job(row: Any) -> Job:
-    return Job(row["id"], row["plan_name"], row["plan_file"], JobState(row["state"]), row["not_before"], row["run_id"],
-               bool(row["cancel_requested"]))
+    return Job(
+        row["id"],
+        row["plan_name"],
+        row["plan_file"],
+        JobState(row["state"]),
+        row["not_before"],
+        row["run_id"],
+        bool(row["cancel_requested"]),
+    )
 
 
 def _new_id(cur: sqlite3.Cursor) -> int:

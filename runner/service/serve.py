@@ -25,9 +25,9 @@ from nightbench.store.db import Store
 from nightbench.store.errors import StoreError
 from nightbench.store.states import JobState, RunState
 
-CANCELLED = "cancel"          # the stop reason a `nightbench cancel` gives the engine
-WATCH_POLL_S = 0.2            # how often a running job looks for a cancel
-HEARTBEAT_S = 2.0             # how often the service and its run write their heartbeat
+CANCELLED = "cancel"  # the stop reason a `nightbench cancel` gives the engine
+WATCH_POLL_S = 0.2  # how often a running job looks for a cancel
+HEARTBEAT_S = 2.0  # how often the service and its run write their heartbeat
 
 
 class ServiceLock:
@@ -50,8 +50,11 @@ class ServiceLock:
         except BlockingIOError:
             holder = os.read(fd, 200).decode(errors="replace").strip() or "another process"
             os.close(fd)
-            raise InputError(f"another `nightbench serve` ({holder}) is already serving this database; "
-                             "one service per bench, so this one does not start", file=self.db) from None
+            raise InputError(
+                f"another `nightbench serve` ({holder}) is already serving this database; "
+                "one service per bench, so this one does not start",
+                file=self.db,
+            ) from None
         os.ftruncate(fd, 0)
         os.write(fd, f"pid {os.getpid()} on {socket.gethostname()}\n".encode())
         self.fd = fd
@@ -114,12 +117,12 @@ class Service:
     def __init__(self, db: str, poll_s: float = 1.0) -> None:
         self.db = db
         self.poll_s = poll_s
-        self.stop = StopFlag()     # set by SIGTERM/SIGINT; each job's run gets a child of it
+        self.stop = StopFlag()  # set by SIGTERM/SIGINT; each job's run gets a child of it
         self._waiting_for: int | None = None
         self._last_beat = time.monotonic()
 
     def serve(self) -> int:
-        lock = ServiceLock(self.db).acquire()    # before anything is read, written or contacted
+        lock = ServiceLock(self.db).acquire()  # before anything is read, written or contacted
         self.stop.install()
         store = Store(self.db)
         queue = JobQueue(store)
@@ -164,14 +167,19 @@ class Service:
         try:
             loaded = snapshot_plan(store, job.run_id) if job.run_id else queue.plan(job)
             run_id = job.run_id or new_run(store, loaded)
-        except InputError as exc:   # a snapshot this version cannot read: the job fails, the night goes on
+        except InputError as exc:  # a snapshot this version cannot read: the job fails, the night goes on
             queue.finish(job.id, JobState.FAILED, str(exc))
             log("job-end", level="error", job=job.id, state=JobState.FAILED, error=str(exc))
             return
         queue.start(job.id, run_id)
-        log("job-resume" if job.run_id else "job-start", job=job.id, run=run_id, plan=job.plan_name,
-            points=points_text(store, run_id))
-        run_stop = self.stop.child()   # a signal stops the run and the service; a cancel only the run
+        log(
+            "job-resume" if job.run_id else "job-start",
+            job=job.id,
+            run=run_id,
+            plan=job.plan_name,
+            points=points_text(store, run_id),
+        )
+        run_stop = self.stop.child()  # a signal stops the run and the service; a cancel only the run
         try:
             with Watch(self.db, job.id, run_id, run_stop):
                 state, error = Engine(loaded, store, run_id, run_stop).run()
@@ -183,5 +191,12 @@ class Service:
         if state == RunState.INTERRUPTED and run_stop.reason == CANCELLED:
             job_state, error = JobState.CANCELLED, f"cancelled while running; run {run_id} stays interrupted"
         queue.finish(job.id, job_state, error)
-        log("job-end", level="error" if job_state == JobState.FAILED else "info", job=job.id, run=run_id,
-            state=job_state, points=points_text(store, run_id), error=error)
+        log(
+            "job-end",
+            level="error" if job_state == JobState.FAILED else "info",
+            job=job.id,
+            run=run_id,
+            state=job_state,
+            points=points_text(store, run_id),
+            error=error,
+        )

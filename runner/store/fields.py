@@ -20,20 +20,20 @@ from typing import Any
 
 @dataclass(frozen=True)
 class Field:
-    name: str                 # JSON key; also the SQL and CSV column unless `columns` says otherwise
-    unit: str                 # of the value as stored and in JSON ('' for counts and text)
-    fmt: str = ""             # format spec of a value in the tables
+    name: str  # JSON key; also the SQL and CSV column unless `columns` says otherwise
+    unit: str  # of the value as stored and in JSON ('' for counts and text)
+    fmt: str = ""  # format spec of a value in the tables
     header: str | None = None  # column label in the tables; None: no column of its own
-    public: bool = True       # in the `report --json` groups
-    sql: str = "REAL"         # type (and constraint) in the fits table
-    view: bool = True         # a column of v_fits
-    csv: bool = True          # a column of results.csv
+    public: bool = True  # in the `report --json` groups
+    sql: str = "REAL"  # type (and constraint) in the fits table
+    view: bool = True  # a column of v_fits
+    csv: bool = True  # a column of results.csv
     columns: tuple[str, ...] = ()  # SQL/CSV columns of a pair value (fit_dbm is stored as low, high)
-    scale: float = 1.0        # the tables show value * scale ...
+    scale: float = 1.0  # the tables show value * scale ...
     shown_unit: str | None = None  # ... in this unit (default: `unit`)
     with_u: str | None = None  # the field of its expanded uncertainty: shown as 'value ±U'
-    to: str | None = None     # the other end of a span: shown as 'low .. high'
-    diff: str | None = None   # its key in the B - A comparison
+    to: str | None = None  # the other end of a span: shown as 'low .. high'
+    diff: str | None = None  # its key in the B - A comparison
 
     @property
     def sql_columns(self) -> tuple[str, ...]:
@@ -89,5 +89,8 @@ def row_values(values: dict[str, Any], fields: Sequence[Field] = FIELDS) -> dict
 def fits_table_sql() -> str:
     """`CREATE TABLE fits`: the run, every stored column in declaration order, when it was analysed."""
     cols = [f"    {c} {f.sql}" for f in FIELDS for c in f.sql_columns]
-    return ("CREATE TABLE IF NOT EXISTS fits (\n    run_id INTEGER NOT NULL REFERENCES runs(id),\n"
-            + ",\n".join(cols) + ",\n    analysed_at TEXT NOT NULL\n);\n")
+    return (
+        "CREATE TABLE IF NOT EXISTS fits (\n    run_id INTEGER NOT NULL REFERENCES runs(id),\n"
+        + ",\n".join(cols)
+        + ",\n    analysed_at TEXT NOT NULL\n);\n"
+    )

@@ -15,8 +15,8 @@ class RunState(StrEnum):
     QUEUED = "queued"
     RUNNING = "running"
     COMPLETED = "completed"
-    INTERRUPTED = "interrupted"      # stopped by a signal or a cancel, or its process is gone: resumable
-    FAILED = "failed"                # an instrument fault it could not recover from
+    INTERRUPTED = "interrupted"  # stopped by a signal or a cancel, or its process is gone: resumable
+    FAILED = "failed"  # an instrument fault it could not recover from
 
 
 class JobState(StrEnum):
@@ -35,7 +35,7 @@ class ServiceState(StrEnum):
     STOPPED = "stopped"
 
 
-JOB_PENDING = (JobState.QUEUED, JobState.INTERRUPTED)                     # what `serve` still has to do
+JOB_PENDING = (JobState.QUEUED, JobState.INTERRUPTED)  # what `serve` still has to do
 JOB_FINISHED = (JobState.COMPLETED, JobState.FAILED, JobState.CANCELLED)  # nothing left to do or cancel
 
 
