@@ -26,7 +26,18 @@ METER_COMMANDS: dict[str, str] = {
     "error_query": ":SYSTem:ERRor?",
 }
 
-FIELDS = {"frequency_hz": 1e9, "level_dbm": -10.0, "nplc": 1.0, "range_v": 10.0}
+# There is no SCPI standard for temperature chambers: these SCPI-styled names are nightbench's own
+# default (the simulated chamber speaks them); a real chamber's commands go under `commands`.
+CHAMBER_COMMANDS: dict[str, str] = {
+    "set_temperature": ":CHAMber:SETPoint {temperature_c:.2f}",
+    "query_setpoint": ":CHAMber:SETPoint?",
+    "query_temperature": ":CHAMber:TEMPerature?",
+    "start": ":CHAMber:CONDitioning ON",
+    "stop": ":CHAMber:CONDitioning OFF",
+    "error_query": ":SYSTem:ERRor?",
+}
+
+FIELDS = {"frequency_hz": 1e9, "level_dbm": -10.0, "nplc": 1.0, "range_v": 10.0, "temperature_c": 25.0}
 
 
 def merged(defaults: dict[str, str], overrides: dict[str, str] | None) -> dict[str, str]:

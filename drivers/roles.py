@@ -1,9 +1,9 @@
 """What the engine, recovery and the bench may ask of an instrument: one interface per role.
 
 Above the drivers nothing touches a transport or a session; a new kind of instrument for a role
-(another source, a chamber, a power sensor later) implements that role's Protocol and the engine
-needs no change. The concrete roles are `drivers.source.RfSource`, `drivers.meter.ScpiDmm` and
-`drivers.meter.SerialAdc`.
+(another source, another chamber, a power sensor later) implements that role's Protocol and the
+engine needs no change. The concrete roles are `drivers.source.RfSource`, `drivers.meter.ScpiDmm`,
+`drivers.meter.SerialAdc` and `drivers.chamber.ScpiChamber`.
 """
 
 from __future__ import annotations
@@ -70,3 +70,27 @@ class MeterRole(Role, Protocol):
 
     def read(self, *, checked: bool = False) -> float:
         """One reading; `checked` also asks for the instrument's own error report, if it has one."""
+
+
+class ChamberRole(Role, Protocol):
+    """A temperature chamber. `configure` never changes its setpoint (after a crash the source is
+    made safe first, and the chamber is only touched by a soak or the way out); `setpoint_c` is
+    what it was last set to and read back as, None while unknown."""
+
+    min_c: float
+    max_c: float
+
+    @property
+    def setpoint_c(self) -> float | None: ...
+
+    def set_temperature(self, temperature_c: float) -> None:
+        """Set the setpoint and read it back; SafetyError outside min_c/max_c (nothing sent)."""
+
+    def temperature(self) -> float:
+        """The chamber's measured (air) temperature, degC."""
+
+    def start(self) -> None:
+        """Start conditioning (heating/cooling toward the setpoint)."""
+
+    def stop(self) -> None:
+        """Stop conditioning."""

@@ -3,7 +3,8 @@
 A fault is a dict (from a `[[fault]]` table of the simulator config, or a `--fault` flag):
 
     kind         drop | silence | delay | garbage | spurious_error | refuse_level | overload
-    instrument   source | meter | adc
+                 | refuse_setpoint | drift
+    instrument   source | meter | adc | chamber
     after        fire from the N-th message to that instrument on (1-based; 0 = from the start)
     at_s         or from this many seconds after the simulator started
     count        how many times it fires (0 = every time once triggered); default 1
@@ -12,9 +13,12 @@ A fault is a dict (from a `[[fault]]` table of the simulator config, or a `--fau
     delay_s      delay: seconds added before the reply; default 0.5
     code         spurious_error / refuse_level: the SCPI error code; default -221 / -222
     level_dbm    refuse_level: refuse only levels at or above this
+    rate_c_per_s drift: how fast the chamber's reading walks away from the air, degC per clock second
 
 Transport kinds (drop, silence, delay, garbage, spurious_error) act where messages arrive;
-refuse_level and overload act inside the instrument, on level settings and readings.
+refuse_level, overload, refuse_setpoint (the chamber refuses a setpoint, -222) and drift (its
+reading walks away from the air temperature) act inside the instrument. "No answer" from the
+chamber is `silence@chamber`.
 """
 
 from __future__ import annotations
@@ -24,8 +28,18 @@ import threading
 import time
 from dataclasses import dataclass, field
 
-KINDS = ("drop", "silence", "delay", "garbage", "spurious_error", "refuse_level", "overload")
-INSTRUMENTS = ("source", "meter", "adc")
+KINDS = (
+    "drop",
+    "silence",
+    "delay",
+    "garbage",
+    "spurious_error",
+    "refuse_level",
+    "overload",
+    "refuse_setpoint",
+    "drift",
+)
+INSTRUMENTS = ("source", "meter", "adc", "chamber")
 
 
 @dataclass
@@ -40,12 +54,14 @@ class Fault:
     delay_s: float = 0.5
     code: int | None = None
     level_dbm: float | None = None
+    rate_c_per_s: float = 0.5
     fired: int = 0
+    fired_at: float | None = None
     rng: random.Random = field(default_factory=random.Random, repr=False)
 
     @classmethod
     def from_dict(cls, data: dict, seed: int) -> Fault:
-        names = set(cls.__dataclass_fields__) - {"fired", "rng"}
+        names = set(cls.__dataclass_fields__) - {"fired", "fired_at", "rng"}
         unknown = set(data) - names
         if unknown:
             raise ValueError(f"unknown fault key(s): {', '.join(sorted(unknown))}")
@@ -57,7 +73,7 @@ class Fault:
         if fault.duration_s is None:
             fault.duration_s = 0.0 if fault.kind == "drop" else -1.0
         if fault.code is None:
-            fault.code = -222 if fault.kind == "refuse_level" else -221
+            fault.code = -222 if fault.kind in ("refuse_level", "refuse_setpoint") else -221
         fault.rng = random.Random(seed)
         return fault
 
@@ -136,6 +152,21 @@ class FaultInjector:
                     fault.fired += 1
                     return fault
         return None
+
+    def refuses_setpoint(self) -> Fault | None:
+        with self.lock:
+            fired = self._fire("chamber", ("refuse_setpoint",))
+            return fired[0] if fired else None
+
+    def drift_c(self) -> float:
+        """How far the chamber's reading has walked from the air (0 until a drift fault fires)."""
+        with self.lock:
+            now = self.clock()
+            for fault in self._fire("chamber", ("drift",)):
+                fault.fired_at = now
+            return sum(
+                f.rate_c_per_s * (now - f.fired_at) for f in self.faults if f.kind == "drift" and f.fired_at is not None
+            )
 
     def overload(self, instrument: str) -> bool:
         with self.lock:

@@ -137,21 +137,25 @@ class SimSource(ScpiInstrument):
         if self.log is None:
             return
         m = self.model
-        dut = m.dut_dbm()
-        self.log.write(
-            json.dumps(
-                {
-                    "t": self.clock(),
-                    "event": what,
-                    "frequency_hz": m.frequency_hz,
-                    "level_dbm": m.level_dbm,
-                    "output": m.output_on,
-                    "dut_dbm": None if dut == -math.inf else round(dut, 6),
-                }
+        t = self.clock()
+        with m.lock:  # the chamber writes to the same log from its own thread
+            dut = m.dut_dbm()
+            self.log.write(
+                json.dumps(
+                    {
+                        "t": t,
+                        "event": what,
+                        "frequency_hz": m.frequency_hz,
+                        "level_dbm": m.level_dbm,
+                        "output": m.output_on,
+                        "dut_dbm": None if dut == -math.inf else round(dut, 6),
+                        "setpoint_c": m.thermal.setpoint_c,
+                        "dut_c": round(m.thermal.dut_at(t), 4),
+                    }
+                )
+                + "\n"
             )
-            + "\n"
-        )
-        self.log.flush()
+            self.log.flush()
 
 
 class SimMeter(ScpiInstrument):

@@ -13,6 +13,8 @@ import random
 import threading
 from dataclasses import dataclass, field, fields
 
+from nightbench.simulators.thermal import ChamberConfig, ThermalModel
+
 GHZ = 1e9
 BOLTZMANN = 1.380649e-23  # J/K, exact in the 2019 SI
 T0_K = 290.0  # IEEE standard reference temperature for noise
@@ -91,10 +93,14 @@ class DetectorConfig:
     floor_noise_v: float = 0.0004  # extra rms (20 ms window) as the input nears the floor
     slope_tc_per_c: float = -2e-4  # relative slope change per degree from 25 C
     intercept_tc_db_per_c: float = 0.01  # intercept shift per degree from 25 C
+    floor_tc_db_per_c: float = 0.02  # noise-floor shift per degree from 25 C (noise figure grows warm)
 
     @property
     def floor_dbm(self) -> float:
         return thermal_noise_dbm_per_hz() + 10 * math.log10(self.noise_bandwidth_hz) + self.noise_figure_db
+
+    def floor_at(self, temperature_c: float) -> float:
+        return self.floor_dbm + self.floor_tc_db_per_c * (temperature_c - 25.0)
 
     def slope(self, frequency_hz: float, temperature_c: float = 25.0) -> float:
         return (
@@ -116,25 +122,25 @@ class DetectorConfig:
         signal = 0.0 if dut_dbm == -math.inf else dbm_to_w(dut_dbm)
         return noise / (signal + noise)
 
-    def effective_dbm(self, dut_dbm: float) -> float:
-        """Input level the log law sees: power sum with the floor, harmonic sum with saturation."""
+    def effective_dbm(self, dut_dbm: float, temperature_c: float = 25.0) -> float:
+        """Input level the log law sees: power sum with the floor (at the DUT temperature), harmonic
+        sum with saturation."""
         signal_w = 0.0 if dut_dbm == -math.inf else dbm_to_w(dut_dbm)
-        with_floor = w_to_dbm(signal_w + dbm_to_w(self.floor_dbm))
+        with_floor = w_to_dbm(signal_w + dbm_to_w(self.floor_at(temperature_c)))
         compressed = -10.0 * math.log10(10.0 ** (-with_floor / 10.0) + 10.0 ** (-self.saturation_dbm / 10.0))
         if self.ripple_db:
             compressed += self.ripple_db * math.sin(2 * math.pi * compressed / self.ripple_period_db)
         return compressed
 
     def steady_v(self, dut_dbm: float, frequency_hz: float, temperature_c: float = 25.0) -> float:
+        effective = self.effective_dbm(dut_dbm, temperature_c)
         if self.law == "square":
-            return self.responsivity_v_per_mw * dbm_to_w(self.effective_dbm(dut_dbm)) * 1e3
+            return self.responsivity_v_per_mw * dbm_to_w(effective) * 1e3
         if self.law == "linear":
-            return self.gain_v_per_v * math.sqrt(dbm_to_w(self.effective_dbm(dut_dbm)) * REF_OHM)
+            return self.gain_v_per_v * math.sqrt(dbm_to_w(effective) * REF_OHM)
         if self.law != "log":
             raise ValueError(f"unknown detector law {self.law!r} (log, square or linear)")
-        return self.slope(frequency_hz, temperature_c) * (
-            self.effective_dbm(dut_dbm) - self.intercept(frequency_hz, temperature_c)
-        )
+        return self.slope(frequency_hz, temperature_c) * (effective - self.intercept(frequency_hz, temperature_c))
 
     def noise_v(self, dut_dbm: float, window_s: float) -> float:
         """Output noise rms seen by a meter integrating over `window_s` (white noise: 1/sqrt(T))."""
@@ -174,7 +180,8 @@ class BenchConfig:
     detector: DetectorConfig = field(default_factory=DetectorConfig)
     meter: MeterConfig = field(default_factory=MeterConfig)
     adc: AdcConfig = field(default_factory=AdcConfig)
-    temperature_c: float = 25.0
+    chamber: ChamberConfig = field(default_factory=ChamberConfig)
+    temperature_c: float = 25.0  # the room, where the chamber's air and the DUT start
     seed: int = 1
     faults: list[dict] = field(default_factory=list)
 
@@ -268,6 +275,8 @@ class BenchModel:
         self.frequency_hz = 100e6
         self.level_dbm = self.config.source.min_dbm
         self.output_on = False
+        self.thermal = ThermalModel(self.config.chamber, self.config.temperature_c, self.config.seed)
+        self.temperature_c = self.config.temperature_c  # the DUT's, as of the last source change
         share = self.config.detector.tail_share
         self.output = FirstOrderOutput(self.steady_output_v() * (1.0 - share), t)
         self.tail = FirstOrderOutput(self.steady_output_v() * share, t)  # zero unless tail_share is set
@@ -292,7 +301,7 @@ class BenchModel:
 
     def truth_v(self, dut_dbm: float, frequency_hz: float) -> float:
         """Noiseless settled detector output for a true DUT-plane level: what tests compare to."""
-        return self.config.detector.steady_v(dut_dbm, frequency_hz, self.config.temperature_c)
+        return self.config.detector.steady_v(dut_dbm, frequency_hz, self.temperature_c)
 
     # -- source side --------------------------------------------------------------------
     def set_source(
@@ -311,6 +320,7 @@ class BenchModel:
             if output_on is not None:
                 self.output_on = output_on
             det = self.config.detector
+            self.temperature_c = self.thermal.dut_at(t)  # drifts slowly against a point's duration
             self._input_dbm = self.dut_dbm()
             target, at = self.steady_output_v(), t + self.config.source.level_settle_s
             self.output.retarget(target * (1.0 - det.tail_share), at, det.tau_rise_s, det.tau_fall_s)

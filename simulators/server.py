@@ -4,7 +4,8 @@
 strings, then serves until SIGTERM or SIGINT:
 
     {"source": "TCPIP::127.0.0.1::P::SOCKET", "meter": "TCPIP::127.0.0.1::Q::SOCKET",
-     "meter_serial": "ASRL/dev/pts/N::INSTR", "adc_serial": "ASRL/dev/pts/M::INSTR"}
+     "meter_serial": "ASRL/dev/pts/N::INSTR", "adc_serial": "ASRL/dev/pts/M::INSTR",
+     "chamber": "TCPIP::127.0.0.1::R::SOCKET"}
 
 The meter is one instrument reachable two ways (LAN and serial), as real meters are.
 """
@@ -25,6 +26,7 @@ import tty
 from collections.abc import Sequence
 from typing import Any, TextIO
 
+from nightbench.simulators.chamber import SimChamber
 from nightbench.simulators.faults import FaultInjector, parse_fault_flag
 from nightbench.simulators.instruments import DIALECTS, SimAdc, SimMeter, SimSource
 from nightbench.simulators.links import PtyStream, SocketStream, serve_stream
@@ -113,29 +115,34 @@ class Bench:
         log: TextIO | None = None,
         serial: bool = True,
         dialect: str = "scpi",
+        chamber_port: int = 0,
     ) -> None:
         self.config = config or BenchConfig()
         self.model = BenchModel(self.config)
         self.faults = FaultInjector(self.config.faults, seed=self.config.seed)
         self.stop_event = threading.Event()
-        self.locks = {name: threading.Lock() for name in ("source", "meter", "adc")}
+        self.locks = {name: threading.Lock() for name in ("source", "meter", "adc", "chamber")}
         self.source = SimSource(self.model, log=log, faults=self.faults, dialect=dialect)
         self.meter = SimMeter(self.model, faults=self.faults, dialect=dialect)
         self.adc = SimAdc(self.model, faults=self.faults)
+        self.chamber = SimChamber(self.model, log=log, faults=self.faults, dialect=dialect)
+        self.chamber_port = TcpPort(chamber_port, self.chamber, "chamber", self)
         self.ports: list[Any] = [
             TcpPort(source_port, self.source, "source", self),
             TcpPort(meter_port, self.meter, "meter", self),
         ]
         if serial:
             self.ports += [PtyPort(self.meter, "meter", self), PtyPort(self.adc, "adc", self)]
+        self.ports.append(self.chamber_port)
 
     def resources(self) -> dict[str, str | None]:
-        serial = len(self.ports) > 2
+        serial = len(self.ports) > 3
         return {
             "source": self.ports[0].resource,
             "meter": self.ports[1].resource,
             "meter_serial": self.ports[2].resource if serial else None,
             "adc_serial": self.ports[3].resource if serial else None,
+            "chamber": self.chamber_port.resource,
         }
 
     def start(self) -> None:
@@ -174,12 +181,20 @@ def serve(
     faults: Sequence[str] = (),
     seed: int | None = None,
     dialect: str = "scpi",
+    chamber_port: int = 0,
+    chamber_time_scale: float | None = None,
 ) -> int:
     """Run the bench in this process until SIGTERM/SIGINT; print the resource line first."""
     config = load_config(config_path, faults, seed)
+    if chamber_time_scale is not None:
+        if not chamber_time_scale > 0:
+            raise ValueError("--chamber-time-scale must be positive")
+        config.chamber.time_scale = chamber_time_scale
     with contextlib.ExitStack() as stack:
         log = stack.enter_context(open(log_path, "a", encoding="utf-8")) if log_path else None
-        bench = Bench(config, source_port=source_port, meter_port=meter_port, log=log, dialect=dialect)
+        bench = Bench(
+            config, source_port=source_port, meter_port=meter_port, log=log, dialect=dialect, chamber_port=chamber_port
+        )
         stack.callback(bench.stop)  # threads end before the log closes
         stop = threading.Event()
         signal.signal(signal.SIGTERM, lambda *_: stop.set())
@@ -194,9 +209,16 @@ def serve(
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--source-port", type=int, default=0, help="TCP port of the source (0 = any free)")
     parser.add_argument("--meter-port", type=int, default=0, help="TCP port of the meter (0 = any free)")
+    parser.add_argument("--chamber-port", type=int, default=0, help="TCP port of the chamber (0 = any free)")
+    parser.add_argument(
+        "--chamber-time-scale",
+        type=float,
+        help="simulated chamber seconds per real second (default: the config's, 1), so soaks take seconds",
+    )
     parser.add_argument(
         "--config",
-        help="simulator config file (TOML: [source] [path] [detector] [meter] [adc] sections, [[fault]] tables)",
+        help="simulator config file (TOML: [source] [path] [detector] [meter] [adc] [chamber] sections, "
+        "[[fault]] tables)",
     )
     parser.add_argument("--log", help="append one JSON line per source state change to this file")
     parser.add_argument(
@@ -227,6 +249,8 @@ def main(argv: list[str] | None = None, prog: str = "nightbench.simulators.serve
             faults=args.fault,
             seed=args.seed,
             dialect=args.dialect,
+            chamber_port=args.chamber_port,
+            chamber_time_scale=args.chamber_time_scale,
         )
     except (OSError, ValueError, tomllib.TOMLDecodeError) as exc:
         print(f"nightbench.simulators.server: cannot start the simulated bench: {exc}", file=sys.stderr)
