@@ -50,10 +50,12 @@ def _db(path: str | None) -> str:
 
 def _read_store(path: str | None) -> Store:
     """The database for a command that only reads: opened read-only, so nothing is written, and a
-    missing file is an InputError (exit 2), since a mistyped --db must not leave an empty database."""
+    missing file is an InputError (exit 2), since a mistyped --db must not leave an empty database.
+    A postgresql:// URL opens the shared store (store/pg.py), read-only, with the same read API."""
     from nightbench.store.db import Store
+    from nightbench.store.pg import PgStore, is_pg_url
 
-    return Store.open_readonly(_db(path))
+    return PgStore(path) if path and is_pg_url(path) else Store.open_readonly(_db(path))
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
@@ -165,11 +167,28 @@ def runs(db: str | None, as_json: bool) -> None:
 @click.option("--db", help=DB_HELP)
 @click.option("--json", "as_json", is_flag=True, help="machine-readable results")
 @click.option("--out", type=click.Path(), help="write PNG plots, a Markdown summary and CSV files into this directory")
+@click.option("--fit", "fit_dbm", nargs=2, type=float, metavar="LOW HIGH", help="fit range at the DUT, dBm")
+@click.option("--limit", "limits", type=float, multiple=True, metavar="DB", help="error limit of the range, dB (repeat for more ranges)")
+@click.option("--law", type=click.Choice(["log", "linear", "square"]), help="the detector law to fit")
+@click.option("--reference-c", "reference_c", type=float, metavar="T", help="reference temperature, degC")
+@click.option("--save", is_flag=True, help="store this analysis with the run (the views then show it)")
 @friendly
-def report(run_ids: tuple[int, ...], db: str | None, as_json: bool, out: str | None) -> None:
+def report(
+    run_ids: tuple[int, ...],
+    db: str | None,
+    as_json: bool,
+    out: str | None,
+    fit_dbm: tuple[float, float] | None,
+    limits: tuple[float, ...],
+    law: str | None,
+    reference_c: float | None,
+    save: bool,
+) -> None:
     """Characterisation results of RUN: slope, intercept, conformance, dynamic range, uncertainties.
 
-    With a second run, RUN_B, both side by side and their differences (B minus A).
+    With a second run, RUN_B, both side by side and their differences (B minus A). The run's own
+    analysis (its latest saved, else its plan's) unless --fit, --limit, --law or --reference-c
+    choose otherwise; nothing is written unless --save.
     """
     from nightbench.analysis.report import build_report
     from nightbench.drivers.errors import InputError
@@ -185,7 +204,15 @@ def report(run_ids: tuple[int, ...], db: str | None, as_json: bool, out: str | N
     store = Store.open_readonly(_db(db))  # reads only: never creates, migrates or writes the file
     for run_id in run_ids:
         store.run(run_id)  # every run must exist before anything is written
-    reports = [build_report(store, run_id) for run_id in run_ids]
+    choices = {"fit_dbm": fit_dbm, "limits": limits, "law": law, "reference_c": reference_c}
+    reports = [build_report(store, run_id, choices) for run_id in run_ids]  # bad choices stop here
+    if save:  # only now, with every choice checked: the one write `report` makes
+        from nightbench.analysis.report import save_analysis
+
+        writer = Store(_db(db), create=False)
+        for rep in reports:
+            click.echo(f"run {rep.run_id}: stored as analysis {save_analysis(writer, rep)}", err=True)
+        writer.close()
     comparison_text = None
     if len(reports) == 2:
         from nightbench.analysis.compare import compare_reports
@@ -216,14 +243,38 @@ def report(run_ids: tuple[int, ...], db: str | None, as_json: bool, out: str | N
 def export(run_id: int, fmt: str, db: str | None, output: str | None) -> None:
     """One row per point of RUN, as CSV or JSON."""
     from nightbench.output.export import write_export
-    from nightbench.store.db import Store
 
-    store = Store.open_readonly(_db(db))
+    store = _read_store(db)
     if output:
         with open(output, "w", encoding="utf-8", newline="") as fh:
             write_export(store, run_id, fmt, fh)
     else:
         write_export(store, run_id, fmt, sys.stdout)
+
+
+@main.command()
+@click.option("--db", help=DB_HELP)
+@click.option("--to", "url", required=True, metavar="URL", help="the shared store: postgresql://USER@HOST/DB")
+@click.option("--bench", help="this bench's name in the shared store (default: the one used before, else the host)")
+@click.option("--readings", is_flag=True, help="send the raw readings too (COPY; about 10 per point)")
+@friendly
+def push(db: str | None, url: str, bench: str | None, readings: bool) -> None:
+    """Copy every finished run the shared PostgreSQL store does not have yet (docs/database.md).
+
+    One transaction per run: killed at any instant, a run is there whole or not at all, and the
+    next push completes it. Pushing twice adds nothing; the local file only notes what was pushed.
+    The password comes from the URL, $PGPASSWORD or the password file, and is never printed."""
+    from nightbench.drivers.errors import InputError
+    from nightbench.store.pg import is_pg_url, mask_url
+    from nightbench.store.push import push as push_runs
+
+    if not is_pg_url(url):
+        raise InputError(f"--to takes a postgresql:// URL, not {mask_url(url)!r}")
+    done = push_runs(_db(db), url, bench=bench, readings=readings)
+    click.echo(
+        f"pushed {len(done.runs)} runs ({done.points} points, {done.readings} readings) as bench "
+        f"'{done.bench}' to {done.target}; {done.already} already there"
+    )
 
 
 @main.command(context_settings={"ignore_unknown_options": True, "allow_extra_args": True, "help_option_names": []})
