@@ -89,6 +89,18 @@ def check(plan: str) -> None:
             f"  {f / 1e6:10.3f} MHz  path loss {loss:7.3f} dB  source {min(levels) + loss:7.2f} .. "
             f"{max(levels) + loss:7.2f} dBm" + (f"  [{detail}]" if len(parts) > 1 or parts[0][2] else "")
         )
+    temps = p.temperatures()
+    if temps and p.soak:
+        from nightbench.plan.checks import least_soak_s
+
+        click.echo(
+            f"  chamber: {len(temps)} temperatures in this order: {', '.join(f'{t:g}' for t in temps)} degC "
+            f"(reference {p.reference_c():g} degC, end at {p.soak.end_c:g} degC)"
+        )
+        click.echo(
+            f"  soaks take at least {least_soak_s(p) / 60:.1f} min ({len(temps)} x stable_s {p.soak.stable_s:g} s), "
+            f"plus the chamber's transitions; a soak not stable within timeout_s {p.soak.timeout_s:g} s fails the run"
+        )
 
 
 def _execute(loaded: Any, db: str, run_id: int | None) -> None:

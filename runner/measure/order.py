@@ -52,9 +52,9 @@ def fast_edge_order(points: list[Point], order: tuple[str, ...], taus: Taus) -> 
     just learned counts.
     """
     outer = order[: order.index(LEVEL_AXIS)]
-    groups: dict[tuple[float, ...], dict[float, list[Point]]] = {}
+    groups: dict[tuple[float | None, ...], dict[float, list[Point]]] = {}
     for p in points:
-        key = tuple(getattr(p, axis) for axis in outer)
+        key = (p.temperature_c, *(getattr(p, axis) for axis in outer))  # temperature: always outermost
         groups.setdefault(key, {}).setdefault(p.power_dbm, []).append(p)
     planned = [p.power_dbm for p in points]
     direction = 1 if not planned or planned[-1] >= planned[0] else -1

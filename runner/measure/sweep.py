@@ -17,6 +17,7 @@ class Point:
     frequency_hz: float
     power_dbm: float  # at the DUT input
     source_dbm: float  # what the source is set to: DUT level plus path loss, on the grid below
+    temperature_c: float | None = None  # the chamber setpoint (runs with a chamber), else None
 
 
 LEVEL_STEP_DB = 0.001  # the source level is commanded with three decimals
@@ -30,12 +31,14 @@ def source_level(power_dbm: float, loss_db: float) -> float:
 
 
 def expand(loaded: LoadedPlan) -> list[Point]:
-    """Cartesian product of the axes, outermost first in the order the plan wrote them."""
+    """Cartesian product of the axes, outermost first in the order the plan wrote them; with a
+    chamber, temperature is outside them all (a transition takes tens of minutes), in written order."""
     order = loaded.order
     axes = [loaded.plan.sweep.axis_values(name) for name in order]
+    temps: list[float | None] = list(loaded.plan.temperatures()) or [None]
     points = []
-    for index, combo in enumerate(itertools.product(*axes)):
+    for index, (temp, combo) in enumerate(itertools.product(temps, itertools.product(*axes))):
         values = dict(zip(order, combo))
         f, p = values["frequency_hz"], values["power_dbm"]
-        points.append(Point(index, f, p, source_level(p, loaded.path.loss(f))))
+        points.append(Point(index, f, p, source_level(p, loaded.path.loss(f)), temp))
     return points

@@ -30,8 +30,10 @@ def check_consistency(plan: Plan, path: PathModel, file: str, lines: dict[KeyPat
 
     freqs = plan.sweep.axis_values("frequency_hz")
     levels = plan.sweep.axis_values("power_dbm")
-    if len(freqs) * len(levels) > MAX_POINTS:
-        raise fail(f"the sweep has {len(freqs) * len(levels)} points; at most {MAX_POINTS} are allowed", "sweep")
+    count = len(freqs) * len(levels) * max(1, len(plan.temperatures()))
+    if count > MAX_POINTS:
+        raise fail(f"the sweep has {count} points; at most {MAX_POINTS} are allowed", "sweep")
+    _check_temperatures(plan, fail)
     ceiling = plan.limits.dut_max_dbm
     top = max(levels)
     if top > ceiling:
@@ -53,6 +55,42 @@ def check_consistency(plan: Plan, path: PathModel, file: str, lines: dict[KeyPat
                 "power_dbm",
             )
     _check_fit_range(plan, levels, fail)
+
+
+def _check_temperatures(plan: Plan, fail: Callable[..., InputError]) -> None:
+    """A chamber, its temperatures and the soak rule come together; every setpoint (the soak's
+    end_c too) lies within the chamber's min_c/max_c, so no chamber is ever asked beyond them."""
+    chamber, temps, soak = plan.instruments.chamber, plan.temperatures(), plan.soak
+    if temps and chamber is None:
+        raise fail("sweep.temperature_c needs a chamber under instruments.chamber", "sweep", "temperature_c")
+    if chamber is not None and not temps:
+        raise fail("a chamber needs the temperatures to visit under sweep.temperature_c", "instruments", "chamber")
+    if soak is not None and chamber is None:
+        raise fail("soak applies to a plan with a chamber (instruments.chamber)", "soak")
+    if chamber is None:
+        return
+    if soak is None:
+        raise fail("a plan with a chamber needs a soak section (tolerance_c, stable_s, timeout_s, end_c)", "sweep")
+    limits = f"the chamber's limits [{chamber.min_c:g}, {chamber.max_c:g}] degC (instruments.chamber.min_c/max_c)"
+    for i, t in enumerate(temps):
+        if not chamber.min_c <= t <= chamber.max_c:
+            raise fail(f"temperature {t:g} degC is outside {limits}", "sweep", "temperature_c", i)
+    if not chamber.min_c <= soak.end_c <= chamber.max_c:
+        raise fail(f"end_c {soak.end_c:g} degC is outside {limits}", "soak", "end_c")
+    if len(set(temps)) != len(temps):
+        raise fail("a temperature is listed twice (each is one soak; list it once)", "sweep", "temperature_c")
+    ref = plan.analysis.reference_c
+    if ref is not None and ref not in temps:
+        raise fail(
+            f"reference_c {ref:g} degC is not one of the swept temperatures ({', '.join(f'{t:g}' for t in temps)})",
+            "analysis",
+            "reference_c",
+        )
+
+
+def least_soak_s(plan: Plan) -> float:
+    """The least time the soaks can take: stable_s at every temperature (transitions come on top)."""
+    return len(plan.temperatures()) * plan.soak.stable_s if plan.soak else 0.0
 
 
 def _check_fit_range(plan: Plan, levels: list[float], fail: Callable[..., InputError]) -> None:

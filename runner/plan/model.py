@@ -60,6 +60,13 @@ def _source_commands(value: dict[str, str] | None) -> dict[str, str] | None:
     return value
 
 
+def _chamber_commands(value: dict[str, str] | None) -> dict[str, str] | None:
+    from nightbench.drivers.dialect import CHAMBER_COMMANDS, merged
+
+    merged(CHAMBER_COMMANDS, value)
+    return value
+
+
 def _meter_commands(value: dict[str, str] | None) -> dict[str, str] | None:
     from nightbench.drivers.dialect import METER_COMMANDS, merged
 
@@ -122,9 +129,26 @@ class AdcSpec(_Link):
 MeterSpec = Annotated[DmmSpec | AdcSpec, Field(discriminator="driver")]
 
 
+class ChamberSpec(_Link):
+    """A temperature chamber (drivers/chamber.py). `min_c`/`max_c` are the chamber's limits, or
+    the DUT's where tighter: setpoints beyond them are refused at plan time and by the driver."""
+
+    driver: Literal["scpi-chamber"]
+    min_c: Finite
+    max_c: Finite
+    commands: Annotated[dict[str, str] | None, AfterValidator(_chamber_commands)] = None
+
+    @model_validator(mode="after")
+    def _limits(self) -> ChamberSpec:
+        if self.min_c >= self.max_c:
+            raise ValueError("min_c must be below max_c")
+        return self
+
+
 class Instruments(_Strict):
     source: SourceSpec
     meter: MeterSpec
+    chamber: ChamberSpec | None = None
 
 
 Extrapolate = Literal["none", "hold", "linear"]
@@ -215,6 +239,8 @@ class Sweep(_Strict):
 
     frequency_hz: Axis
     power_dbm: Axis
+    # with a chamber: always the outermost axis, visited in the written order (measure/sweep.py)
+    temperature_c: Annotated[list[Finite], Field(min_length=1)] | None = None
 
     @field_validator("frequency_hz")
     @classmethod
@@ -257,6 +283,21 @@ class Settle(_Strict):
         return self.max_tau_s if self.max_tau_s is not None else self.timeout_s / math.log(100.0)
 
 
+class Soak(_Strict):
+    """When a temperature counts as reached (measure/soak.py, docs/temperature.md)."""
+
+    tolerance_c: Positive  # the chamber's reading within this of the setpoint,
+    stable_s: Positive  # without a break for this long, before the first point at that temperature
+    timeout_s: Positive  # not reached by then: the run fails (RF off, chamber to end_c)
+    end_c: Finite  # where the chamber is left at the end and on every way out
+
+    @model_validator(mode="after")
+    def _fits(self) -> Soak:
+        if self.stable_s >= self.timeout_s:
+            raise ValueError("timeout_s must be longer than stable_s")
+        return self
+
+
 class Measure(_Strict):
     samples: Annotated[int, Field(ge=1, le=10_000)] = 4
 
@@ -264,6 +305,8 @@ class Measure(_Strict):
 class Analysis(_Strict):
     fit_dbm: tuple[Finite, Finite]
     error_limit_db: Positive = 1.0
+    # the temperature whose fit line is the reference for error over temperature (Plan.reference_c)
+    reference_c: Finite | None = None
     # What the bench's data sheets promise, as half-widths of rectangular distributions (the
     # Type B inputs of JCGM 100:2008, 4.3.7). 0 = not stated: the term is shown as 0, not guessed.
     source_level_accuracy_db: NonNegative = 0.0  # absolute level accuracy of the source, +/- dB
@@ -288,5 +331,19 @@ class Plan(_Strict):
     limits: Limits
     sweep: Sweep
     settle: Settle
+    soak: Soak | None = None
     measure: Measure = Measure()
     analysis: Analysis
+
+    def temperatures(self) -> list[float]:
+        """The chamber setpoints in visiting order; [] for a plan without a chamber."""
+        return list(self.sweep.temperature_c or [])
+
+    def reference_c(self) -> float | None:
+        """analysis.reference_c, else 25 if swept, else the first temperature; None without any."""
+        temps = self.temperatures()
+        if not temps:
+            return None
+        if self.analysis.reference_c is not None:
+            return self.analysis.reference_c
+        return 25.0 if 25.0 in temps else temps[0]
