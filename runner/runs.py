@@ -53,7 +53,8 @@ def check_resumable(store: Store, run_id: int) -> None:
 def execute(loaded: LoadedPlan, store: Store, run_id: int, stop: StopFlag) -> tuple[str, str | None]:
     """Run the missing points of a run in the foreground, with a progress bar on a terminal."""
     with progress_printer(loaded.plan.name, run_id) as progress:
-        state, error = Engine(loaded, store, run_id, stop, progress).run()
+        soak_progress = progress.soak if progress is not None else None
+        state, error = Engine(loaded, store, run_id, stop, progress, soak_progress).run()
     if state == RunState.COMPLETED:
         store_fits(store, run_id)
     return state, error

@@ -1,6 +1,8 @@
 """The sweep engine: visits points in order, never above the DUT ceiling, and stores each one.
 
-It knows roles (a source, a meter), never a transport; it knows the store, never SQL.
+It knows roles (a source, a meter, a chamber), never a transport; it knows the store, never SQL.
+With a chamber, the first point at each temperature waits for a proven soak (measure/soak.py), and
+every way out switches RF off first, then sends the chamber to soak.end_c.
 """
 
 from __future__ import annotations
@@ -15,6 +17,7 @@ from nightbench.measure.order import fast_edge_order
 from nightbench.measure.roles import Bench
 from nightbench.measure.settle import Direction, SettleDetector
 from nightbench.measure.signals import StopFlag
+from nightbench.measure.soak import SoakProgress, SoakTimeout, soak
 from nightbench.measure.sweep import Point, expand
 from nightbench.plan.load import LoadedPlan
 from nightbench.store.db import PointResult, Store
@@ -35,7 +38,13 @@ Progress = Callable[[Point, PointResult, int, int], None]
 
 class Engine:
     def __init__(
-        self, loaded: LoadedPlan, store: Store, run_id: int, stop: StopFlag, progress: Progress | None = None
+        self,
+        loaded: LoadedPlan,
+        store: Store,
+        run_id: int,
+        stop: StopFlag,
+        progress: Progress | None = None,
+        soak_progress: SoakProgress | None = None,
     ) -> None:
         self.loaded = loaded  # with the path's loss model and the sweep's axis order
         self.plan = loaded.plan
@@ -54,6 +63,10 @@ class Engine:
             tail_share=s.tail_share,
         )
         self.last_dbm: float | None = None  # DUT level of the last point; None while RF is off
+        self.soak_progress = soak_progress
+        # the setpoint this process has proven the chamber holds; None at every start, so a resume
+        # (or `serve` adopting a crashed run) soaks again before its first point
+        self.soaked_c: float | None = None
 
     # -- safety ---------------------------------------------------------------------------
     def _check_ceiling(self, level_dbm: float, frequency_hz: float) -> None:
@@ -153,17 +166,15 @@ class Engine:
                 raise Interrupted(self.stop.reason)
             self.bench = self._open_bench()
             store.set_identities(run_id, self.bench.source.identity, self.bench.meter.identity)
+            if self.bench.chamber is not None:
+                store.event(run_id, "instruments", f"chamber: {self.bench.chamber.identity}")
             visit = (
                 fast_edge_order(todo, self.loaded.order, self.detector.level_taus)
                 if self.plan.settle.level_order == "fast-edge"
                 else todo
             )
             for point in visit:
-                self.doing = (
-                    f"measuring point {point.index} ({point.frequency_hz / 1e6:g} MHz, "
-                    f"{point.power_dbm:g} dBm at the DUT)"
-                )
-                result = self._point_with_recovery(point)
+                result = self._point_at_temperature(point)
                 store.add_point(run_id, point, result)
                 done.add(point.index)
                 if self.progress:
@@ -185,6 +196,76 @@ class Engine:
             store.event(run_id, state, error or f"{len(done)} of {len(points)} points")
         return state, error
 
+    def _point_at_temperature(self, point: Point) -> PointResult:
+        """A point, after a soak if the chamber is not proven at its temperature; a point whose
+        chamber reading has left the soak band is measured again after a new soak."""
+        while True:
+            if point.temperature_c is not None and point.temperature_c != self.soaked_c:
+                self._soak(point.temperature_c)
+            self.doing = (
+                f"measuring point {point.index} ({point.frequency_hz / 1e6:g} MHz, "
+                f"{point.power_dbm:g} dBm at the DUT"
+                + (f", {point.temperature_c:g} degC)" if point.temperature_c is not None else ")")
+            )
+            result = self._point_with_recovery(point)
+            rule = self.plan.soak
+            if point.temperature_c is None or result.chamber_c is None or rule is None:
+                return result
+            if abs(result.chamber_c - point.temperature_c) <= rule.tolerance_c:
+                return result
+            self.store.event(
+                self.run_id,
+                "soak",
+                f"point {point.index}: the chamber reads {result.chamber_c:.2f} degC, outside "
+                f"{point.temperature_c:g} ± {rule.tolerance_c:g} degC; soaking again and measuring it again",
+            )
+            self.soaked_c = None
+
+    def _soak(self, setpoint_c: float) -> None:
+        """RF off, then the chamber to the setpoint and the soak rule proven; stored in `soaks`
+        whatever the outcome. A chamber fault is recovered like a point's (a new link), the soak
+        then starting over within the same timeout."""
+        assert self.bench is not None and self.bench.chamber is not None and self.plan.soak is not None
+        rule, store, run_id = self.plan.soak, self.store, self.run_id
+        self.doing = f"soaking at {setpoint_c:g} degC"
+        soak_id = store.start_soak(run_id, setpoint_c)
+        store.event(run_id, "soak", f"soaking at {setpoint_c:g} degC (± {rule.tolerance_c:g} for {rule.stable_s:g} s)")
+        readings: list[tuple[float, float]] = []
+        started, outcome = time.monotonic(), "failed"
+        try:
+            for attempt in range(1, POINT_ATTEMPTS + 1):
+                try:
+                    # nothing is measured while the temperature moves: RF off (a DUT driven for an
+                    # hour also heats itself)
+                    self.bench.source.rf_off()
+                    self.last_dbm = None
+                    stable = soak(
+                        self.bench.chamber,
+                        rule,
+                        setpoint_c,
+                        self.stop,
+                        readings,
+                        started=started,
+                        progress=self.soak_progress,
+                    )
+                    break
+                except SoakTimeout:
+                    outcome = "timeout"
+                    raise
+                except InstrumentError as exc:
+                    if attempt == POINT_ATTEMPTS or self.stop.is_set():
+                        raise
+                    store.event(run_id, "fault", f"soak at {setpoint_c:g} degC, attempt {attempt}: {exc}")
+                    self._recover(exc)
+            if not stable:
+                outcome = "interrupted"
+                raise Interrupted(self.stop.reason)
+            outcome = "stable"
+        finally:
+            store.finish_soak(soak_id, seconds=time.monotonic() - started, outcome=outcome, readings=readings)
+        store.event(run_id, "soak", f"stable at {setpoint_c:g} degC after {time.monotonic() - started:.1f} s")
+        self.soaked_c = setpoint_c
+
     def _point_with_recovery(self, point: Point) -> PointResult:
         """Set and measure one point; on an instrument fault, recover and redo the whole point,
         so a point that is stored is one that happened from start to end (invariant 4)."""
@@ -194,7 +275,10 @@ class Engine:
                 raise Interrupted(self.stop.reason)
             try:
                 self.move_to(point)
-                return self.measure(point)
+                result = self.measure(point)
+                if self.bench.chamber is not None:
+                    result.chamber_c = self.bench.chamber.temperature()
+                return result
             except SafetyError:
                 raise
             except InstrumentError as exc:
@@ -239,10 +323,41 @@ class Engine:
                 self.last_dbm = None  # RF was switched off: the next step is a rise from nothing
 
     def _make_safe(self) -> str | None:
-        """RF off on every way out; if the link is in doubt, a new one is opened to do it (the
-        source's configure() switches RF off first). A failure is reported, never swallowed."""
+        """On every way out: RF off first, then the chamber to soak.end_c; the instruments closed.
+        A failure is reported, never swallowed."""
         if self.bench is None:
             return None
+        try:
+            problems = [p for p in (self._rf_off(), self._chamber_to_end()) if p]
+            return "; ".join(problems) or None
+        finally:
+            self.bench.close()
+
+    def _chamber_to_end(self) -> str | None:
+        """The chamber to end_c (conditioning on, so it goes there); a link in doubt is reopened once."""
+        assert self.bench is not None
+        chamber, rule = self.bench.chamber, self.plan.soak
+        if chamber is None or rule is None:
+            return None
+        try:
+            try:
+                chamber.flush()
+                chamber.set_temperature(rule.end_c)
+                chamber.start()
+            except InstrumentError as first:
+                self.store.event(self.run_id, "fault", f"sending the chamber to {rule.end_c:g} degC: {first}")
+                self.bench.reconnect("chamber", lambda: False)
+                chamber.set_temperature(rule.end_c)
+                chamber.start()
+        except NightbenchError as exc:
+            return f"could not send the chamber to end_c {rule.end_c:g} degC: {exc}"
+        self.store.event(self.run_id, "chamber", f"chamber sent to end_c {rule.end_c:g} degC")
+        return None
+
+    def _rf_off(self) -> str | None:
+        """RF off; if the link is in doubt, a new one is opened to do it (the source's configure()
+        switches RF off first)."""
+        assert self.bench is not None
         source = self.bench.source
         try:
             source.flush()
@@ -257,5 +372,3 @@ class Engine:
                 return f"could not switch RF off: {exc}"
         except NightbenchError as exc:
             return f"could not switch RF off: {exc}"
-        finally:
-            self.bench.close()

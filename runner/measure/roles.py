@@ -10,22 +10,26 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from typing import TypeVar
 
-from nightbench.drivers.dialect import METER_COMMANDS, SOURCE_COMMANDS, merged
+from nightbench.drivers.chamber import ScpiChamber
+from nightbench.drivers.dialect import CHAMBER_COMMANDS, METER_COMMANDS, SOURCE_COMMANDS, merged
 from nightbench.drivers.errors import ConnectionLost, InstrumentError, NightbenchError
 from nightbench.drivers.meter import ScpiDmm, SerialAdc
-from nightbench.drivers.roles import MeterRole, Role, SourceRole
+from nightbench.drivers.roles import ChamberRole, MeterRole, Role, SourceRole
 from nightbench.drivers.source import RfSource
 from nightbench.drivers.transport import Link
-from nightbench.plan.model import AdcSpec, DmmSpec, Plan, SourceSpec
+from nightbench.plan.model import AdcSpec, ChamberSpec, DmmSpec, Plan, SourceSpec
 
 R = TypeVar("R", bound=Role)
 
 
-def _link(spec: SourceSpec | DmmSpec | AdcSpec) -> Link:
+Spec = SourceSpec | DmmSpec | AdcSpec | ChamberSpec
+
+
+def _link(spec: Spec) -> Link:
     return Link(spec.resource, timeout_s=spec.timeout_s, visa_library=spec.visa_library, baud_rate=spec.baud_rate)
 
 
-def _open(name: str, spec: SourceSpec | DmmSpec | AdcSpec, build: Callable[[Link], R]) -> R:
+def _open(name: str, spec: Spec, build: Callable[[Link], R]) -> R:
     """Open a role, prove the instrument answers, then configure it; the link is closed if a step
     fails, and the error says which step (its type and fields kept)."""
     try:
@@ -77,27 +81,48 @@ def open_meter(spec: DmmSpec | AdcSpec) -> MeterRole:
     return _open("meter", dmm, lambda link: ScpiDmm.open(link, nplc=dmm.nplc, range_v=dmm.range_v, commands=commands))
 
 
+def open_chamber(spec: ChamberSpec) -> ChamberRole:
+    """Open the chamber: proven and its error queue emptied, its setpoint left as it is."""
+    commands = merged(CHAMBER_COMMANDS, spec.commands)
+    return _open(
+        "chamber", spec, lambda link: ScpiChamber.open(link, min_c=spec.min_c, max_c=spec.max_c, commands=commands)
+    )
+
+
 @dataclass
 class Bench:
     source: SourceRole
     meter: MeterRole
+    chamber: ChamberRole | None = None
 
     @classmethod
     def open(cls, plan: Plan) -> Bench:
+        """The source first, made safe at once (RF off), before the chamber is touched: after a
+        hard kill RF must be off before anything else happens on the bench (invariant 2)."""
         source = open_source(plan.instruments.source)
+        opened: list[Role] = [source]
         try:
             meter = open_meter(plan.instruments.meter)
+            opened.append(meter)
+            spec = plan.instruments.chamber
+            chamber = open_chamber(spec) if spec is not None else None
         except BaseException:
-            source.close()
+            for role in opened:
+                role.close()
             raise
-        return cls(source, meter)
+        return cls(source, meter, chamber)
+
+    def names(self) -> tuple[str, ...]:
+        return ("source", "meter", "chamber") if self.chamber is not None else ("source", "meter")
 
     def role(self, name: str) -> Role:
-        return {"source": self.source, "meter": self.meter}[name]
+        role = {"source": self.source, "meter": self.meter, "chamber": self.chamber}[name]
+        assert role is not None
+        return role
 
     def role_of(self, exc: InstrumentError) -> str | None:
-        """Which instrument an error came from ('source', 'meter'), by its resource."""
-        for name in ("source", "meter"):
+        """Which instrument an error came from ('source', 'meter', 'chamber'), by its resource."""
+        for name in self.names():
             if exc.resource and exc.resource == self.role(name).resource:
                 return name
         return None
@@ -118,5 +143,5 @@ class Bench:
                     raise
 
     def close(self) -> None:
-        for role in (self.source, self.meter):
-            role.close()
+        for name in self.names():
+            self.role(name).close()

@@ -315,6 +315,31 @@ class Store:
                 "SELECT * FROM fits WHERE run_id=? ORDER BY frequency_hz, temperature_c", (run_id,)
             ).fetchall()
 
+    # -- soaks ------------------------------------------------------------------------------
+    def start_soak(self, run_id: int, temperature_c: float) -> int:
+        """A soak begins (outcome 'soaking' until finish_soak: a kill leaves it so, and says so)."""
+        with self._sql(f"storing a soak of run {run_id}"):
+            cur = self.conn.execute(
+                "INSERT INTO soaks (run_id, temperature_c, started_at, outcome, readings_json) VALUES (?, ?, ?, ?, ?)",
+                (run_id, temperature_c, now_iso(), "soaking", "[]"),
+            )
+        return int(cur.lastrowid or 0)
+
+    def finish_soak(self, soak_id: int, *, seconds: float, outcome: str, readings: list[tuple[float, float]]) -> None:
+        """How a soak ended ('stable', 'timeout', 'interrupted', 'failed'), its duration and the
+        chamber's readings meanwhile as [seconds since the start, degC] pairs."""
+        with self._sql(f"storing the end of soak {soak_id}"):
+            self.conn.execute(
+                "UPDATE soaks SET finished_at=?, seconds=?, outcome=?, readings_json=? WHERE id=?",
+                (now_iso(), seconds, outcome, json.dumps([[round(t, 3), v] for t, v in readings]), soak_id),
+            )
+
+    def soaks(self, run_id: int) -> list[sqlite3.Row]:
+        if self.absent("soaks"):
+            return []
+        with self._sql(f"reading the soaks of run {run_id}"):
+            return self.conn.execute("SELECT * FROM soaks WHERE run_id=? ORDER BY id", (run_id,)).fetchall()
+
     def _transaction(self) -> _Tx:
         return _Tx(self.conn)
 
