@@ -131,6 +131,23 @@ def test_slow_amplitude_recovers_a_known_tail():
     assert np.all(np.isfinite(se))
 
 
+def test_slow_amplitude_and_its_error_match_numpy_least_squares():
+    # reference library: numpy.linalg.lstsq for the coefficient, s2 (X^T X)^-1 for its variance
+    rng = np.random.default_rng(8)
+    taus = np.array([0.01, 0.05, 0.2, 0.43])
+    for n in (6, 40, 160):
+        t = np.sort(rng.uniform(0.0, 0.3, n))
+        t -= t[0]
+        y = 0.01 * np.exp(-t / 0.002) + 0.002 * np.exp(-t / 0.05) + rng.normal(0.0, 1e-3, n)
+        amp, se = slow_amplitudes(t, y, 0.002, taus, 1e-6)
+        for i, tau in enumerate(taus):
+            x = np.column_stack([np.ones(n), np.exp(-t / 0.002), np.exp(-t / tau)])
+            coef = np.linalg.lstsq(x, y, rcond=None)[0]
+            var = np.linalg.inv(x.T @ x)[2, 2] * 1e-6
+            assert amp[i] == pytest.approx(coef[2], rel=1e-6, abs=1e-9), (n, tau)
+            assert se[i] == pytest.approx(math.sqrt(var), rel=1e-6), (n, tau)
+
+
 def test_tail_bound_believes_data_over_the_cap_and_caps_weak_evidence():
     remaining = np.array([1.0])
     # weak evidence (infinite se): the cap decides

@@ -24,6 +24,7 @@ import numpy as np
 TAIL_SEPARATION = 3.0  # a tail is at least this much slower than the main part's time constant
 TAIL_GRID_RATIO = 1.25  # coarse steps in tau_s: the bound varies slowly with it
 TAIL_GRID_MIN_S = 1e-3  # tails faster than this are done within a few readings: the main fit sees them
+COLLINEAR = 1e-10  # a slow column with less than this share of its spread left after projection: no evidence
 
 
 def tail_grid(max_tau_s: float) -> np.ndarray:
@@ -39,35 +40,37 @@ def slow_amplitudes(
 ) -> tuple[np.ndarray, np.ndarray]:
     """Least-squares C_s and its standard error for each tau_s (t from the first reading).
 
-    Columns 1, exp(-t/tau_f), exp(-t/tau_s): a 3x3 normal-equation solve per tau_s. Where the
-    columns are nearly collinear (a window short against tau_s), or tau_s is not clearly slower
-    than tau_f, se is infinite: no evidence.
+    Columns 1, exp(-t/tau_f), exp(-t/tau_s). The first two are projected out in closed form
+    (centre, then remove the fast column), leaving one regression per tau_s: C_s = <x, y> / <x, x>
+    with se = sqrt(s2 / <x, x>) over the projected x and y (the same numbers as the 3 x 3 normal
+    equations, without a matrix inverse and its condition number per tau_s, which cost most of a
+    judgement). Where the slow column is nearly a combination of the other two (a window short
+    against tau_s), or tau_s is not clearly slower than tau_f, se is infinite: no evidence.
     """
     amp = np.zeros(len(taus))
     se = np.full(len(taus), math.inf)
     use = taus >= fast_tau_s * TAIL_SEPARATION
     if len(t) < 4 or not use.any():
         return amp, se
-    slow = taus[use]
     xf = np.exp(-t / fast_tau_s)
-    xs = np.exp(-t[None, :] / slow[:, None])  # (m, n)
-    g = np.empty((len(slow), 3, 3))
-    g[:, 0, 0] = float(len(t))
-    g[:, 0, 1] = g[:, 1, 0] = xf.sum()
-    g[:, 1, 1] = (xf * xf).sum()
-    g[:, 0, 2] = g[:, 2, 0] = xs.sum(axis=1)
-    g[:, 1, 2] = g[:, 2, 1] = (xs * xf).sum(axis=1)
-    g[:, 2, 2] = (xs * xs).sum(axis=1)
-    rhs = np.stack([np.full(len(slow), y.sum()), np.full(len(slow), (xf * y).sum()), (xs * y).sum(axis=1)], axis=1)
-    with np.errstate(all="ignore"):
-        cond = np.linalg.cond(g)
-    ok = np.isfinite(cond) & (cond < 1e12)
-    if ok.any():
-        inv = np.linalg.inv(g[ok])
-        a, s = np.zeros(len(slow)), np.full(len(slow), math.inf)
-        a[ok] = np.einsum("mij,mj->mi", inv, rhs[ok])[:, 2]
-        s[ok] = np.sqrt(np.maximum(inv[:, 2, 2], 0.0) * s2)
-        amp[use], se[use] = a, s
+    xf -= xf.mean()
+    yc = y - y.mean()
+    xs = np.exp(-t[None, :] / taus[use][:, None])  # (m, n)
+    xs -= xs.mean(axis=1, keepdims=True)
+    ss = np.einsum("mn,mn->m", xs, xs)
+    sff = float(xf @ xf)
+    sf = xs @ xf
+    sy = xs @ yc
+    if sff > 0:
+        d = ss - sf * sf / sff
+        num = sy - sf * float(xf @ yc) / sff
+    else:  # the fast part is over before the first reading: nothing to project out
+        d, num = ss, sy
+    ok = d > COLLINEAR * ss
+    a, s = np.zeros(len(d)), np.full(len(d), math.inf)
+    a[ok] = num[ok] / d[ok]
+    s[ok] = np.sqrt(s2 / d[ok])
+    amp[use], se[use] = a, s
     return amp, se
 
 
