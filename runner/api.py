@@ -9,12 +9,12 @@ running night can neither block nor change it.
     db.runs()                                # list of dicts, as `nightbench runs --json`
     pts = db.points(3)                       # {"frequency_hz": array, "power_dbm": array, ...}
     rep = db.report(3, fit_dbm=(-70, -10))   # the typed report, re-analysed with other settings
+    rep = db.report(3, law="square", error_limit_db=[0.5, 1, 3])   # another law, three ranges
 """
 
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -87,26 +87,28 @@ class Results:
         return _frame(self.fits(run_id))
 
     def report(
-        self, run_id: int, *, fit_dbm: tuple[float, float] | None = None, error_limit_db: float | None = None
+        self,
+        run_id: int,
+        *,
+        fit_dbm: tuple[float, float] | None = None,
+        error_limit_db: float | Sequence[float] | None = None,
+        law: str | None = None,
+        reference_c: float | None = None,
     ) -> Report:
-        """Analyse a run again, with the plan's settings or others; stores nothing."""
-        from nightbench.analysis.fit import analyse_run
+        """Analyse a run again: with its own analysis (its latest saved, else its plan's), or with
+        another fit range, error limit(s) (several give one range each), law (log, linear, square)
+        or reference temperature; stores nothing. Bad choices are an InputError."""
         from nightbench.analysis.report import build_report
 
-        report = build_report(self.store, run_id)
-        if fit_dbm is None and error_limit_db is None:
-            return report
-        settings = replace(
-            report.settings,
-            fit_dbm=report.settings.fit_dbm if fit_dbm is None else (float(fit_dbm[0]), float(fit_dbm[1])),
-            error_limit_db=report.settings.error_limit_db if error_limit_db is None else float(error_limit_db),
+        limits = (
+            ()
+            if error_limit_db is None
+            else (error_limit_db,)
+            if isinstance(error_limit_db, int | float)
+            else tuple(error_limit_db)
         )
-        if settings.fit_dbm[0] >= settings.fit_dbm[1] or settings.error_limit_db <= 0:
-            raise InputError("fit_dbm must be (low, high) with low < high, and error_limit_db positive")
-        groups = analyse_run(
-            [dict(r) for r in self.store.points(run_id)], settings.fit_dbm, settings.error_limit_db, settings.accuracy
-        )
-        return replace(report, settings=settings, groups=groups)
+        choices = {"fit_dbm": fit_dbm, "limits": limits, "law": law, "reference_c": reference_c}
+        return build_report(self.store, run_id, choices)
 
 
 def open_db(path: str | Path) -> Results:

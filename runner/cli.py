@@ -180,7 +180,9 @@ def runs(db: str | None, as_json: bool) -> None:
 @click.option("--json", "as_json", is_flag=True, help="machine-readable results")
 @click.option("--out", type=click.Path(), help="write PNG plots, a Markdown summary and CSV files into this directory")
 @click.option("--fit", "fit_dbm", nargs=2, type=float, metavar="LOW HIGH", help="fit range at the DUT, dBm")
-@click.option("--limit", "limits", type=float, multiple=True, metavar="DB", help="error limit of the range, dB (repeat for more ranges)")
+@click.option(
+    "--limit", "limits", type=float, multiple=True, metavar="DB", help="error limit of the range, dB (repeatable)"
+)
 @click.option("--law", type=click.Choice(["log", "linear", "square"]), help="the detector law to fit")
 @click.option("--reference-c", "reference_c", type=float, metavar="T", help="reference temperature, degC")
 @click.option("--save", is_flag=True, help="store this analysis with the run (the views then show it)")
@@ -213,7 +215,7 @@ def report(
         from nightbench.output.files import check_out_dir
 
         check_out_dir(out)
-    store = Store.open_readonly(_db(db))  # reads only: never creates, migrates or writes the file
+    store = _read_store(db)  # reads only: never creates, migrates or writes the file (nor a shared store)
     for run_id in run_ids:
         store.run(run_id)  # every run must exist before anything is written
     choices = {"fit_dbm": fit_dbm, "limits": limits, "law": law, "reference_c": reference_c}

@@ -47,6 +47,7 @@ V_POINTS = [
     "measured_at",
     "chamber_c",
     "dut_c",
+    "error_db",
 ]
 V_FITS = [
     "run_id",
@@ -72,6 +73,15 @@ V_FITS = [
     "unsettled_points",
     "overload_points",
     "analysed_at",
+    "law",
+    "responsivity_v_per_mw",
+    "responsivity_u_v_per_mw",
+    "gain_v_per_v",
+    "gain_u_v_per_v",
+    "offset_v",
+    "offset_u_v",
+    "ranges",
+    "analysis_id",
 ]
 
 
@@ -151,7 +161,8 @@ def _version_1(db: Path) -> None:
     store_run(db, lambda p, f: 0.02 * (p + 90.0))
     conn = sqlite3.connect(db)
     conn.executescript(
-        "DROP VIEW v_points; DROP VIEW v_fits; DROP TRIGGER points_counted; "
+        "DROP VIEW v_points; DROP VIEW v_fits; DROP VIEW v_fits_all; DROP TABLE point_errors; DROP TABLE analyses; "
+        "DROP TRIGGER points_counted; "
         "DROP TRIGGER points_uncounted; DROP TABLE run_counts; DROP TABLE fits; DROP TABLE run_files; "
         "DROP TABLE jobs; DROP TABLE service; DROP TABLE soaks; ALTER TABLE points DROP COLUMN temperature_c; "
         "ALTER TABLE points DROP COLUMN chamber_c; ALTER TABLE points DROP COLUMN dut_c; "

@@ -219,6 +219,14 @@ GROUP_KEYS = [
     "max_abs_error_db",
     "points",
     "unsettled_points",
+    "law",
+    "responsivity_v_per_mw",
+    "responsivity_u_v_per_mw",
+    "gain_v_per_v",
+    "gain_u_v_per_v",
+    "offset_v",
+    "offset_u_v",
+    "ranges",
 ]
 COMPARISON_KEYS = ["run_ids", "runs", "differences", "only_in_a_hz", "only_in_b_hz"]
 DIFFERENCE_KEYS = [
@@ -245,7 +253,17 @@ def test_the_json_shapes_are_the_documented_ones(tmp_path):
     assert list(report) == REPORT_KEYS
     assert [list(g) for g in report["groups"]] == [GROUP_KEYS, GROUP_KEYS]
     assert report["groups"][0]["fit_dbm"] == [-60, -20] and report["dut_id"] == "BRD-A"
-    assert list(report["analysis"]) == ["fit_dbm", "error_limit_db", "k", "method", "uncertainty_terms"]
+    assert list(report["analysis"]) == [
+        "fit_dbm",
+        "error_limit_db",
+        "k",
+        "method",
+        "uncertainty_terms",
+        "law",
+        "error_limits_db",
+        "reference_c",
+        "source",
+    ]
     cmp = _report(db, "1", "2")
     assert list(cmp) == COMPARISON_KEYS
     assert [list(r) for r in cmp["runs"]] == [REPORT_KEYS, REPORT_KEYS]

@@ -3,7 +3,10 @@
 Pure: it takes point rows and returns results. Per group (one frequency): the least-squares line
 V = a + b*P over the plan's fit range, slope b (mV/dB), intercept -a/b (dBm, where the line
 reaches 0 V), the conformance error (V - a - b*P)/b (dB) of every point, and the contiguous range
-around the fit range where |error| stays within the limit. Uncertainties follow JCGM 100:2008
+around the fit range where |error| stays within the limit (one range per limit asked for). The
+other laws (analysis/laws.py) fit the same line in their own input quantity (mW, V rms) and
+report its parameters in natural units; their error is the implied minus the applied level too.
+Uncertainties follow JCGM 100:2008
 (analysis/uncertainty.py): Type A from the fit and the reading scatter, Type B from what the plan
 states about the bench, expanded with k = 2.
 """
@@ -19,6 +22,8 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike
 
+from nightbench.analysis.laws import conformance_db as law_conformance_db
+from nightbench.analysis.laws import get_law, natural_budget
 from nightbench.analysis.uncertainty import Budget, build_budget, expand, type_a_of_mean
 from nightbench.store.fields import BY_NAME, FIELDS, PUBLIC_KEYS, row_values
 
@@ -77,6 +82,7 @@ def range_within(
     """Contiguous span around the fit range where |error| <= limit; ends interpolated, 0.1 dB."""
     order = np.argsort(levels)
     p, e = levels[order], np.abs(errors[order])
+    e = np.where(np.isfinite(e), e, np.inf)  # no implied level (NaN): outside every limit
     centre = 0.5 * (fit_dbm[0] + fit_dbm[1])
     start = int(np.argmin(np.abs(p - centre)))
     if e[start] > limit_db:
@@ -132,6 +138,15 @@ class GroupResult:
     range_low_at_sweep_end: bool = False  # the range end is the last point swept, not a crossing
     range_high_at_sweep_end: bool = False
     curve: list[dict[str, Any]] = field(default_factory=list)  # every point: level, value, error, status
+    law: str = "log"
+    responsivity_v_per_mw: float | None = None  # square law: V = offset + responsivity * P_mW
+    responsivity_u_v_per_mw: float | None = None
+    gain_v_per_v: float | None = None  # linear law: V = offset + gain * v_rms
+    gain_u_v_per_v: float | None = None
+    offset_v: float | None = None  # the square and linear laws' output with no input
+    offset_u_v: float | None = None
+    ranges: list[dict[str, Any]] = field(default_factory=list)  # one per error limit, the first as above
+    law_budget: dict[str, Any] | None = None  # the square and linear laws' JCGM 100 budget
 
     @property
     def residual_sd_v(self) -> float | None:
@@ -139,7 +154,9 @@ class GroupResult:
 
     @property
     def uncertainty_json(self) -> str | None:
-        return None if self.budget is None else json.dumps(self.budget.as_dict())
+        if self.budget is None:
+            return None if self.law_budget is None else json.dumps(self.law_budget)
+        return json.dumps(self.budget.as_dict())
 
     def value(self, name: str) -> Any:
         """A declared field's value by name."""
@@ -169,7 +186,7 @@ class GroupResult:
 
     def stored(self) -> dict[str, Any]:
         """One row of the fits table, by column (store/fields.py FIT_COLUMNS)."""
-        return row_values({f.name: self.value(f.name) for f in FIELDS})
+        return row_values({f.name: self.value(f.name) for f in FIELDS}, stored=True)
 
     def detail(self) -> dict[str, Any]:
         """Everything else a reader or a plot needs: the line, the budget, every point and why."""
@@ -180,12 +197,15 @@ class GroupResult:
             "line": None
             if self.line is None
             else {
+                "law": self.law,
+                "x_unit": get_law(self.law).x_unit,
                 "intercept_v": self.line.intercept_v,
                 "slope_v_per_db": self.line.slope_v_per_db,
                 "residual_sd_v": self.line.residual_sd_v,
                 "n": self.line.n,
             },
-            "uncertainty": None if self.budget is None else self.budget.as_dict(),
+            "law": self.law,
+            "uncertainty": self.law_budget if self.budget is None else self.budget.as_dict(),
             "overload_points": self.overload_points,
             "range_low_at_sweep_end": self.range_low_at_sweep_end,
             "range_high_at_sweep_end": self.range_high_at_sweep_end,
@@ -198,12 +218,17 @@ def analyse_group(
     frequency_hz: float,
     rows: Sequence[Mapping[str, Any]],
     fit_dbm: tuple[float, float],
-    limit_db: float,
+    limit_db: float | Sequence[float],
     accuracy: dict[str, float] | None = None,
     temperature_c: float | None = None,
+    *,
+    law: str = "log",
 ) -> GroupResult:
     """Fit one group of stored points (mappings with power_dbm, value_v, settled, overload and,
-    for the reading-scatter term, stdev_v and samples)."""
+    for the reading-scatter term, stdev_v and samples) with a law; `limit_db` may be several
+    limits, the first being the group's `error_limit_db`."""
+    limits = (float(limit_db),) if isinstance(limit_db, int | float) else tuple(float(x) for x in limit_db)
+    the_law = get_law(law)
     rows = sorted(rows, key=lambda r: r["power_dbm"])
     reasons = [exclusion(r) for r in rows]
     usable = [r for r, why in zip(rows, reasons) if why is None]
@@ -211,10 +236,11 @@ def analyse_group(
         frequency_hz=frequency_hz,
         temperature_c=temperature_c,
         fit_dbm=list(fit_dbm),
-        error_limit_db=limit_db,
+        error_limit_db=limits[0],
         points=len(rows),
         unsettled_points=reasons.count("unsettled"),
         overload_points=reasons.count("overload"),
+        law=law,
     )
     levels = np.array([r["power_dbm"] for r in usable], dtype=float)
     values = np.array([r["value_v"] for r in usable], dtype=float)
@@ -226,41 +252,85 @@ def analyse_group(
             entry = {"power_dbm": r["power_dbm"], "value_v": r["value_v"], "error_db": None, "status": why}
             if why is None:
                 entry["status"] = "in_fit" if in_fit[k] else "outside_fit"
-                entry["error_db"] = None if errors is None else float(errors[k])
+                if errors is not None and math.isfinite(errors[k]):
+                    entry["error_db"] = float(errors[k])
                 k += 1
+            entry["idx"] = r.get("idx")
             out.append(entry)
         return out
 
+    x = the_law.x(levels)
     try:
-        fit = fit_line(levels[in_fit], values[in_fit])
+        fit = fit_line(x[in_fit], values[in_fit])
     except ValueError as exc:
         group.note, group.curve = str(exc), curve(None)
         return group
-    errors = conformance_db(fit, levels, values)
-    low, high = range_within(levels, errors, fit_dbm, limit_db)
+    if law == "log":
+        errors = conformance_db(fit, levels, values)
+    else:
+        errors = law_conformance_db(the_law, fit.intercept_v, fit.slope_v_per_db, levels, values)
+    for limit in limits:
+        low, high = range_within(levels, errors, fit_dbm, limit)
+        group.ranges.append(
+            {
+                "error_limit_db": limit,
+                "range_low_dbm": low,
+                "range_high_dbm": high,
+                "dynamic_range_db": None if low is None or high is None else round(high - low, 1),
+            }
+        )
+    low, high = group.ranges[0]["range_low_dbm"], group.ranges[0]["range_high_dbm"]
     u_y = [_u_mean(r) for r, ok in zip(usable, in_fit) if ok]
-    budget = build_budget(
-        slope_v_per_db=fit.slope_v_per_db,
-        intercept_v=fit.intercept_v,
-        u_slope_fit=fit.u_slope_v_per_db,
-        u_intercept_fit_db=fit.u_intercept_dbm,
-        residual_sd_v=fit.residual_sd_v,
-        x=levels[in_fit],
-        u_y=u_y,
-        accuracy=accuracy or {},
-    )
-    group.slope_mv_per_db = fit.slope_v_per_db * 1e3
-    group.slope_u_mv_per_db = expand(budget.slope_u_mv_per_db)
-    group.intercept_dbm = fit.intercept_dbm
-    group.intercept_u_db = expand(budget.intercept_u_db)
+    _parameters(group, fit, levels[in_fit], x[in_fit], u_y, accuracy or {})
     group.range_low_dbm, group.range_high_dbm = low, high
-    group.dynamic_range_db = None if low is None or high is None else round(high - low, 1)
-    group.max_abs_error_db = float(np.max(np.abs(errors[in_fit])))
-    group.line, group.budget = fit, budget
+    group.dynamic_range_db = group.ranges[0]["dynamic_range_db"]
+    finite = np.abs(errors[in_fit])
+    finite = finite[np.isfinite(finite)]
+    group.max_abs_error_db = float(np.max(finite)) if len(finite) else None
+    group.line = fit
     group.range_low_at_sweep_end = low is not None and low == round(float(levels.min()), 1)
     group.range_high_at_sweep_end = high is not None and high == round(float(levels.max()), 1)
     group.curve = curve(errors)
     return group
+
+
+def _parameters(
+    group: GroupResult, fit: LineFit, levels: np.ndarray, x: np.ndarray, u_y: list[float | None], accuracy: dict
+) -> None:
+    """The law's parameters and their budget: slope and intercept for log, else the natural ones."""
+    law = get_law(group.law)
+    if law.param is None:
+        budget = build_budget(
+            slope_v_per_db=fit.slope_v_per_db,
+            intercept_v=fit.intercept_v,
+            u_slope_fit=fit.u_slope_v_per_db,
+            u_intercept_fit_db=fit.u_intercept_dbm,
+            residual_sd_v=fit.residual_sd_v,
+            x=levels,
+            u_y=u_y,
+            accuracy=accuracy,
+        )
+        group.slope_mv_per_db = fit.slope_v_per_db * 1e3
+        group.slope_u_mv_per_db = expand(budget.slope_u_mv_per_db)
+        group.intercept_dbm = fit.intercept_dbm
+        group.intercept_u_db = expand(budget.intercept_u_db)
+        group.budget = budget
+        return
+    nat = natural_budget(
+        law,
+        slope=fit.slope_v_per_db,
+        intercept_v=fit.intercept_v,
+        u_slope_fit=fit.u_slope_v_per_db,
+        u_intercept_fit=fit.u_intercept_v,
+        x=x,
+        u_y=u_y,
+        residual_sd_v=fit.residual_sd_v,
+        accuracy=accuracy,
+    )
+    setattr(group, law.param, fit.slope_v_per_db)
+    setattr(group, law.param.replace("_v_per", "_u_v_per"), nat["param_U"])
+    group.offset_v, group.offset_u_v = fit.intercept_v, nat["offset_U_v"]
+    group.law_budget = nat
 
 
 def _u_mean(row: Mapping[str, Any]) -> float | None:
@@ -271,14 +341,16 @@ def _u_mean(row: Mapping[str, Any]) -> float | None:
 def analyse_run(
     points: Sequence[Mapping[str, Any]],
     fit_dbm: tuple[float, float],
-    limit_db: float,
+    limit_db: float | Sequence[float],
     accuracy: dict[str, float] | None = None,
+    *,
+    law: str = "log",
 ) -> list[GroupResult]:
     """One result per group: each frequency (and, once points carry it, each temperature)."""
     groups: dict[tuple[float, float | None], list[Mapping[str, Any]]] = {}
     for row in points:
         groups.setdefault((row["frequency_hz"], row.get("temperature_c")), []).append(row)
     return [
-        analyse_group(f, rows, fit_dbm, limit_db, accuracy, temperature_c=t)
+        analyse_group(f, rows, fit_dbm, limit_db, accuracy, temperature_c=t, law=law)
         for (f, t), rows in sorted(groups.items(), key=lambda kv: (kv[0][0], kv[0][1] or 0.0))
     ]

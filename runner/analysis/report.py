@@ -11,12 +11,15 @@ term is, every point's conformance error, the points left out and why) sits in `
 from __future__ import annotations
 
 import json
+import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 from nightbench.analysis.fit import GroupResult, analyse_run
+from nightbench.analysis.laws import LAWS
 from nightbench.analysis.uncertainty import K_EXPANSION, TERMS, describe_terms
+from nightbench.drivers.errors import InputError
 from nightbench.store.db import Store
 
 ACCURACY_KEYS = tuple(plan_key for _, plan_key, _ in TERMS.values() if plan_key)
@@ -35,20 +38,74 @@ def plan_accuracy(analysis: Mapping[str, Any]) -> dict[str, float]:
 
 @dataclass(frozen=True)
 class Settings:
-    """The plan's `analysis` section as the report used it."""
+    """What the analysis used: the plan's `analysis` section, or the run's latest saved analysis,
+    or the options `report` was given (`source` says which), and the plan's Type B terms."""
 
     fit_dbm: tuple[float, float]
     error_limit_db: float
     accuracy: dict[str, float]
     k: float = K_EXPANSION
+    law: str = "log"
+    error_limits_db: tuple[float, ...] = ()  # every limit asked for, the first being error_limit_db
+    reference_c: float | None = None
+    source: str = "plan"
+
+    @property
+    def limits(self) -> tuple[float, ...]:
+        return self.error_limits_db or (self.error_limit_db,)
 
     @classmethod
     def from_plan(cls, analysis: Mapping[str, Any]) -> Settings:
+        limit = float(analysis["error_limit_db"])
+        reference = analysis.get("reference_c")
         return cls(
             (float(analysis["fit_dbm"][0]), float(analysis["fit_dbm"][1])),
-            float(analysis["error_limit_db"]),
+            limit,
             plan_accuracy(analysis),
+            law=str(analysis.get("law") or "log"),
+            error_limits_db=(limit,),
+            reference_c=None if reference is None else float(reference),
         )
+
+    def with_choices(
+        self,
+        *,
+        fit_dbm: Sequence[float] | None = None,
+        limits: Sequence[float] | None = None,
+        law: str | None = None,
+        reference_c: float | None = None,
+        source: str,
+    ) -> Settings:
+        """These settings with the given choices instead; a bad choice is an InputError naming it."""
+        fit = self.fit_dbm if fit_dbm is None else (float(fit_dbm[0]), float(fit_dbm[1]))
+        if not (math.isfinite(fit[0]) and math.isfinite(fit[1]) and fit[0] < fit[1]):
+            raise InputError(f"--fit must be LOW HIGH with LOW < HIGH (dBm), got {fit[0]:g} {fit[1]:g}")
+        chosen = self.limits if not limits else tuple(float(x) for x in limits)
+        if not all(math.isfinite(x) and x > 0 for x in chosen):
+            raise InputError(f"--limit must be a positive number of dB, got {', '.join(f'{x:g}' for x in chosen)}")
+        law = self.law if law is None else law
+        if law not in LAWS:
+            raise InputError(f"--law must be one of {', '.join(LAWS)}, got {law!r}")
+        if reference_c is not None and not math.isfinite(reference_c):
+            raise InputError("--reference-c must be a temperature in degC")
+        return replace(
+            self,
+            fit_dbm=fit,
+            error_limit_db=chosen[0],
+            error_limits_db=chosen,
+            law=law,
+            reference_c=self.reference_c if reference_c is None else float(reference_c),
+            source=source,
+        )
+
+    def stored(self) -> dict[str, Any]:
+        """The analyses row's settings (store/db.py save_analysis)."""
+        return {
+            "law": self.law,
+            "fit_dbm": self.fit_dbm,
+            "error_limits_db": list(self.limits),
+            "reference_c": self.reference_c,
+        }
 
     def to_json(self) -> dict[str, Any]:
         return {
@@ -57,6 +114,10 @@ class Settings:
             "k": self.k,
             "method": METHOD,
             "uncertainty_terms": describe_terms(self.accuracy),
+            "law": self.law,
+            "error_limits_db": list(self.limits),
+            "reference_c": self.reference_c,
+            "source": self.source,
         }
 
 
@@ -81,11 +142,12 @@ class Report:
         }
 
 
-def analyse(run: Mapping[str, Any], points: Sequence[Mapping[str, Any]]) -> Report:
+def analyse(run: Mapping[str, Any], points: Sequence[Mapping[str, Any]], settings: Settings | None = None) -> Report:
     """The report of a run from its `runs` row (id, name, state, dut_id, times, plan_json) and
-    its point rows; touches nothing else."""
-    settings = Settings.from_plan(json.loads(run["plan_json"])["analysis"])
-    groups = analyse_run(points, settings.fit_dbm, settings.error_limit_db, settings.accuracy)
+    its point rows, with the plan's settings unless others are given; touches nothing else."""
+    if settings is None:
+        settings = Settings.from_plan(json.loads(run["plan_json"])["analysis"])
+    groups = analyse_run(points, settings.fit_dbm, settings.limits, settings.accuracy, law=settings.law)
     return Report(
         run_id=int(run["id"]),
         name=run["name"],
@@ -98,11 +160,57 @@ def analyse(run: Mapping[str, Any], points: Sequence[Mapping[str, Any]]) -> Repo
     )
 
 
-def build_report(store: Store, run_id: int) -> Report:
-    """Analyse a stored run. Reads only: a read-only store will do (Store.open_readonly)."""
-    return analyse(dict(store.run(run_id)), [dict(r) for r in store.points(run_id)])
+def run_settings(store: Store, run_id: int) -> Settings:
+    """The run's analysis: its latest stored one (the run's own or a `report --save`), else its plan's."""
+    plan = Settings.from_plan(json.loads(store.run(run_id)["plan_json"])["analysis"])
+    saved = store.analyses(run_id)
+    if not saved:
+        return plan
+    last = saved[-1]
+    return plan.with_choices(
+        fit_dbm=last["fit_dbm"],
+        limits=last["error_limits_db"],
+        law=last["law"],
+        reference_c=last["reference_c"],
+        source=f"saved analysis {last['id']} ({last['origin']}, {last['analysed_at']})",
+    )
+
+
+def build_report(store: Store, run_id: int, choices: Mapping[str, Any] | None = None) -> Report:
+    """Analyse a stored run with its own analysis (run_settings), or with `choices` (fit_dbm, limits,
+    law, reference_c: any left None keep the run's). Reads only: a read-only store will do."""
+    run = dict(store.run(run_id))
+    points = [dict(r) for r in store.points(run_id)]
+    settings = run_settings(store, run_id)
+    if choices and any(v is not None and v != () for v in choices.values()):
+        settings = settings.with_choices(**{k: v for k, v in choices.items() if v != ()}, source="report options")
+        levels = {round(float(p["power_dbm"]), 9) for p in points}
+        inside = [p for p in levels if settings.fit_dbm[0] - 1e-9 <= p <= settings.fit_dbm[1] + 1e-9]
+        if points and len(inside) < 3:
+            raise InputError(
+                f"--fit {settings.fit_dbm[0]:g} {settings.fit_dbm[1]:g} holds {len(inside)} of the run's levels: "
+                "a fit needs at least three"
+            )
+    return analyse(run, points, settings)
+
+
+def _point_errors(report: Report) -> list[tuple[int, float | None]]:
+    return [(int(c["idx"]), c["error_db"]) for g in report.groups for c in g.curve if c.get("idx") is not None]
 
 
 def save_fits(store: Store, report: Report) -> None:
-    """Replace the run's rows in the fits table (what v_fits shows) with this report's groups."""
-    store.replace_fits(report.run_id, [g.stored() for g in report.groups])
+    """Store this report as the run's own analysis (at completion), replacing the previous one."""
+    store.save_analysis(
+        report.run_id, report.settings.stored(), [g.stored() for g in report.groups], _point_errors(report)
+    )
+
+
+def save_analysis(store: Store, report: Report) -> int:
+    """`report --save`: store this report as one more analysis of its run; the views show the latest."""
+    return store.save_analysis(
+        report.run_id,
+        report.settings.stored(),
+        [g.stored() for g in report.groups],
+        _point_errors(report),
+        origin="report",
+    )

@@ -1,7 +1,10 @@
 """One row per point, as CSV or JSON (the export columns of docs/design.md first).
 
 CSV is only the table (header row first, so any reader takes it); JSON adds the run's metadata
-and its stored plan, so an export alone says what was measured, on what, and how.
+and its stored plan, so an export alone says what was measured, on what, and how. The last
+column, `error_db`, is each point's conformance error in the run's analysis (its latest saved,
+else its plan's; `report --out` passes the analysis it shows), analysed afresh, so a run not yet
+analysed has it too.
 """
 
 from __future__ import annotations
@@ -10,6 +13,7 @@ import csv
 import json
 from typing import TextIO
 
+from nightbench.analysis.report import Report, build_report
 from nightbench.store.db import Store
 
 COLUMNS = [
@@ -25,6 +29,7 @@ COLUMNS = [
     "settle_readings",
     "idx",
     "measured_at",
+    "error_db",
 ]
 # the run's metadata in a JSON export; the plan comes both parsed (as validated) and as the exact text
 RUN_METADATA = (
@@ -43,9 +48,16 @@ RUN_METADATA = (
 )
 
 
-def write_export(store: Store, run_id: int, fmt: str, out: TextIO) -> None:
+def point_errors(report: Report) -> dict[int, float | None]:
+    """idx -> conformance error (dB) of every point of the report's run (None: left out or no level implied)."""
+    return {int(c["idx"]): c["error_db"] for g in report.groups for c in g.curve if c.get("idx") is not None}
+
+
+def write_export(store: Store, run_id: int, fmt: str, out: TextIO, report: Report | None = None) -> None:
     run = store.run(run_id)
-    rows = [{c: r[c] for c in COLUMNS} for r in store.points(run_id)]
+    report = report if report is not None else build_report(store, run_id)
+    errors = point_errors(report)
+    rows = [{**{c: r[c] for c in COLUMNS[:-1]}, "error_db": errors.get(r["idx"])} for r in store.points(run_id)]
     if fmt == "csv":
         writer = csv.DictWriter(out, fieldnames=COLUMNS, lineterminator="\n")
         writer.writeheader()
@@ -53,7 +65,14 @@ def write_export(store: Store, run_id: int, fmt: str, out: TextIO) -> None:
         return
     meta = {k: run[k] for k in RUN_METADATA}
     json.dump(
-        {"run_id": run_id, **meta, "plan": json.loads(run["plan_json"]), "plan_text": run["plan_text"], "points": rows},
+        {
+            "run_id": run_id,
+            **meta,
+            "plan": json.loads(run["plan_json"]),
+            "plan_text": run["plan_text"],
+            "points": rows,
+            "analysis": report.settings.to_json(),
+        },
         out,
         indent=1,
     )

@@ -57,7 +57,7 @@ def write_outputs(store: Store, reports: list[Report], comparison_text: str | No
     for report in reports:
         path = out / f"points-run{report.run_id}.csv"
         with path.open("w", encoding="utf-8", newline="") as fh:
-            write_export(store, report.run_id, "csv", fh)
+            write_export(store, report.run_id, "csv", fh, report)
         files.append(path)
     summary = out / "summary.md"
     summary.write_text(markdown_summary(reports, comparison_text, [f.name for f in files]), encoding="utf-8")

@@ -7,8 +7,8 @@ store/fields.py), with the units in brackets.
 from __future__ import annotations
 
 from nightbench.analysis.report import Report
-from nightbench.output.table import cell, render_budget, render_excluded
-from nightbench.store.fields import TABLE_FIELDS, Field
+from nightbench.output.table import cell, extra_ranges, render_budget, render_excluded, settings_line
+from nightbench.store.fields import Field, table_fields
 
 
 def _md(text: str) -> str:
@@ -20,8 +20,9 @@ def _header(f: Field) -> str:
 
 
 def _results(report: Report) -> list[str]:
-    out = ["| " + " | ".join(_md(_header(f)) for f in TABLE_FIELDS) + " |", "|" + " ---: |" * len(TABLE_FIELDS)]
-    out += ["| " + " | ".join(_md(cell(f, g)) for f in TABLE_FIELDS) + " |" for g in report.groups]
+    fields = table_fields(report.settings.law)
+    out = ["| " + " | ".join(_md(_header(f)) for f in fields) + " |", "|" + " ---: |" * len(fields)]
+    out += ["| " + " | ".join(_md(cell(f, g)) for f in fields) + " |" for g in report.groups]
     return out
 
 
@@ -32,14 +33,15 @@ def _run_section(report: Report) -> list[str]:
         "",
         f"- DUT: {report.dut_id or 'not given'}; state: {report.state}; "
         f"started {report.started_at or '-'}, finished {report.finished_at or '-'}",
-        f"- straight line fitted over {s.fit_dbm[0]:g} .. {s.fit_dbm[1]:g} dBm at the DUT; dynamic "
-        f"range = contiguous span with |error| <= {s.error_limit_db:g} dB, ends interpolated to 0.1 dB "
-        "('<=' or '>=': the sweep ended first)",
+        f"- {settings_line(report)}; the error is the level the output implies through the fitted law "
+        "minus the level applied; dynamic range = contiguous span around the fit range within the limit, "
+        "ends interpolated to 0.1 dB",
         f"- ± is the expanded uncertainty U = k u_c with k = {s.k:g}: {s.to_json()['method']}",
         "",
         *_results(report),
         "",
         "```",
+        *extra_ranges(report),
         *render_budget(report),
         "",
         *render_excluded(report),

@@ -1,5 +1,9 @@
 """PNG plots of one report, or two side by side: transfer curve, conformance error, slope/intercept.
 
+They follow the report's analysis: the fitted law's curve (a straight line in dB only for the
+log law), its error, and for the square and linear laws their own parameters (responsivity or
+gain, and offset) in place of slope and intercept.
+
 Drawn from the report object alone (never the store), with matplotlib's object API on the Agg
 canvas: no pyplot, no GUI backend, so it works on a headless bench PC and in CI. matplotlib is
 imported here, and this module only by `report --out`.
@@ -11,11 +15,14 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
 from nightbench.analysis.fit import GroupResult
+from nightbench.analysis.laws import get_law
 from nightbench.analysis.report import Report
+from nightbench.store.fields import BY_NAME
 
 MARKERS = ("o", "^")
 LINESTYLES = ("-", "--")
@@ -71,8 +78,8 @@ def transfer_plot(reports: list[Report], path: Path) -> Path:
     ax = fig.add_subplot()
     left_out_label = "left out (did not settle)"
     for r_i, colour, g, label in _groups(reports):
-        used = [c for c in g.curve if c["error_db"] is not None]
-        left_out = [c for c in g.curve if c["error_db"] is None and c["value_v"] is not None]
+        used = [c for c in g.curve if c["status"] in ("in_fit", "outside_fit")]
+        left_out = [c for c in g.curve if c["status"] not in ("in_fit", "outside_fit") and c["value_v"] is not None]
         ax.plot(
             [c["power_dbm"] for c in used],
             [c["value_v"] for c in used],
@@ -96,9 +103,11 @@ def transfer_plot(reports: list[Report], path: Path) -> Path:
         line = g.line
         if line is not None:
             levels = [c["power_dbm"] for c in g.curve]
-            xs = [min(levels), max(levels)]
-            ax.plot(xs, [line.intercept_v + line.slope_v_per_db * x for x in xs], LINESTYLES[r_i], lw=0.9, color=colour)
-    _level_axes(ax, reports, "detector output (V)", "Transfer curve and straight-line fit")
+            dbm = np.linspace(min(levels), max(levels), 200)
+            fitted = line.intercept_v + line.slope_v_per_db * get_law(g.law).x(dbm)
+            ax.plot(dbm, fitted, LINESTYLES[r_i], lw=0.9, color=colour)
+    law = reports[0].settings.law
+    _level_axes(ax, reports, "detector output (V)", f"Transfer curve and fitted {law} law")
     return _save(fig, path)
 
 
@@ -124,22 +133,37 @@ def conformance_plot(reports: list[Report], path: Path) -> Path:
                 ax.axvline(end, color=colour, lw=0.6, ls=":")
     ax.axhspan(-limit, limit, color="tab:green", alpha=0.12, zorder=0, label=f"±{limit:g} dB limit")
     ax.set_ylim(-3 * limit, 3 * limit)
-    _level_axes(ax, reports, "log-conformance error (dB)", "Conformance error (dotted: ends of the dynamic range)")
+    _level_axes(
+        ax,
+        reports,
+        f"conformance error to the {reports[0].settings.law} law (dB)",
+        "Implied minus applied level (dotted: ends of the dynamic range)",
+    )
     return _save(fig, path)
 
 
+# the two parameters plotted against frequency for each law: (field, its uncertainty, axis label)
+PARAMETERS = {
+    "log": (("slope_mv_per_db", "slope (mV/dB)"), ("intercept_dbm", "intercept (dBm)")),
+    "square": (("responsivity_v_per_mw", "responsivity (V/mW)"), ("offset_v", "offset (V)")),
+    "linear": (("gain_v_per_v", "gain (V/V)"), ("offset_v", "offset (V)")),
+}
+
+
 def slope_intercept_plot(reports: list[Report], path: Path) -> Path:
-    """Slope and intercept against frequency, with error bars of the expanded uncertainty (k = 2)."""
+    """The law's two parameters against frequency (slope and intercept for the log law), with error
+    bars of the expanded uncertainty (k = 2)."""
     fig = Figure(figsize=(8, 6), layout="constrained")
     top, bottom = fig.subplots(2, 1, sharex=True)
+    (first, first_label), (second, second_label) = PARAMETERS[reports[0].settings.law]
     for r_i, report in enumerate(reports):
-        fitted = [g for g in report.groups if g.slope_mv_per_db is not None]
+        fitted = [g for g in report.groups if g.value(first) is not None]
         mhz = [g.frequency_hz / 1e6 for g in fitted]
         name = f"run {report.run_id}" + (f" ({report.dut_id})" if report.dut_id else "")
         top.errorbar(
             mhz,
-            [g.slope_mv_per_db for g in fitted],
-            yerr=[g.slope_u_mv_per_db for g in fitted],
+            [g.value(first) for g in fitted],
+            yerr=[g.value(BY_NAME[first].with_u or first) for g in fitted],
             fmt=MARKERS[r_i] + LINESTYLES[r_i],
             capsize=3,
             ms=4,
@@ -147,20 +171,24 @@ def slope_intercept_plot(reports: list[Report], path: Path) -> Path:
         )
         bottom.errorbar(
             mhz,
-            [g.intercept_dbm for g in fitted],
-            yerr=[g.intercept_u_db for g in fitted],
+            [g.value(second) for g in fitted],
+            yerr=[g.value(BY_NAME[second].with_u or second) for g in fitted],
             fmt=MARKERS[r_i] + LINESTYLES[r_i],
             capsize=3,
             ms=4,
             label=name,
         )
-    top.set_ylabel("slope (mV/dB)")
-    bottom.set_ylabel("intercept (dBm)")
+    top.set_ylabel(first_label)
+    bottom.set_ylabel(second_label)
     bottom.set_xlabel("frequency (MHz)")
     for ax in (top, bottom):
         ax.grid(True, lw=0.4, alpha=0.6)
         ax.legend(fontsize="small")
-    top.set_title(f"Slope and intercept, error bars U (k = 2)\n{_title(reports)}", fontsize="medium")
+    top.set_title(
+        f"{first_label.split(' (')[0].capitalize()} and {second_label.split(' (')[0]}, error bars U (k = 2)"
+        f"\n{_title(reports)}",
+        fontsize="medium",
+    )
     return _save(fig, path)
 
 

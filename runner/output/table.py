@@ -14,7 +14,7 @@ from nightbench.analysis.compare import Comparison, u_key
 from nightbench.analysis.fit import GroupResult
 from nightbench.analysis.report import Report
 from nightbench.analysis.uncertainty import AFFECTS, TERMS
-from nightbench.store.fields import BY_NAME, TABLE_FIELDS, Field
+from nightbench.store.fields import BY_NAME, TABLE_FIELDS, Field, table_fields
 
 FREQUENCY = BY_NAME["frequency_hz"]
 
@@ -59,8 +59,42 @@ def title(report: Report) -> str:
     return f"run {report.run_id} {report.name} ({report.state})" + (f", DUT {report.dut_id}" if report.dut_id else "")
 
 
+LAW_WORDS = {
+    "log": "straight line in dB (log law)",
+    "square": "square law (output linear in input mW)",
+    "linear": "linear law (output linear in input V rms, 50 ohm)",
+}
+
+
+def settings_line(report: Report) -> str:
+    """What the analysis used, in words: law, fit range, limit, where the settings came from."""
+    s = report.settings
+    ref = f"; reference {s.reference_c:g} C" if s.reference_c is not None else ""
+    return (
+        f"{LAW_WORDS.get(s.law, s.law)} fitted over {s.fit_dbm[0]:g} .. {s.fit_dbm[1]:g} dBm; range where "
+        f"|error| <= {s.error_limit_db:g} dB ('<=', '>=': the sweep ends first){ref}; settings: {s.source}; "
+        f"± is the expanded uncertainty U (k = {s.k:g})"
+    )
+
+
+def extra_ranges(report: Report) -> list[str]:
+    """The ranges at every further --limit, one line per group: as data sheets give 0.5, 1 and 3 dB ranges."""
+    if len(report.settings.limits) < 2:
+        return []
+    out = ["ranges at each error limit (dBm, dB):"]
+    for g in report.groups:
+        parts = [
+            f"±{r['error_limit_db']:g} dB: {num(r['range_low_dbm'], '.1f')} .. {num(r['range_high_dbm'], '.1f')}"
+            f" ({num(r['dynamic_range_db'], '.1f')} dB)"
+            for r in g.ranges
+        ]
+        out.append(f"  {shown(FREQUENCY, g)} MHz  " + "; ".join(parts or ["not fitted"]))
+    return out
+
+
 def render_table(report: Report) -> str:
-    rows = [[header(f) for f in TABLE_FIELDS]] + [[cell(f, g) for f in TABLE_FIELDS] for g in report.groups]
+    fields = table_fields(report.settings.law)
+    rows = [[header(f) for f in fields]] + [[cell(f, g) for f in fields] for g in report.groups]
     table = align(rows)
     width = max(len(r[0]) for r in rows)
     lines = [title(report), table[0]]
@@ -70,12 +104,8 @@ def render_table(report: Report) -> str:
             lines.append(f"{'':{width}} not fitted: {g.note}")
     if not report.groups:
         lines.append(f"{'':{width}} no points stored for this run")
-    s = report.settings
-    lines.append(
-        f"fit over {s.fit_dbm[0]:g} .. {s.fit_dbm[1]:g} dBm; range where |error| <= "
-        f"{s.error_limit_db:g} dB ('<=', '>=': the sweep ends first); "
-        f"± is the expanded uncertainty U (k = {s.k:g})"
-    )
+    lines.append(settings_line(report))
+    lines += extra_ranges(report)
     lines += ["", *render_budget(report), "", *render_excluded(report)]
     return "\n".join(lines)
 
@@ -84,7 +114,8 @@ def render_budget(report: Report) -> list[str]:
     """Two small tables (slope, intercept): one row per group, one column per term."""
     keys = list(TERMS)
     out = []
-    for quantity, unit, fmt in (("slope", "mV/dB", ".4f"), ("intercept", "dB", ".3f")):
+    log_groups = any(g.budget is not None for g in report.groups)
+    for quantity, unit, fmt in (("slope", "mV/dB", ".4f"), ("intercept", "dB", ".3f")) if log_groups else ():
         term_key = "slope_u_mv_per_db" if quantity == "slope" else "intercept_u_db"
         out.append(f"{quantity} budget: standard uncertainties in {unit} (* = combined)")
         widths = [max(len(k), 7) + 1 for k in keys]
@@ -102,6 +133,7 @@ def render_budget(report: Report) -> list[str]:
             uc = u["slope_uc_mv_per_db"] if quantity == "slope" else u["intercept_uc_db"]
             big = u["slope_U_mv_per_db"] if quantity == "slope" else u["intercept_U_db"]
             out.append(f"{shown(FREQUENCY, g):>10} " + " ".join(cells) + f" {uc:8{fmt}} {big:8{fmt}}")
+    out += render_law_budget(report)
     out.append("terms:")
     for t in report.settings.to_json()["uncertainty_terms"]:
         stated = ""
@@ -112,6 +144,24 @@ def render_budget(report: Report) -> list[str]:
                 else f", not stated ({t['plan_key']} = 0)"
             )
         out.append(f"  {t['key']} (Type {t['type']}{stated}): {t['what']}")
+    return out
+
+
+def render_law_budget(report: Report) -> list[str]:
+    """The square and linear laws' budgets: one line per group, standard uncertainties per term."""
+    out = []
+    for g in report.groups:
+        nat = g.law_budget
+        if nat is None:
+            continue
+        parts = [
+            f"{t['key']}{'*' if t['included'] else ''} {t['param_u']:.3g} / {t['offset_u'] * 1e3:.3g} mV"
+            for t in nat["terms"]
+        ]
+        out.append(f"{shown(FREQUENCY, g)} MHz {nat['parameter']} / offset: " + ", ".join(parts))
+    if out:
+        out.insert(0, "law budget: standard uncertainties of the law's parameter / of its offset (* = combined)")
+        out.append("  input_level: the source level and path loss accuracies, as a scale on the parameter")
     return out
 
 

@@ -307,6 +307,9 @@ class Analysis(_Strict):
     error_limit_db: Positive = 1.0
     # the temperature whose fit line is the reference for error over temperature (Plan.reference_c)
     reference_c: Finite | None = None
+    # the detector's law (analysis/laws.py): log (output linear in dBm), linear (in input volts),
+    # square (in input mW); `report --law` may choose another
+    law: Literal["log", "linear", "square"] = "log"
     # What the bench's data sheets promise, as half-widths of rectangular distributions (the
     # Type B inputs of JCGM 100:2008, 4.3.7). 0 = not stated: the term is shown as 0, not guessed.
     source_level_accuracy_db: NonNegative = 0.0  # absolute level accuracy of the source, +/- dB
