@@ -29,6 +29,9 @@ COLUMNS = [
     "settle_readings",
     "idx",
     "measured_at",
+    "temperature_c",  # the chamber setpoint, and the chamber's and a DUT sensor's readings (runs with a chamber)
+    "chamber_c",
+    "dut_c",
     "error_db",
 ]
 # the run's metadata in a JSON export; the plan comes both parsed (as validated) and as the exact text
