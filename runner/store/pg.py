@@ -22,7 +22,13 @@ from nightbench.store.schema import SCHEMA_VERSION
 
 SCHEMES = ("postgresql://", "postgres://")
 # libpq's words for a refusal that trying again will not cure: a wrong name, password or database
-REFUSED = ("password authentication failed", "no password supplied", "does not exist", "no pg_hba.conf entry")
+REFUSED = (
+    "password authentication failed",
+    "no password supplied",
+    "does not exist",
+    "no pg_hba.conf entry",
+    "invalid",  # a URL libpq parsed but cannot use (a port that is not a number, an unknown option)
+)
 
 
 def is_pg_url(target: str | None) -> bool:
