@@ -90,6 +90,8 @@ class VisaTransport:
             session = self._inst.visalib.sessions[self._inst.session]
         except (AttributeError, KeyError):
             session = None
+        except self._errors as exc:  # a resource already closed (a reconnect that failed): pyvisa's InvalidSession
+            raise ConnectionLost(_describe(exc), resource=self.resource) from exc
         link = getattr(session, "interface", None)
         if session is None or link is None:
             with contextlib.suppress(*self._errors):
