@@ -114,7 +114,9 @@ def natural_budget(
     path loss) scales x by exp(d / db_per_neper), so b by the inverse: u(b)/b = u(d)/db_per_neper;
     the meter's gain scales b and a by its fraction; its offset adds to a.
     """
-    terms = [{"key": "fit", "type": "A", "param_u": u_slope_fit, "offset_u": u_intercept_fit, "included": True}]
+    terms: list[dict[str, Any]] = [
+        {"key": "fit", "type": "A", "param_u": u_slope_fit, "offset_u": u_intercept_fit, "included": True}
+    ]
     known = [u for u in u_y if u is not None]
     if known and len(known) == len(u_y):
         uy = np.asarray(known, dtype=float)
