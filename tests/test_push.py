@@ -121,7 +121,7 @@ def test_report_export_and_runs_from_the_server_equal_the_local_file(tmp_path, p
     listing = json.loads(cli("runs", "--db", pg_url, "--json").stdout)
     assert [(r["id"], r["bench"], r["local_id"]) for r in listing] == [(1, "b", 1), (2, "a", 1), (3, "a", 2)]
     assert all(r["points_done"] == r["points_total"] == 82 for r in listing if r["bench"] == "a")
-    for shared_id, local_id in ((2, 1), (3, 2)):
+    for shared_id, local_id in ((3, 2),):  # the second run of bench a: neither id is the other's
         here = cli("report", str(local_id), "--db", str(a), "--json")
         there = cli("report", str(shared_id), "--db", pg_url, "--json")
         assert here.returncode == 0 and there.returncode == 0, there.stderr
@@ -312,3 +312,50 @@ def test_a_least_privilege_role_pushes_and_reads_and_can_do_nothing_else(tmp_pat
     assert sqlite3.connect(db).execute("SELECT DISTINCT target FROM pushes").fetchall() == [
         (url.replace("bench-secret", "***"),)
     ]
+
+
+def test_serve_push_to_catches_up_after_the_server_was_down_mid_night(bench, write_plan, db, cluster, tmp_path):
+    """Acceptance: runs complete locally while the server is stopped, and appear on it after it
+    comes back, with no manual step; the failures are logged and shown by `queue`."""
+    from tests.conftest import plan_dict, wait_until
+
+    url = cluster.new_database()
+    sweep = {"frequency_hz": [100e6], "power_dbm": {"start": -60, "stop": -20, "step": 10}}
+    plan = write_plan(plan_dict(bench.resources, sweep=sweep))
+    err = tmp_path / "serve.log"
+    argv = ["serve", "--db", str(db), "--poll", "0.1", "--push-to", url, "--push-retry", "0.5"]
+    with err.open("w") as fh:
+        proc = subprocess.Popen([sys.executable, "-m", "nightbench", *argv], stdout=subprocess.DEVNULL, stderr=fh)
+    try:
+        assert cli("submit", str(plan), "--db", str(db)).returncode == 0
+        wait_until(lambda: _pushed(url) == 1, "run 1 on the server", timeout_s=60)
+        cluster.stop()  # mid-night: the server goes away
+        try:
+            assert cli("submit", str(plan), "--db", str(db)).returncode == 0
+            assert cli("submit", str(plan), "--db", str(db)).returncode == 0
+
+            def two_done() -> bool:
+                rows = sqlite3.connect(db).execute("SELECT state FROM runs ORDER BY id").fetchall()
+                return rows == [("completed",)] * 3
+
+            wait_until(two_done, "runs 2 and 3 completed locally", timeout_s=60)
+            wait_until(lambda: "event=push-failed" in err.read_text(), "a failed push logged", timeout_s=30)
+            shown = cli("queue", "--db", str(db))
+            assert "push: to" in shown.stdout and "failing" in shown.stdout, shown.stdout
+        finally:
+            cluster.start()
+        wait_until(lambda: _pushed(url) == 3, "runs 2 and 3 on the server after it came back", timeout_s=60)
+        assert shared_counts(url, "points", _bench_of(url)) == local_counts(db, "points")
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        assert proc.wait(timeout=30) == 0, err.read_text()
+
+
+def _pushed(url: str) -> int:
+    if pg_rows(url, "SELECT to_regclass('runs') IS NULL") == [(True,)]:
+        return 0
+    return int(pg_rows(url, "SELECT COUNT(*) FROM runs")[0][0])
+
+
+def _bench_of(url: str) -> str:
+    return str(pg_rows(url, "SELECT DISTINCT bench FROM runs")[0][0])

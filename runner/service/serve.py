@@ -114,9 +114,12 @@ class Watch(threading.Thread):
 
 
 class Service:
-    def __init__(self, db: str, poll_s: float = 1.0) -> None:
+    def __init__(self, db: str, poll_s: float = 1.0, push_to: str | None = None, push_retry_s: float = 5.0) -> None:
         self.db = db
         self.poll_s = poll_s
+        self.push_to = push_to  # the shared store each run is pushed to when it ends (service/pushing.py)
+        self.push_retry_s = push_retry_s
+        self.pusher: Any = None
         self.stop = StopFlag()  # set by SIGTERM/SIGINT; each job's run gets a child of it
         self._waiting_for: int | None = None
         self._last_beat = time.monotonic()
@@ -132,6 +135,11 @@ class Service:
             from nightbench.service.recovery import recover
 
             recover(store, queue, log)
+            if self.push_to:
+                from nightbench.service.pushing import Pusher
+
+                self.pusher = Pusher(self.db, self.push_to, first_retry_s=self.push_retry_s)
+                self.pusher.start()
             while not self.stop.is_set():
                 job = queue.next_due(time.time())
                 if job is None:
@@ -140,6 +148,8 @@ class Service:
                 self._waiting_for = None
                 self._run_job(store, queue, job)
         finally:
+            if self.pusher is not None:
+                self.pusher.stop()
             queue.service_stopped()
             store.close()
             lock.release()
@@ -191,6 +201,8 @@ class Service:
         if state == RunState.INTERRUPTED and run_stop.reason == CANCELLED:
             job_state, error = JobState.CANCELLED, f"cancelled while running; run {run_id} stays interrupted"
         queue.finish(job.id, job_state, error)
+        if self.pusher is not None:
+            self.pusher.kick()
         log(
             "job-end",
             level="error" if job_state == JobState.FAILED else "info",

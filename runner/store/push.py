@@ -201,3 +201,11 @@ def pending(db: str, target: str) -> int:
         return int(conn.execute(sql, (RunState.COMPLETED, target)).fetchone()[0])
     finally:
         store.close()
+
+
+def statuses(store: Store) -> list[dict[str, Any]]:
+    """How the last push to each target went (`queue` shows it); none before the first `serve --push-to`."""
+    conn = store.conn
+    if conn.execute("SELECT 1 FROM sqlite_master WHERE type='table' AND name='push_status'").fetchone() is None:
+        return []
+    return [dict(r) for r in conn.execute("SELECT * FROM push_status ORDER BY target").fetchall()]
