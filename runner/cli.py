@@ -360,6 +360,12 @@ def queue_cmd(db: str | None, as_json: bool) -> None:
     else:
         where = f"pid {status['pid']} on {status['host']}, heartbeat {status['heartbeat_at']}"
         click.echo(f"service: {'serving' if status['alive'] else 'not running'} ({where})")
+    from nightbench.store.push import statuses
+
+    for p in statuses(queue.store):
+        state = f"failing since the last success ({p['error']}); next try {p['next_try_at']}" if p["error"] else "ok"
+        waiting = f"{p['waiting']} runs waiting; tried {p['tried_at']}"
+        click.echo(f"push: to {p['target']} as '{p['bench']}': {state}; {waiting}")
     if not rows:
         click.echo("no jobs yet")
     for r in rows:
@@ -431,8 +437,17 @@ def cancel(job_id: int, db: str | None, wait_s: float) -> None:
     show_default=True,
     help="seconds between looks at the queue when idle",
 )
+@click.option("--push-to", "push_to", metavar="URL", help="push each run to this shared store when it ends")
+@click.option(
+    "--push-retry",
+    "push_retry_s",
+    type=click.FloatRange(0.1, 600),
+    default=5.0,
+    show_default=True,
+    help="seconds before the first retry of a failed push (then doubling, up to 10 min)",
+)
 @friendly
-def serve(db: str | None, poll_s: float) -> None:
+def serve(db: str | None, poll_s: float, push_to: str | None, push_retry_s: float) -> None:
     """Run due jobs one at a time until SIGTERM/SIGINT; one service per database.
 
     On start, runs left running by a process that is gone get RF off first, then resume. A
@@ -441,4 +456,10 @@ def serve(db: str | None, poll_s: float) -> None:
     """
     from nightbench.service.serve import Service
 
-    sys.exit(Service(_db(db), poll_s=poll_s).serve())
+    if push_to:
+        from nightbench.drivers.errors import InputError
+        from nightbench.store.pg import is_pg_url, mask_url
+
+        if not is_pg_url(push_to):
+            raise InputError(f"--push-to takes a postgresql:// URL, not {mask_url(push_to)!r}")
+    sys.exit(Service(_db(db), poll_s=poll_s, push_to=push_to, push_retry_s=push_retry_s).serve())
