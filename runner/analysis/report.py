@@ -134,12 +134,23 @@ class Report:
 
     def to_json(self) -> dict[str, Any]:
         """The `report --json` object, exactly (a contract: docs/design.md)."""
-        return {
+        out = {
             **{k: getattr(self, k) for k in RUN_KEYS},
             "groups": [g.public() for g in self.groups],
             "analysis": self.settings.to_json(),
             "details": [g.detail() for g in self.groups],
         }
+        over = self.over_temperature()
+        if over is not None:  # runs with a chamber only: a run without keeps its JSON as it was
+            out["over_temperature"] = over
+        return out
+
+    def over_temperature(self) -> dict[str, Any] | None:
+        """Error vs the reference-temperature line and the drift of the line (analysis/temperature.py)."""
+        from nightbench.analysis.temperature import over_temperature
+
+        s = self.settings
+        return over_temperature(self.groups, s.reference_c, s.error_limit_db, s.fit_dbm)
 
 
 def analyse(run: Mapping[str, Any], points: Sequence[Mapping[str, Any]], settings: Settings | None = None) -> Report:
