@@ -60,7 +60,11 @@ def write_export(store: Store, run_id: int, fmt: str, out: TextIO, report: Repor
     run = store.run(run_id)
     report = report if report is not None else build_report(store, run_id)
     errors = point_errors(report)
-    rows = [{**{c: r[c] for c in COLUMNS[:-1]}, "error_db": errors.get(r["idx"])} for r in store.points(run_id)]
+    points = store.points(run_id)
+    have = set(points[0].keys()) if points else set()  # an older file read as it is lacks the newer columns
+    rows = [
+        {**{c: r[c] if c in have else None for c in COLUMNS[:-1]}, "error_db": errors.get(r["idx"])} for r in points
+    ]
     if fmt == "csv":
         writer = csv.DictWriter(out, fieldnames=COLUMNS, lineterminator="\n")
         writer.writeheader()
