@@ -340,3 +340,43 @@ def test_timestamps_come_from_one_clock_reading(monkeypatch):
     stamp = store.now_iso()
     expected = real_time.strftime("%Y-%m-%dT%H:%M:%S", real_time.localtime(1_800_000_000)) + ".999"
     assert stamp == expected
+
+
+def _version_4_with_fits(db: Path) -> None:
+    """A file as version 4 wrote it: fits stored on completion, but no analyses, no laws' columns,
+    no point errors."""
+    from nightbench.store.fields import added_fit_columns
+
+    store_run(db, lambda p, f: 0.02 * (p + 90.0), frequencies=FREQS)
+    _complete(db, 1)
+    conn = sqlite3.connect(db)
+    drops = "".join(f"ALTER TABLE fits DROP COLUMN {c};" for _, c, _ in added_fit_columns(5))
+    conn.executescript(
+        "DROP VIEW v_points; DROP VIEW v_fits; DROP VIEW v_fits_all; DROP TABLE point_errors; DROP TABLE analyses;"
+        + drops
+        + "ALTER TABLE fits DROP COLUMN analysis_id; UPDATE meta SET value = '4' WHERE key = 'schema_version';"
+    )
+    conn.close()
+
+
+def test_a_version_4_file_with_fits_gets_them_as_the_runs_own_analysis(tmp_path):
+    db = tmp_path / "v4.db"
+    _version_4_with_fits(db)
+    store = Store(db, create=False)
+    assert store.conn.execute("SELECT value FROM meta").fetchone()[0] == str(SCHEMA_VERSION) == "5"
+    (analysis,) = store.analyses(1)
+    assert (analysis["origin"], analysis["law"], analysis["fit_dbm"], analysis["error_limits_db"]) == (
+        "run",
+        "log",
+        (-60.0, -20.0),
+        [1.0],
+    )
+    rows = store.conn.execute("SELECT law, slope_mv_per_db, analysis_id FROM v_fits ORDER BY frequency_hz").fetchall()
+    assert [tuple(r) for r in rows] == [("log", pytest.approx(20.0), analysis["id"])] * 3
+    # its points' errors were not stored by version 4: NULL until the run is analysed again
+    assert store.conn.execute("SELECT COUNT(*) FROM v_points WHERE error_db IS NOT NULL").fetchone()[0] == 0
+    store.close()
+    assert cli("report", "1", "--db", str(db), "--save").returncode == 0
+    conn = sqlite3.connect(db)
+    assert conn.execute("SELECT COUNT(*) FROM v_points WHERE error_db IS NOT NULL").fetchone()[0] == 3 * 41
+    assert conn.execute("SELECT COUNT(*) FROM v_fits_all").fetchone()[0] == 6  # both analyses kept
