@@ -183,3 +183,14 @@ def test_a_run_over_temperature_soaks_first_and_stores_setpoint_and_reading(cham
     export = cli("export", "1", "--format", "csv", "--db", str(db))
     header = export.stdout.splitlines()[0].split(",")
     assert "temperature_c" in header and "chamber_c" in header
+
+
+def test_the_temperature_demo_plan_is_valid_and_names_the_chamber():
+    from nightbench.demo import demo_plan_text
+    from nightbench.plan.load import parse_plan
+
+    res = "TCPIP::127.0.0.1::{}::SOCKET"
+    loaded = parse_plan(demo_plan_text(res.format(1), res.format(2), res.format(3)), "demo-temperature.yaml")
+    plan = loaded.plan
+    assert plan.instruments.chamber is not None and plan.instruments.chamber.resource == res.format(3)
+    assert plan.temperatures() == [25.0, -20.0, 70.0] and plan.reference_c() == 25.0
