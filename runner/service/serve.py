@@ -23,6 +23,7 @@ from nightbench.service.log import log
 from nightbench.service.queue import Job, JobQueue, points_text
 from nightbench.store.db import Store
 from nightbench.store.errors import StoreError
+from nightbench.store.pg import is_pg_url, mask_url
 from nightbench.store.states import JobState, RunState
 
 CANCELLED = "cancel"  # the stop reason a `nightbench cancel` gives the engine
@@ -117,6 +118,8 @@ class Service:
     def __init__(self, db: str, poll_s: float = 1.0, push_to: str | None = None, push_retry_s: float = 5.0) -> None:
         self.db = db
         self.poll_s = poll_s
+        if push_to is not None and not is_pg_url(push_to):  # before the lock: bad input changes nothing
+            raise InputError(f"--push-to takes a postgresql:// URL, not {mask_url(push_to)!r}")
         self.push_to = push_to  # the shared store each run is pushed to when it ends (service/pushing.py)
         self.push_retry_s = push_retry_s
         self.pusher: Any = None
