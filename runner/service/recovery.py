@@ -1,5 +1,9 @@
 """Runs left `running` by a process that is gone (a hard kill, a power cut): their source is made
 safe before anything else happens on the bench, then the queue resumes them (invariant 2).
+
+Only the source is opened here. With a chamber, the chamber is left for the resumed run, which
+opens it after the source and soaks again before its first point (measure/engine.py): the
+chamber may have drifted, or been switched off, while nobody watched.
 """
 
 from __future__ import annotations
