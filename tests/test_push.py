@@ -359,3 +359,24 @@ def _pushed(url: str) -> int:
 
 def _bench_of(url: str) -> str:
     return str(pg_rows(url, "SELECT DISTINCT bench FROM runs")[0][0])
+
+
+def test_values_arrive_bit_for_bit_text_escapes_and_extreme_doubles(tmp_path, pg_url):
+    """COPY's text format (PostgreSQL manual, COPY, "Text Format"): backslash, tab, newline and
+    carriage return are escaped, NULL is \\N; doubles keep every bit (IEEE 754 binary64, compared
+    with Python's float equality), including beyond SQLite's printf range (1e200 and up)."""
+    from nightbench.store.db import Store
+
+    db = bench_file(tmp_path / "a.db", 1, dut="X-1", frequencies=[100e6])
+    store = Store(db)
+    awkward = "tab\there, newline\nthere, back\\slash, cr\r, tab-n \\t, unicode ±µ"
+    store.event(1, "note", awkward)
+    values = [0.1 + 0.2, 1.5e250, -2.2250738585072014e-308, 5e-324, 1 / 3, None]
+    for idx, v in enumerate(values):
+        store.conn.execute("UPDATE points SET value_v = ? WHERE run_id = 1 AND idx = ?", (v, idx))
+    store.close()
+    assert cli("push", "--db", str(db), "--to", pg_url, "--bench", "x").returncode == 0
+    assert pg_rows(pg_url, "SELECT message FROM events WHERE kind = 'note'") == [(awkward,)]
+    shared = [v for (v,) in pg_rows(pg_url, "SELECT value_v FROM points ORDER BY idx")]
+    local = [v for (v,) in sqlite3.connect(db).execute("SELECT value_v FROM points ORDER BY idx")]
+    assert shared[: len(values)] == values and shared == local
