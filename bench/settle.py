@@ -95,7 +95,7 @@ def config_text(detector: dict[str, float]) -> str:
     return "[detector]\n" + "".join(f"{k} = {v}\n" for k, v in detector.items())
 
 
-def plan_for(resources: dict[str, str], model: BenchModel, step_db: float) -> dict:
+def plan_for(resources: dict[str, str], model: BenchModel, step_db: float, tail_share: float | None) -> dict:
     loss = model.config.path.loss
     return {
         "name": "bench-settle",
@@ -106,7 +106,8 @@ def plan_for(resources: dict[str, str], model: BenchModel, step_db: float) -> di
         "path": {"table": [[f, loss(f)] for f in FREQS_HZ]},
         "limits": {"dut_max_dbm": 0},
         "sweep": {"frequency_hz": list(FREQS_HZ), "power_dbm": {"start": -70, "stop": -10, "step": step_db}},
-        "settle": {"tolerance_v": TOLERANCE_V, "timeout_s": 8, "level_order": "fast-edge"},
+        "settle": {"tolerance_v": TOLERANCE_V, "timeout_s": 8, "level_order": "fast-edge"}
+        | ({} if tail_share is None else {"tail_share": tail_share}),
         "measure": {"samples": SAMPLES},
         "analysis": {"fit_dbm": [-60, -20]},
     }
@@ -163,14 +164,14 @@ class SweepTimer(Engine):
         super().move_to(point)
 
 
-def run_cell(cell: Cell, workdir: Path) -> dict:
+def run_cell(cell: Cell, workdir: Path, plan_tail_share: float | None = None) -> dict:
     name = f"{cell.rise_s}-{cell.fall_s}-{cell.noise_v}-{cell.levels_step_db()}-{cell.tail_share}"
     cfg_path = workdir / f"sim-{name}.toml"
     cfg_path.write_text(config_text(cell.detector()))
     model = BenchModel(BenchConfig.from_dict({"detector": cell.detector()}))
     window = model.integration_s(NPLC)
     with SimProcess("--config", str(cfg_path)) as sim:
-        plan = plan_for(sim.resources, model, cell.levels_step_db())
+        plan = plan_for(sim.resources, model, cell.levels_step_db(), plan_tail_share)
         loaded = parse_plan(yaml.safe_dump(plan, sort_keys=False), "bench-settle.yaml")
         store = Store(workdir / f"bench-{name}.db")
         run_id = new_run(store, loaded)
@@ -254,6 +255,9 @@ def large_tail_steps(tries: int) -> str:
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--cells", type=int, default=0, help="run only the first N cells (0: all)")
+    parser.add_argument(
+        "--tail-share", type=float, help="the plans' settle.tail_share (default: the plan default, 2 %%)"
+    )
     parser.add_argument("--tries", type=int, default=1000, help="large tail steps to try (0: skip)")
     parser.add_argument("--out", help="also write the table (markdown) to this file")
     args = parser.parse_args(argv)
@@ -266,7 +270,7 @@ def main(argv: list[str] | None = None) -> int:
     started = time.perf_counter()
     with tempfile.TemporaryDirectory() as tmp:
         for spec in grid:
-            cell = run_cell(spec, Path(tmp))
+            cell = run_cell(spec, Path(tmp), args.tail_share)
             cells.append(cell)
             lines.append(row_text(cell))
             print(lines[-1], flush=True)
@@ -275,7 +279,8 @@ def main(argv: list[str] | None = None) -> int:
     total, minimum = sum(c["time_s"] for c in cells), sum(c["min_s"] for c in cells)
     fixed = sum(c["fixed_time"] * c["time_s"] for c in cells)
     summary = (
-        f"all cells: {points} points, {100 * within:.1f} % within tolerance, time/min "
+        f"all cells (plan settle.tail_share: {'default' if args.tail_share is None else args.tail_share}): "
+        f"{points} points, {100 * within:.1f} % within tolerance, time/min "
         f"{total / minimum:.2f}, fixed/time {fixed / total:.1f}; "
         f"benchmark wall time {time.perf_counter() - started:.0f} s"
     )

@@ -390,3 +390,93 @@ def test_min_wait_holds_off_acceptance_even_for_a_flat_stream():
             accepted_at = t
             break
     assert accepted_at is not None and accepted_at >= 0.05
+
+
+# -- a resumed run starts from what its last points taught -----------------------------------
+def test_replayed_points_teach_what_measuring_them_did():
+    """The detector learns only from readings, so replaying stored readings (measure/replay.py)
+    must leave it with the same learned time constant intervals and noise as measuring did."""
+    from datetime import datetime
+
+    from nightbench.measure.replay import replay
+
+    rng = np.random.default_rng(12)
+    live = SettleDetector(TOL, samples=SAMPLES, max_tau_s=MAX_TAU_S)
+    stored, clock, level = [], 1.7e9, -60.0
+    for i in range(14):
+        b, tau = (-0.03, 0.004) if i % 2 == 0 else (0.02, 0.02)  # rises of 4 ms, falls of 20 ms
+        level += 5.0 if b < 0 else -2.0
+        live.begin("rise" if b < 0 else "fall", at=clock, from_off=i == 0)
+        ends = CADENCE_S * np.arange(1, 400)
+        values = window_means(b, tau, ends) + rng.normal(0.0, TOL / 3, len(ends))
+        n = next((j for j, (t, v) in enumerate(zip(ends, values)) if live.feed(float(t), float(v))), len(ends) - 1)
+        readings = [(float(t), float(v), "settle") for t, v in zip(ends[: n + 1], values[: n + 1])]
+        for t, v in zip(ends[n + 1 : n + 1 + SAMPLES], values[n + 1 : n + 1 + SAMPLES]):
+            live.record(float(t), float(v))
+            readings.append((float(t), float(v), "measure"))
+        live.end()
+        at_ms = datetime.fromtimestamp(clock + readings[-1][0]).isoformat(timespec="milliseconds")
+        stored.append({"power_dbm": level, "measured_at": at_ms, "overload": 0, "readings": readings})
+        clock += readings[-1][0] + 0.003
+    warm = SettleDetector(TOL, samples=SAMPLES, max_tau_s=MAX_TAU_S)
+    assert replay(warm, stored) == 14
+    for direction in ("rise", "fall"):
+        assert warm.prior(direction) == live.prior(direction), direction
+        assert warm.tau_s(direction) == live.tau_s(direction), direction
+    assert list(warm.noise) == list(live.noise)
+    assert len(warm.tail_evidence) == len(live.tail_evidence)
+    assert warm.prior("rise")[1] < 0.01 < warm.prior("fall")[0]  # learned, not the cold prior
+    assert not warm.history and warm.settled_v is None  # RF was off since: no tail carried over
+
+
+def test_a_resumed_run_starts_warm_and_stores_points_within_tolerance(tmp_path):
+    """Interrupted after 12 of 22 points, then resumed: the resumed engine's detector starts from
+    the stored readings (the same learned intervals as the detector that measured them), and
+    every point of the run is within tolerance of the simulator's settled value (3 standard
+    errors of the averaging noise allowed, as in the accuracy test above)."""
+    from nightbench.measure.engine import Engine
+    from nightbench.measure.replay import REPLAY_POINTS, replay
+    from nightbench.measure.signals import StopFlag
+    from nightbench.runs import new_run
+    from nightbench.simproc import SimProcess
+    from nightbench.store.db import Store
+
+    detector_cfg = {"tau_rise_s": 0.002, "tau_fall_s": 0.012, "output_noise_v": 0.00015}
+    truth = BenchModel(BenchConfig.from_dict({"detector": detector_cfg}))
+    freqs = [100e6, 900e6]
+    store = Store(tmp_path / "resume.db")
+    with SimProcess("--config", str(sim_config(tmp_path, **detector_cfg))) as sim:
+        plan = plan_dict(
+            sim.resources,
+            path={"table": [[f, truth.config.path.loss(f)] for f in freqs]},
+            sweep={"frequency_hz": freqs, "power_dbm": {"start": -60, "stop": -10, "step": 5}},
+            settle={"tolerance_v": TOL, "timeout_s": 2, "level_order": "fast-edge"},
+        )
+        loaded = parse_plan(yaml.safe_dump(plan, sort_keys=False), "p.yaml")
+        run_id = new_run(store, loaded)
+        stop = StopFlag()
+
+        def stop_after_12(point, result, done, total):
+            if done == 12:
+                stop.set("test")
+
+        first = Engine(loaded, store, run_id, stop, stop_after_12)
+        assert first.run()[0] == "interrupted"
+        warm = SettleDetector(TOL, samples=SAMPLES, max_tau_s=loaded.plan.settle.prior_tau_s)
+        assert replay(warm, store.recent_readings(run_id, REPLAY_POINTS)) == 12
+        for direction in ("rise", "fall"):
+            assert warm.prior(direction) == first.detector.prior(direction), direction
+        second = Engine(loaded, store, run_id, StopFlag())
+        assert second.run()[0] == "completed"
+    # 10 new points alone fill at most 10 of the 12 noise slots: the other 2 came from the replay
+    assert len(second.detector.noise) == 12
+    rows = store.points(run_id)
+    assert len(rows) == 22
+    window, det = truth.integration_s(0.1), truth.config.detector
+    outside = [
+        (r["power_dbm"], r["frequency_hz"])
+        for r in rows
+        if abs(r["value_v"] - truth.truth_v(r["power_dbm"], r["frequency_hz"]))
+        > TOL + 3 * det.noise_v(r["power_dbm"], window) / math.sqrt(r["samples"])
+    ]
+    assert not outside, outside

@@ -14,6 +14,7 @@ from collections.abc import Callable
 
 from nightbench.drivers.errors import InstrumentError, NightbenchError, SafetyError
 from nightbench.measure.order import fast_edge_order
+from nightbench.measure.replay import REPLAY_POINTS, replay
 from nightbench.measure.roles import Bench
 from nightbench.measure.settle import Direction, SettleDetector
 from nightbench.measure.signals import StopFlag
@@ -111,7 +112,7 @@ class Engine:
         meter = self.bench.meter
         settle = self.plan.settle
         detector = self.detector
-        detector.begin(self.step_direction(point))
+        detector.begin(self.step_direction(point), at=time.monotonic(), from_off=self.last_dbm is None)
         self.last_dbm = point.power_dbm
         readings: list[tuple[float, float | None, str]] = []
         t0 = time.monotonic()
@@ -158,6 +159,8 @@ class Engine:
         points = expand(self.loaded)
         done = store.done_indices(run_id)
         todo = [p for p in points if p.index not in done]
+        if done:  # resumed: start from what the last points taught (measure/replay.py), not afresh
+            replay(self.detector, store.recent_readings(run_id, REPLAY_POINTS))
         store.mark_running(run_id)
         state, error = RunState.COMPLETED, None
         self.doing = "opening the instruments"

@@ -26,7 +26,7 @@ from typing import Literal
 
 import numpy as np
 
-from nightbench.measure.tail import pooled_share, slow_amplitudes, tail_bound, tail_grid
+from nightbench.measure.tail import exposure, pooled_share, slow_amplitudes, tail_bound, tail_grid
 
 Direction = Literal["rise", "fall"]
 DIRECTIONS: tuple[Direction, Direction] = ("rise", "fall")
@@ -43,46 +43,20 @@ LEARN_KEEP = 7  # recent points whose tau evidence is kept per direction
 NOISE_FLOOR = 1e-3  # noise below this share of the tolerance counts as this much (clean streams)
 NOISE_KEEP = 12  # recent points pooled for the noise prior
 TAIL_SHARE = 0.02  # default: a slow tail may be up to 2 % of a step until the run shows less
-TAIL_KEEP = 12  # recent points whose tail evidence is pooled
+TAIL_KEEP = 64  # recent points whose tail evidence is pooled
+HISTORY_AGE = 12.0  # steps older than this many max_tau_s are forgotten (their tail is < 1e-5 of them)
+HISTORY_KEEP = 2000
 TAIL_READINGS = 160  # at most this many readings enter a tail fit
-STEP_Z = 3.9  # a step is real (has a direction) beyond this many standard errors:
-# the best of the grid's time constants is picked, and at 2.33 (one
-# t test at 99 %) about 9 % of pure-noise points showed a "step"
+STEP_Z = 3.9  # a step is real (has a direction) beyond this many standard errors: the best of the grid's
+# time constants is picked, and at 2.33 (one t test at 99 %) about 9 % of pure-noise points showed a "step"
 
-# One-sided 99 % quantiles of Student's t for 1..30 degrees of freedom (from memory of the
-# standard table; tests/test_settle.py checks them against scipy.stats.t.ppf).
+# One-sided 99 % Student t for 1..30 dof (from memory of the table; checked against scipy in tests/test_settle.py)
+# fmt: off
 _T99 = (
-    31.821,
-    6.965,
-    4.541,
-    3.747,
-    3.365,
-    3.143,
-    2.998,
-    2.896,
-    2.821,
-    2.764,
-    2.718,
-    2.681,
-    2.650,
-    2.624,
-    2.602,
-    2.583,
-    2.567,
-    2.552,
-    2.539,
-    2.528,
-    2.518,
-    2.508,
-    2.500,
-    2.492,
-    2.485,
-    2.479,
-    2.473,
-    2.467,
-    2.462,
-    2.457,
+    31.821, 6.965, 4.541, 3.747, 3.365, 3.143, 2.998, 2.896, 2.821, 2.764, 2.718, 2.681, 2.650, 2.624, 2.602,
+    2.583, 2.567, 2.552, 2.539, 2.528, 2.518, 2.508, 2.500, 2.492, 2.485, 2.479, 2.473, 2.467, 2.462, 2.457,
 )
+# fmt: on
 _Z99 = 2.3263
 
 
@@ -170,11 +144,23 @@ class SettleDetector:
         self.tail_taus = tail_grid(max_tau_s)
         self.tail_evidence: deque[tuple[np.ndarray, np.ndarray]] = deque(maxlen=TAIL_KEEP)
         self.settled_v: float | None = None  # the previous point's value: where this step started
+        # every recent step (time of the change, signed size): a slow tail sums over all of them
+        self.history: deque[tuple[float, float]] = deque(maxlen=HISTORY_KEEP)
+        self.t_change, self.n, self.t_first, self.t_last = 0.0, 0, 0.0, 0.0
         self.begin(None)
 
     # -- one point ------------------------------------------------------------------------
-    def begin(self, hint: Direction | None) -> None:
-        """A change has just been made: forget the previous point's readings."""
+    def begin(self, hint: Direction | None, *, at: float | None = None, from_off: bool = False) -> None:
+        """A change has just been made, at time `at` on any steady clock (None: right after the
+        previous point's last reading): forget the previous point's readings. `from_off`: RF was
+        off before this change, so the previous value says nothing about where this step started."""
+        if at is None:
+            cadence = (self.t_last - self.t_first) / (self.n - 1) if self.n > 1 else 0.0
+            at = self.t_change + self.t_last + cadence
+        self.t_change = at
+        self._exposure_cache: tuple[np.ndarray, np.ndarray] | None = None
+        if from_off:
+            self.settled_v = None
         self.hint = hint
         self.n = 0
         self.t_first = self.t_last = 0.0
@@ -215,7 +201,10 @@ class SettleDetector:
     def end(self) -> Learned | None:
         """The point is done: learn its noise and, if it showed a step, its time constant profile."""
         if self.n < 4:
-            self.settled_v = float(np.mean(self.ys)) if self.ys else None
+            value = float(np.mean(self.ys)) if self.ys else None
+            if value is not None and self.settled_v is not None:
+                self._remember_step(value - self.settled_v)
+            self.settled_v = value
             return None
         c, rss, sxx = self._fit()
         best = int(np.argmin(rss))
@@ -342,6 +331,28 @@ class SettleDetector:
             return -math.copysign(seen, c_best)  # C > 0: the output is above its final value, a fall
         return final - self.settled_v
 
+    def forget_steps(self) -> None:
+        """RF went off (a resume, a reconnect): the earlier steps' tails are gone, and so is the value."""
+        self.history.clear()
+        self.settled_v = None
+
+    def _remember_step(self, step_v: float) -> None:
+        self.history.append((self.t_change, step_v))
+        while self.history and self.history[0][0] < self.t_change - HISTORY_AGE * self.max_tau_s:
+            self.history.popleft()
+
+    def _exposure(self, step_v: float) -> tuple[np.ndarray, np.ndarray]:
+        """Per tail time constant, the signed and the absolute sum of this step and the recent
+        ones, each decayed to the first reading: a tail of share rho is now rho times the signed
+        sum (linear superposition), and at most rho times the absolute one if rises and falls
+        have different tails. The earlier steps' part is fixed for the point: computed once."""
+        if self._exposure_cache is None:
+            t_ref = self.t_change + self.t_first
+            self._exposure_cache = exposure(list(self.history), t_ref, self.tail_taus)
+        past_signed, past_abs = self._exposure_cache
+        now = np.exp(-self.t_first / self.tail_taus)
+        return past_signed + step_v * now, past_abs + abs(step_v) * now
+
     def _tail_caps(self, k: float) -> np.ndarray:
         """Per tail time constant, the share of a step allowed for: the plan's, or less once the
         pooled evidence of recent points proves less."""
@@ -353,8 +364,8 @@ class SettleDetector:
         if self.tail_share <= 0:
             return 0.0
         fast_tau_s = float(self.grid[fast])
-        step = abs(self._step_v(c_fast, fast))
-        caps = self._tail_caps(k) * step
+        _, reach = self._exposure(self._step_v(c_fast, fast))
+        caps = self._tail_caps(k) * reach
         remaining = np.exp(-ahead[:, None] / self.tail_taus[None, :]).mean(axis=0)
         remaining = np.where(self.tail_taus >= fast_tau_s * 3.0, remaining, 0.0)
         if float((caps * remaining).max(initial=0.0)) <= 0.05 * self.tolerance_v:
@@ -374,9 +385,16 @@ class SettleDetector:
         """Keep what this point's readings prove about a tail's share of its step, and its value."""
         fast_tau_s = float(self.grid[best])
         step = self._step_v(c_best, best)
+        signed, reach = self._exposure(step)
+        self._remember_step(step)
         self.settled_v = float(np.mean(self.ys[-self.samples :]))
-        if self.tail_share <= 0 or abs(step) < 20 * self.tolerance_v:
-            return  # a small step says little about a share of it
+        # a share is learned only from a large exposure of one sign (rises and falls may differ)
+        usable = (np.abs(signed) >= 20 * self.tolerance_v) & (np.abs(signed) >= 0.5 * reach)
+        if self.tail_share <= 0 or not usable.any():
+            return
         t, y = self._tail_readings()
         amp, se = slow_amplitudes(t, y, fast_tau_s, self.tail_taus, s2)
-        self.tail_evidence.append((amp / step, se / step))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            share = np.where(usable, amp / signed, 0.0)
+            share_se = np.where(usable, se / np.abs(signed), math.inf)
+        self.tail_evidence.append((share, share_se))

@@ -89,6 +89,17 @@ def tail_bound(amp: np.ndarray, se: np.ndarray, k: float, cap_v: np.ndarray, rem
     return float(drift.max()) if drift.size else 0.0
 
 
+def exposure(history: list[tuple[float, float]], t_ref: float, taus: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per tau_s, the signed and the absolute sum of earlier steps (time of the change, size),
+    each decayed to t_ref by exp(-(t_ref - t)/tau_s): a tail of share rho is rho times the signed
+    sum behind its final value at t_ref."""
+    if not history:
+        return np.zeros(len(taus)), np.zeros(len(taus))
+    at, size = np.array(history).T
+    decay = np.exp(-np.maximum(t_ref - at, 0.0)[:, None] / taus[None, :])
+    return size @ decay, np.abs(size) @ decay
+
+
 def pooled_share(evidence: list[tuple[np.ndarray, np.ndarray]], k: float) -> np.ndarray:
     """What recent points prove about the tail's share of a step, per tau_s: the inverse-variance
     mean of their estimates C_s/step plus k standard errors (inf where none could tell)."""

@@ -295,6 +295,21 @@ class Store(AnalysesMixin):
         with self._sql(f"reading the points of run {run_id}"):
             return self.conn.execute("SELECT * FROM points WHERE run_id=? ORDER BY idx", (run_id,)).fetchall()
 
+    def recent_readings(self, run_id: int, count: int) -> list[dict[str, Any]]:
+        """The last `count` points of a run in the order they were measured, each with its raw
+        readings in order (t_s, value_v, phase): what a resumed run's settle detector replays."""
+        with self._sql(f"reading the raw readings of run {run_id}"):
+            points = self.conn.execute(
+                "SELECT idx, power_dbm, measured_at, overload FROM points WHERE run_id=?"
+                " ORDER BY measured_at DESC, idx DESC LIMIT ?",
+                (run_id, count),
+            ).fetchall()
+            sql = "SELECT t_s, value_v, phase FROM readings WHERE run_id=? AND idx=? ORDER BY seq"
+            return [
+                dict(p) | {"readings": [tuple(r) for r in self.conn.execute(sql, (run_id, p["idx"]))]}
+                for p in reversed(points)
+            ]
+
     def _transaction(self) -> _Tx:
         return _Tx(self.conn)
 
