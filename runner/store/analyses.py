@@ -121,8 +121,10 @@ class AnalysesMixin:
             if analysis_id is None:
                 row = self.conn.execute("SELECT MAX(id) FROM analyses WHERE run_id=?", (run_id,)).fetchone()
                 analysis_id = row[0]
-            return self.conn.execute(
-                "SELECT * FROM fits WHERE run_id=? AND analysis_id IS ? ORDER BY frequency_hz, temperature_c",
+            if analysis_id is None:  # not analysed yet
+                return []
+            return self.conn.execute(  # '=' not 'IS ?': the same SQL serves the shared PostgreSQL store
+                "SELECT * FROM fits WHERE run_id=? AND analysis_id = ? ORDER BY frequency_hz, temperature_c",
                 (run_id, analysis_id),
             ).fetchall()
 
