@@ -55,7 +55,7 @@ def test_sigterm_during_a_soak_stops_within_5_s_rf_off_chamber_to_end(chamber_be
     plan = temp_plan(chamber_bench.resources, [-10, 25], stable_s=60, timeout_s=120, end_c=20)
     proc = start_run(write_plan(plan), db)
     try:
-        wait_until(lambda: soaking_at(db, -10.0), "a soak at -10 degC under way", timeout_s=20)
+        wait_until(lambda: soaking_at(db, -10.0), "a soak at -10 degC under way", timeout_s=60)
         time.sleep(0.5)
         sent = time.monotonic()
         proc.send_signal(signal.SIGTERM)
