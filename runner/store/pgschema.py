@@ -88,11 +88,15 @@ def _create(t: Table) -> str:
     if t.name == "runs":
         head = "id BIGINT GENERATED ALWAYS AS IDENTITY PRIMARY KEY, bench TEXT NOT NULL, local_id BIGINT NOT NULL"
         tail = ", pushed_at TEXT NOT NULL, UNIQUE (bench, local_id)"
+    elif t.name in RAW:  # a year's raw readings: no per-row foreign-key check (the run arrives in the same transaction)
+        head, tail = "run_id BIGINT NOT NULL", ""
     else:
         head, tail = "run_id BIGINT NOT NULL REFERENCES runs(id)", ""
     sql = [f"CREATE TABLE IF NOT EXISTS {t.name} ({', '.join([head, *cols])}{tail});"]
     sql += [f"ALTER TABLE {t.name} ADD COLUMN IF NOT EXISTS {c}" + ";" for c in cols]
-    if t.unique:
+    if t.name in RAW:  # rows arrive in run order: a BRIN index finds a run's rows and costs nearly nothing to keep
+        sql.append(f"CREATE INDEX IF NOT EXISTS {t.name}_run ON {t.name} USING brin (run_id);")
+    elif t.unique:
         sql.append(f"CREATE UNIQUE INDEX IF NOT EXISTS {t.name}_key ON {t.name} ({', '.join(t.unique)});")
     elif t.name != "runs":
         sql.append(f"CREATE INDEX IF NOT EXISTS {t.name}_run ON {t.name} (run_id);")
