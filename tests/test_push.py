@@ -10,6 +10,7 @@ from __future__ import annotations
 import hashlib
 import json
 import random
+import re
 import signal
 import sqlite3
 import subprocess
@@ -21,6 +22,8 @@ import pytest
 
 from tests.conftest import cli, store_run
 from tests.pg import start_cluster
+
+DOC = Path(__file__).resolve().parent.parent / "docs" / "database.md"
 
 
 @pytest.fixture(scope="session")
@@ -285,33 +288,57 @@ def test_a_file_of_the_oldest_schema_is_pushed_as_it_is(tmp_path, pg_url):
     assert pg_rows(pg_url, "SELECT COUNT(*), COUNT(temperature_c) FROM points") == [(41, 0)]
 
 
-def test_a_least_privilege_role_pushes_and_reads_and_can_do_nothing_else(tmp_path, cluster, pg_url):
-    """The role docs/database.md documents: INSERT and SELECT on the shared tables, nothing else."""
-    db = bench_file(tmp_path / "a.db", 2, dut="L-1", frequencies=[100e6])
-    first = bench_file(tmp_path / "owner.db", 1, dut="L-0", frequencies=[100e6])
-    assert (
-        cli("push", "--db", str(first), "--to", pg_url, "--bench", "owner").returncode == 0
-    )  # the owner creates the store
-    dbname = pg_url.rsplit("/", 1)[1]
-    cluster.sql(
-        "DO $$ BEGIN IF NOT EXISTS (SELECT FROM pg_roles WHERE rolname = 'bench_role') THEN"
-        " CREATE ROLE bench_role LOGIN PASSWORD 'bench-secret'; END IF; END $$"
-    )
-    cluster.sql("GRANT SELECT, INSERT ON ALL TABLES IN SCHEMA public TO bench_role", dbname)
-    url = cluster.url(dbname, user="bench_role", password="bench-secret")
-    res = cli("push", "--db", str(db), "--to", url, "--bench", "lp", "--readings")
-    assert res.returncode == 0, res.stderr
-    assert "bench-secret" not in res.stdout + res.stderr and ":***@" in res.stdout
-    assert shared_counts(pg_url, "points", "lp") == local_counts(db, "points")
-    assert json.loads(cli("runs", "--db", url, "--json").stdout)[-1]["bench"] == "lp"
+def doc_blocks(lang: str) -> list[str]:
+    return re.findall(rf"```{lang}\n(.*?)```", DOC.read_text(), flags=re.S)
+
+
+def test_the_documented_roles_owner_creates_bench_pushes_reader_reads_and_nothing_else(tmp_path, cluster):
+    """docs/database.md's role setup and grants, run as written: the owner's first push creates
+    the store, a bench role (INSERT and SELECT only) pushes and reads, and can neither delete nor
+    update; the reader role reads only. Passwords never appear in output or in the local file."""
     import psycopg
 
-    with psycopg.connect(url) as conn, pytest.raises(psycopg.errors.InsufficientPrivilege):
-        conn.execute("DELETE FROM points")
-    # and the password never reaches the local file: the note keeps the masked URL
-    assert sqlite3.connect(db).execute("SELECT DISTINCT target FROM pushes").fetchall() == [
-        (url.replace("bench-secret", "***"),)
-    ]
+    (setup,) = doc_blocks("postgresql-setup")
+    (grants,) = doc_blocks("postgresql-grants")
+    with psycopg.connect(cluster.url(), autocommit=True) as conn:
+        for statement in (s for s in setup.split(";") if s.strip()):
+            conn.execute(statement)
+    owner_url = cluster.url("nightbench", user="nightbench_owner", password="change-me")
+    first = bench_file(tmp_path / "owner.db", 1, dut="L-0", frequencies=[100e6])
+    assert cli("push", "--db", str(first), "--to", owner_url, "--bench", "owner").returncode == 0
+    with psycopg.connect(owner_url, autocommit=True) as conn:
+        conn.execute(grants)
+    url = cluster.url("nightbench", user="nightbench_bench", password="change-me-too")
+    db = bench_file(tmp_path / "a.db", 2, dut="L-1", frequencies=[100e6])
+    res = cli("push", "--db", str(db), "--to", url, "--bench", "lp", "--readings")
+    assert res.returncode == 0, res.stderr
+    assert "change-me" not in res.stdout + res.stderr and ":***@" in res.stdout
+    assert shared_counts(owner_url, "points", "lp") == local_counts(db, "points")
+    assert shared_counts(owner_url, "readings", "lp") == local_counts(db, "readings")
+    assert json.loads(cli("runs", "--db", url, "--json").stdout)[-1]["bench"] == "lp"
+    for statement in ("DELETE FROM points", "UPDATE runs SET bench = 'x'"):
+        with psycopg.connect(url) as conn, pytest.raises(psycopg.errors.InsufficientPrivilege):
+            conn.execute(statement)
+    reader = cluster.url("nightbench", user="nightbench_reader", password="change-me-three")
+    assert json.loads(cli("report", "2", "--db", reader, "--json").stdout)["groups"]
+    with psycopg.connect(reader) as conn, pytest.raises(psycopg.errors.InsufficientPrivilege):
+        conn.execute("INSERT INTO meta VALUES ('x', 'y')")
+    # the password never reaches the local file: the note keeps the masked URL
+    masked = url.replace("change-me-too", "***")
+    assert sqlite3.connect(db).execute("SELECT DISTINCT target FROM pushes").fetchall() == [(masked,)]
+
+
+def test_every_documented_cross_bench_query_runs_on_the_shared_store(tmp_path, pg_url):
+    a = bench_file(tmp_path / "a.db", 2, dut="Q-1", frequencies=[100e6, 900e6])
+    b = bench_file(tmp_path / "b.db", 1, dut="Q-1", frequencies=[900e6])
+    assert cli("push", "--db", str(a), "--to", pg_url, "--bench", "a").returncode == 0
+    assert cli("push", "--db", str(b), "--to", pg_url, "--bench", "b").returncode == 0
+    queries = [q for block in doc_blocks("postgresql") for q in block.split(";") if q.strip()]
+    assert len(queries) >= 3
+    results = [pg_rows(pg_url, q) for q in queries]
+    assert all(results), "every documented query returns rows on a store of two benches"
+    # the first: every unit's intercept at 900 MHz with its bench (2 runs on a, 1 on b)
+    assert sorted(r[1] for r in results[0]) == ["a", "a", "b"]
 
 
 def test_serve_push_to_catches_up_after_the_server_was_down_mid_night(bench, write_plan, db, cluster, tmp_path):
