@@ -62,6 +62,7 @@ class Engine:
             min_wait_s=s.min_wait_s,
             max_tau_s=s.prior_tau_s,
             tail_share=s.tail_share,
+            timeout_s=s.timeout_s,
         )
         self.last_dbm: float | None = None  # DUT level of the last point; None while RF is off
         self.soak_progress = soak_progress

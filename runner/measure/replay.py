@@ -14,7 +14,8 @@ from collections.abc import Iterable, Mapping
 from datetime import datetime
 from typing import Any
 
-from nightbench.measure.settle import LEARN_KEEP, NOISE_KEEP, TAIL_KEEP, Direction, SettleDetector
+from nightbench.measure.settle import LEARN_KEEP, NOISE_KEEP, Direction, SettleDetector
+from nightbench.measure.tailguard import TAIL_KEEP
 
 REPLAY_POINTS = max(LEARN_KEEP * 4, NOISE_KEEP, TAIL_KEEP)  # enough for every kind of memory to fill
 

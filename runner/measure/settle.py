@@ -26,7 +26,8 @@ from typing import Literal
 
 import numpy as np
 
-from nightbench.measure.tail import exposure, pooled_share, slow_amplitudes, tail_bound, tail_grid
+from nightbench.measure.tail import tail_grid
+from nightbench.measure.tailguard import HISTORY_KEEP, PROBE_TAUS, TAIL_KEEP, TAIL_SHARE, TailGuard
 
 Direction = Literal["rise", "fall"]
 DIRECTIONS: tuple[Direction, Direction] = ("rise", "fall")
@@ -42,11 +43,6 @@ ALONE_DOF = 10  # local degrees of freedom needed before any noise has been lear
 LEARN_KEEP = 7  # recent points whose tau evidence is kept per direction
 NOISE_FLOOR = 1e-3  # noise below this share of the tolerance counts as this much (clean streams)
 NOISE_KEEP = 12  # recent points pooled for the noise prior
-TAIL_SHARE = 0.02  # default: a slow tail may be up to 2 % of a step until the run shows less
-TAIL_KEEP = 64  # recent points whose tail evidence is pooled
-HISTORY_AGE = 12.0  # steps older than this many max_tau_s are forgotten (their tail is < 1e-5 of them)
-HISTORY_KEEP = 2000
-TAIL_READINGS = 160  # at most this many readings enter a tail fit
 STEP_Z = 3.9  # a step is real (has a direction) beyond this many standard errors: the best of the grid's
 # time constants is picked, and at 2.33 (one t test at 99 %) about 9 % of pure-noise points showed a "step"
 
@@ -108,7 +104,7 @@ class Learned:
     tau_hi_s: float
 
 
-class SettleDetector:
+class SettleDetector(TailGuard):
     """One per run. `begin(hint)` at each change, `feed(t, v)` until True, `record` the samples, `end()`.
 
     `t` is seconds since the change (any fixed offset is fine: it only rescales C). The hint is
@@ -125,6 +121,7 @@ class SettleDetector:
         min_wait_s: float = 0.0,
         max_tau_s: float = 5.0,
         tail_share: float = TAIL_SHARE,
+        timeout_s: float | None = None,
     ) -> None:
         if tolerance_v <= 0 or max_tau_s <= 0:
             raise ValueError("tolerance_v and max_tau_s must be positive")
@@ -141,6 +138,9 @@ class SettleDetector:
         self.last: Assessment | None = None
         # slow tails (nightbench.measure.tail): the share allowed for, and what points proved about it
         self.tail_share = tail_share
+        self.probe_s = PROBE_TAUS * max_tau_s if timeout_s is None else min(PROBE_TAUS * max_tau_s, 0.4 * timeout_s)
+        self.since_probe = TAIL_KEEP  # points since this run's last probe (tailguard.py)
+        self.probing = False
         self.tail_taus = tail_grid(max_tau_s)
         self.tail_evidence: deque[tuple[np.ndarray, np.ndarray]] = deque(maxlen=TAIL_KEEP)
         self.settled_v: float | None = None  # the previous point's value: where this step started
@@ -159,6 +159,7 @@ class SettleDetector:
             at = self.t_change + self.t_last + cadence
         self.t_change = at
         self._exposure_cache: tuple[np.ndarray, np.ndarray] | None = None
+        self.probed = False
         if from_off:
             self.settled_v = None
         self.hint = hint
@@ -196,7 +197,7 @@ class SettleDetector:
         if self.n > DENSE_READINGS and self.n % (self.n // DENSE_READINGS):
             return False  # long settles: judge every ~3 % of the elapsed readings (CPU)
         self.last = self._assess()
-        return self.last.drift_bound_v <= DRIFT_SHARE * self.tolerance_v
+        return self.last.drift_bound_v <= DRIFT_SHARE * self.tolerance_v and not self.probing
 
     def end(self) -> Learned | None:
         """The point is done: learn its noise and, if it showed a step, its time constant profile."""
@@ -214,6 +215,10 @@ class SettleDetector:
         s2 = max((float(rss[best]) + nu0 * s0) / (dof + nu0), (NOISE_FLOOR * self.tolerance_v) ** 2)
         k = t99(dof + nu0)
         self._learn_tail(best, s2, float(c[best]))
+        if self.probed:
+            self.since_probe, self.probe_reach = 0, self.probe_reach_now
+        else:
+            self.since_probe += 1
         direction = step_direction(c[best], math.sqrt(s2 / sxx[best]) if sxx[best] > 0 else math.inf, dof + nu0)
         if direction is None:
             return None  # no step to learn from (or too small to tell its direction)
@@ -288,6 +293,7 @@ class SettleDetector:
         return c, rss, sxx
 
     def _assess(self) -> Assessment:
+        self.probing = False
         c, rss, sxx = self._fit()
         best = int(np.argmin(rss))
         s0, nu0 = self._noise_prior()
@@ -320,81 +326,3 @@ class SettleDetector:
             fast = int(np.flatnonzero(allowed)[np.argmin(rss[allowed])])
             tail = self._tail_drift(fast, s2, k, float(c[fast]), ahead[:, 0])
         return Assessment(self.n, main + tail, float(self.grid[best]), float(tau.max()), math.sqrt(s2), direction, tail)
-
-    # -- slow tails -----------------------------------------------------------------------
-    def _step_v(self, c_best: float, i: int) -> float:
-        """This point's step, signed: from the previous point's value to the fitted final value
-        (on the first point, what the readings themselves have shown: at least their own span)."""
-        final = self.y0 + (self.sy - c_best * self.sx[i]) / self.n if self.n else self.y0
-        seen = abs(self.ys[-1] - self.ys[0]) + abs(c_best) if self.ys else 0.0
-        if self.settled_v is None or abs(final - self.settled_v) < seen:
-            return -math.copysign(seen, c_best)  # C > 0: the output is above its final value, a fall
-        return final - self.settled_v
-
-    def forget_steps(self) -> None:
-        """RF went off (a resume, a reconnect): the earlier steps' tails are gone, and so is the value."""
-        self.history.clear()
-        self.settled_v = None
-
-    def _remember_step(self, step_v: float) -> None:
-        self.history.append((self.t_change, step_v))
-        while self.history and self.history[0][0] < self.t_change - HISTORY_AGE * self.max_tau_s:
-            self.history.popleft()
-
-    def _exposure(self, step_v: float) -> tuple[np.ndarray, np.ndarray]:
-        """Per tail time constant, the signed and the absolute sum of this step and the recent
-        ones, each decayed to the first reading: a tail of share rho is now rho times the signed
-        sum (linear superposition), and at most rho times the absolute one if rises and falls
-        have different tails. The earlier steps' part is fixed for the point: computed once."""
-        if self._exposure_cache is None:
-            t_ref = self.t_change + self.t_first
-            self._exposure_cache = exposure(list(self.history), t_ref, self.tail_taus)
-        past_signed, past_abs = self._exposure_cache
-        now = np.exp(-self.t_first / self.tail_taus)
-        return past_signed + step_v * now, past_abs + abs(step_v) * now
-
-    def _tail_caps(self, k: float) -> np.ndarray:
-        """Per tail time constant, the share of a step allowed for: the plan's, or less once the
-        pooled evidence of recent points proves less."""
-        proven = pooled_share(list(self.tail_evidence), k)
-        caps = np.full(len(self.tail_taus), self.tail_share)
-        return np.minimum(caps, proven) if proven.size else caps
-
-    def _tail_drift(self, fast: int, s2: float, k: float, c_fast: float, ahead: np.ndarray) -> float:
-        if self.tail_share <= 0:
-            return 0.0
-        fast_tau_s = float(self.grid[fast])
-        _, reach = self._exposure(self._step_v(c_fast, fast))
-        caps = self._tail_caps(k) * reach
-        remaining = np.exp(-ahead[:, None] / self.tail_taus[None, :]).mean(axis=0)
-        remaining = np.where(self.tail_taus >= fast_tau_s * 3.0, remaining, 0.0)
-        if float((caps * remaining).max(initial=0.0)) <= 0.05 * self.tolerance_v:
-            return 0.0  # the largest tail allowed for is negligible: no fit needed
-        t, y = self._tail_readings()
-        amp, se = slow_amplitudes(t, y, fast_tau_s, self.tail_taus, s2)
-        return tail_bound(amp, se, k, caps, remaining)
-
-    def _tail_readings(self) -> tuple[np.ndarray, np.ndarray]:
-        """The readings for a tail fit: all of them, or an even subset of a long point (a subset
-        knows less, so the bound only grows: safe, and the cost per judgement stays flat)."""
-        stride = max(1, len(self.ts) // TAIL_READINGS)
-        t = np.asarray(self.ts[::stride]) - self.t_first
-        return t, np.asarray(self.ys[::stride]) - self.y0
-
-    def _learn_tail(self, best: int, s2: float, c_best: float) -> None:
-        """Keep what this point's readings prove about a tail's share of its step, and its value."""
-        fast_tau_s = float(self.grid[best])
-        step = self._step_v(c_best, best)
-        signed, reach = self._exposure(step)
-        self._remember_step(step)
-        self.settled_v = float(np.mean(self.ys[-self.samples :]))
-        # a share is learned only from a large exposure of one sign (rises and falls may differ)
-        usable = (np.abs(signed) >= 20 * self.tolerance_v) & (np.abs(signed) >= 0.5 * reach)
-        if self.tail_share <= 0 or not usable.any():
-            return
-        t, y = self._tail_readings()
-        amp, se = slow_amplitudes(t, y, fast_tau_s, self.tail_taus, s2)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            share = np.where(usable, amp / signed, 0.0)
-            share_se = np.where(usable, se / np.abs(signed), math.inf)
-        self.tail_evidence.append((share, share_se))
