@@ -161,7 +161,10 @@ def resume(run_id: int, db: str | None) -> None:
 @friendly
 def runs(db: str | None, as_json: bool) -> None:
     """List runs (reads only: a mistyped --db is refused, not created)."""
-    rows = _read_store(db).runs()
+    from nightbench.pushcli import push_marks
+
+    store = _read_store(db)
+    rows, marks = store.runs(), push_marks(store)  # marks: where a local run was pushed (shared store)
     if as_json:
         click.echo(json.dumps(rows, indent=1))
         return
@@ -170,7 +173,7 @@ def runs(db: str | None, as_json: bool) -> None:
     for r in rows:
         click.echo(
             f"{r['id']:5d}  {r['name']:<28} {r['state']:<12} {r['points_done']:>6}/{r['points_total']:<6} "
-            f"{r['started_at'] or '-':<24} {r['finished_at'] or '-'}"
+            f"{r['started_at'] or '-':<24} {r['finished_at'] or '-'}{marks.get(r['id'], '')}"
         )
 
 

@@ -46,3 +46,14 @@ def show_push_status(store: Store) -> None:
         state = f"failing since the last success ({p['error']}); next try {p['next_try_at']}" if p["error"] else "ok"
         waiting = f"{p['waiting']} runs waiting; tried {p['tried_at']}"
         click.echo(f"push: to {p['target']} as '{p['bench']}': {state}; {waiting}")
+
+
+def push_marks(store: Store) -> dict[int, str]:
+    """`  pushed as NAME #ID` for each local run a push noted (none for a shared store or an unpushed file)."""
+    from nightbench.store.pg import PgStore
+
+    conn = store.conn
+    if isinstance(store, PgStore) or not conn.execute("SELECT 1 FROM sqlite_master WHERE name='pushes'").fetchone():
+        return {}
+    rows = conn.execute("SELECT run_id, bench, remote_id FROM pushes ORDER BY pushed_at").fetchall()
+    return {r[0]: f"  pushed as {r[1]} #{r[2]}" for r in rows}

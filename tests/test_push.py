@@ -109,6 +109,8 @@ def test_two_benches_push_every_run_once_and_a_second_push_adds_nothing(tmp_path
         == before
     )
     # the local file notes what was pushed, in its own table, and nothing else changed in it
+    listing = cli("runs", "--db", str(b)).stdout.splitlines()
+    assert [line.split("pushed as ")[1] for line in listing] == ["bench-b #3", "bench-b #4", "bench-b #5"]
     assert sqlite3.connect(b).execute("SELECT run_id, bench FROM pushes ORDER BY run_id").fetchall() == [
         (1, "bench-b"),
         (2, "bench-b"),
