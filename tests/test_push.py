@@ -224,6 +224,12 @@ def test_bad_url_wrong_password_and_unreachable_server_are_one_line_and_change_n
         assert "Traceback" not in res.stderr and len(res.stderr.strip().splitlines()) == 1, (name, res.stderr)
         assert not any(s in res.stderr for s in ("wrong-secret", "right-secret", "pw-in-url")), (name, res.stderr)
         assert fingerprint(db) == before, name
+    missing = tmp_path / "missing.db"
+    res = cli("push", "--db", str(missing), "--to", pg_url)
+    assert res.returncode == 2 and "no such database" in res.stderr and not missing.exists()
+    assert _pushed(pg_url) == 0  # refused before the server was contacted: no store was created
+    res = cli("serve", "--db", str(db), "--push-to", "http://lab-db/x")
+    assert res.returncode == 2 and "postgresql://" in res.stderr and not Path(f"{db}.serve-lock").exists()
     shown = cli("runs", "--db", wrong)
     assert (
         shown.returncode == 2
