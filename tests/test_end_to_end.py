@@ -17,6 +17,8 @@ from nightbench.analysis.fit import analyse_group
 from nightbench.simulators.physics import BenchConfig, BenchModel
 from tests.conftest import cli, plan_dict
 
+# the documented group keys (docs/design.md) come first in every group; later issues append keys
+# (laws, several limits) and test_report.py pins the full list
 REPORT_KEYS = {
     "frequency_hz",
     "temperature_c",
@@ -65,7 +67,7 @@ def test_run_stores_points_that_match_the_simulated_law(bench, write_plan, db):
     report = json.loads(cli("report", "1", "--db", str(db), "--json").stdout)
     assert report["run_id"] == 1 and len(report["groups"]) == 2
     for group in report["groups"]:
-        assert set(group) == REPORT_KEYS
+        assert set(list(group)[: len(REPORT_KEYS)]) == REPORT_KEYS
         f = group["frequency_hz"]
         ideal = [
             {"power_dbm": p, "value_v": truth.truth_v(p, f), "settled": 1, "overload": 0} for p in range(-70, -9, 2)

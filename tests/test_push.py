@@ -415,3 +415,23 @@ def test_values_arrive_bit_for_bit_text_escapes_and_extreme_doubles(tmp_path, pg
     shared = [v for (v,) in pg_rows(pg_url, "SELECT value_v FROM points ORDER BY idx")]
     local = [v for (v,) in sqlite3.connect(db).execute("SELECT value_v FROM points ORDER BY idx")]
     assert shared[: len(values)] == values and shared == local
+
+
+def test_a_completed_run_whose_fits_are_not_stored_yet_waits_for_the_next_push(tmp_path, pg_url):
+    # the moment between a foreground run marking itself completed and writing its fits: a push
+    # then must not send the run without fits for good (a bench role cannot correct it later)
+    from nightbench.runs import store_fits
+    from nightbench.store.db import Store
+
+    db = tmp_path / "bench.db"
+    run_id = store_run(db, lambda p, f: 0.02 * (p + 90.0), frequencies=[100e6])
+    res = cli("push", "--db", str(db), "--to", pg_url, "--bench", "b1")
+    assert res.returncode == 0, res.stderr
+    assert shared_counts(pg_url, "points", "b1") == {}
+    store = Store(db)
+    store_fits(store, run_id)
+    store.close()
+    res = cli("push", "--db", str(db), "--to", pg_url, "--bench", "b1")
+    assert res.returncode == 0, res.stderr
+    assert shared_counts(pg_url, "points", "b1") == {run_id: local_counts(db, "points")[run_id]}
+    assert shared_counts(pg_url, "fits", "b1") == {run_id: 1}

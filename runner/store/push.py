@@ -161,7 +161,7 @@ def push(
     pg.autocommit = True  # so each `pg.transaction()` below is a transaction of its own, not a savepoint
     try:
         ensure_schema(pg, shown)
-        finished = [r[0] for r in local.execute("SELECT id FROM runs WHERE state=? ORDER BY id", (RunState.COMPLETED,))]
+        finished = ready_runs(local)
         there = dict(pg.execute("SELECT local_id, id FROM runs WHERE bench=%s", (bench,)).fetchall())
         for run_id in finished:
             if run_id in there:
@@ -195,15 +195,29 @@ def push(
     return done
 
 
+def ready_runs(conn: Any) -> list[int]:
+    """Completed runs whose analysis is settled: its fits are stored, or storing them failed and
+    said so (an `analysis` event). A run between `completed` and its fits (the moment a foreground
+    `run` is writing them) waits for the next push instead of going up without fits for good."""
+    ids = [r[0] for r in conn.execute("SELECT id FROM runs WHERE state=? ORDER BY id", (RunState.COMPLETED,))]
+    has = {r[0] for r in conn.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+    if "analyses" not in has:
+        return ids  # a file from before analyses were stored: its fits came with the run or not at all
+    done = {r[0] for r in conn.execute("SELECT DISTINCT run_id FROM analyses")}
+    done |= {r[0] for r in conn.execute("SELECT DISTINCT run_id FROM events WHERE kind='analysis'")}
+    return [i for i in ids if i in done]
+
+
 def pending(db: str, target: str) -> int:
     """Completed runs of a local file not yet noted as pushed to `target` (masked URL)."""
     store = Store.open_readonly(db)
     try:
         conn = store.conn
+        ready = ready_runs(conn)
         if conn.execute("SELECT 1 FROM sqlite_master WHERE type='table' AND name='pushes'").fetchone() is None:
-            return int(conn.execute("SELECT COUNT(*) FROM runs WHERE state=?", (RunState.COMPLETED,)).fetchone()[0])
-        sql = "SELECT COUNT(*) FROM runs WHERE state=? AND id NOT IN (SELECT run_id FROM pushes WHERE target=?)"
-        return int(conn.execute(sql, (RunState.COMPLETED, target)).fetchone()[0])
+            return len(ready)
+        pushed = {r[0] for r in conn.execute("SELECT run_id FROM pushes WHERE target=?", (target,))}
+        return len([i for i in ready if i not in pushed])
     finally:
         store.close()
 
