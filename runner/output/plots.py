@@ -160,24 +160,16 @@ def slope_intercept_plot(reports: list[Report], path: Path) -> Path:
         fitted = [g for g in report.groups if g.value(first) is not None]
         mhz = [g.frequency_hz / 1e6 for g in fitted]
         name = f"run {report.run_id}" + (f" ({report.dut_id})" if report.dut_id else "")
-        top.errorbar(
-            mhz,
-            [g.value(first) for g in fitted],
-            yerr=[g.value(BY_NAME[first].with_u or first) for g in fitted],
-            fmt=MARKERS[r_i] + LINESTYLES[r_i],
-            capsize=3,
-            ms=4,
-            label=name,
-        )
-        bottom.errorbar(
-            mhz,
-            [g.value(second) for g in fitted],
-            yerr=[g.value(BY_NAME[second].with_u or second) for g in fitted],
-            fmt=MARKERS[r_i] + LINESTYLES[r_i],
-            capsize=3,
-            ms=4,
-            label=name,
-        )
+        for ax, quantity in ((top, first), (bottom, second)):
+            ax.errorbar(
+                mhz,
+                [g.value(quantity) for g in fitted],
+                yerr=[g.value(BY_NAME[quantity].with_u or quantity) for g in fitted],
+                fmt=MARKERS[r_i] + LINESTYLES[r_i],
+                capsize=3,
+                ms=4,
+                label=name,
+            )
     top.set_ylabel(first_label)
     bottom.set_ylabel(second_label)
     bottom.set_xlabel("frequency (MHz)")
