@@ -48,6 +48,9 @@ V_POINTS = [
     "chamber_c",
     "dut_c",
     "error_db",
+    "repeat",
+    "direction",
+    "unit_id",
 ]
 V_FITS = [
     "run_id",
@@ -166,6 +169,8 @@ def _version_1(db: Path) -> None:
         "DROP TRIGGER points_uncounted; DROP TABLE run_counts; DROP TABLE fits; DROP TABLE run_files; "
         "DROP TABLE jobs; DROP TABLE service; DROP TABLE soaks; ALTER TABLE points DROP COLUMN temperature_c; "
         "ALTER TABLE points DROP COLUMN chamber_c; ALTER TABLE points DROP COLUMN dut_c; "
+        "ALTER TABLE points DROP COLUMN repeat; ALTER TABLE points DROP COLUMN direction; "
+        "ALTER TABLE points DROP COLUMN unit_id; DROP TABLE instruments; "
         "UPDATE meta SET value = '1' WHERE key = 'schema_version';"
     )
     conn.close()
@@ -189,6 +194,9 @@ def test_a_version_1_file_is_migrated_in_place(tmp_path):
     assert store.conn.execute("SELECT COUNT(*) FROM v_points").fetchone()[0] == 41
     # version 4 added columns to a table the file already had: they are there, NULL for old points
     assert store.conn.execute("SELECT COUNT(*) FROM v_points WHERE temperature_c IS NULL").fetchone()[0] == 41
+    # version 6: an old point is the first (only) pass, with no direction and no unit
+    old = "SELECT COUNT(*) FROM v_points WHERE repeat = 0 AND direction IS NULL AND unit_id IS NULL"
+    assert store.conn.execute(old).fetchone()[0] == 41
 
 
 def test_a_read_only_open_reads_an_old_file_as_it_is_and_writes_nothing(tmp_path):
@@ -354,7 +362,9 @@ def _version_4_with_fits(db: Path) -> None:
     conn.executescript(
         "DROP VIEW v_points; DROP VIEW v_fits; DROP VIEW v_fits_all; DROP TABLE point_errors; DROP TABLE analyses;"
         + drops
-        + "ALTER TABLE fits DROP COLUMN analysis_id; UPDATE meta SET value = '4' WHERE key = 'schema_version';"
+        + "ALTER TABLE fits DROP COLUMN analysis_id; ALTER TABLE points DROP COLUMN repeat; "
+        "ALTER TABLE points DROP COLUMN direction; ALTER TABLE points DROP COLUMN unit_id; DROP TABLE instruments; "
+        "UPDATE meta SET value = '4' WHERE key = 'schema_version';"
     )
     conn.close()
 
@@ -363,7 +373,7 @@ def test_a_version_4_file_with_fits_gets_them_as_the_runs_own_analysis(tmp_path)
     db = tmp_path / "v4.db"
     _version_4_with_fits(db)
     store = Store(db, create=False)
-    assert store.conn.execute("SELECT value FROM meta").fetchone()[0] == str(SCHEMA_VERSION) == "5"
+    assert store.conn.execute("SELECT value FROM meta").fetchone()[0] == str(SCHEMA_VERSION) == "6"
     (analysis,) = store.analyses(1)
     assert (analysis["origin"], analysis["law"], analysis["fit_dbm"], analysis["error_limits_db"]) == (
         "run",

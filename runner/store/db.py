@@ -264,8 +264,8 @@ class Store(AnalysesMixin):
         with self._sql(f"storing point {point.index} of run {run_id}"), self._transaction():
             self.conn.execute(
                 "INSERT INTO points (run_id, idx, frequency_hz, power_dbm, source_dbm, value_v, stdev_v, samples,"
-                " settle_s, settle_readings, settled, overload, measured_at, temperature_c, chamber_c, dut_c)"
-                " VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)",
+                " settle_s, settle_readings, settled, overload, measured_at, temperature_c, chamber_c, dut_c,"
+                " repeat, direction, unit_id) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)",
                 (
                     run_id,
                     point.index,
@@ -283,6 +283,9 @@ class Store(AnalysesMixin):
                     getattr(point, "temperature_c", None),
                     result.chamber_c,
                     result.dut_c,
+                    getattr(point, "repeat", 0),
+                    getattr(point, "direction", None),
+                    getattr(point, "unit_id", None),
                 ),
             )
             self.conn.executemany(

@@ -11,8 +11,9 @@ from nightbench.store.states import JobState, RunState, sql_in
 
 # 2: fits, run_counts, and the v_points / v_fits views; 3: jobs, service; 4: temperature_c,
 # chamber_c and dut_c on points, and the soaks table; 5: analyses (several per run, each with its
-# parameters), the laws' fields on fits, point_errors, v_fits_all and v_points.error_db (docs/database.md)
-SCHEMA_VERSION = 5
+# parameters), the laws' fields on fits, point_errors, v_fits_all and v_points.error_db (docs/database.md);
+# 6: repeat, direction and unit_id on points (measure.repeats, units), and the instruments table (the run record)
+SCHEMA_VERSION = 6
 
 # the CHECK constraints come from store/states.py (generated text identical to the words written before)
 SCHEMA = f"""
@@ -59,6 +60,9 @@ CREATE TABLE IF NOT EXISTS points (
     temperature_c REAL,
     chamber_c REAL,
     dut_c REAL,
+    repeat INTEGER NOT NULL DEFAULT 0,
+    direction TEXT CHECK (direction IN ('up', 'down')),
+    unit_id TEXT,
     PRIMARY KEY (run_id, idx)
 ) WITHOUT ROWID;
 CREATE TABLE IF NOT EXISTS readings (
@@ -125,6 +129,19 @@ CREATE TABLE IF NOT EXISTS jobs (
     cancel_requested INTEGER NOT NULL DEFAULT 0,
     error TEXT
 );
+-- the run record: each instrument as the run found and left it (identity, the state it was put in
+-- and read back, its calibration-due date), so an auditor can repeat the setup
+CREATE TABLE IF NOT EXISTS instruments (
+    run_id INTEGER NOT NULL REFERENCES runs(id),
+    role TEXT NOT NULL,
+    driver TEXT NOT NULL,
+    resource TEXT NOT NULL,
+    identity TEXT,
+    calibration_due TEXT,
+    state_json TEXT NOT NULL DEFAULT '{{}}',
+    recorded_at TEXT NOT NULL,
+    PRIMARY KEY (run_id, role)
+) WITHOUT ROWID;
 -- each soak at a chamber setpoint: how long it took and what the chamber read meanwhile
 CREATE TABLE IF NOT EXISTS soaks (
     id INTEGER PRIMARY KEY,
@@ -153,6 +170,9 @@ ADDED_COLUMNS = (
     ("points", "temperature_c", "REAL"),
     ("points", "chamber_c", "REAL"),
     ("points", "dut_c", "REAL"),
+    ("points", "repeat", "INTEGER NOT NULL DEFAULT 0"),
+    ("points", "direction", "TEXT CHECK (direction IN ('up', 'down'))"),
+    ("points", "unit_id", "TEXT"),
     *added_fit_columns(5),
     ("fits", "analysis_id", "INTEGER REFERENCES analyses(id)"),
 )
@@ -184,7 +204,7 @@ SELECT p.run_id, r.name AS run_name, r.dut_id, r.state AS run_state, r.started_a
        r.finished_at AS run_finished_at, r.source_idn, r.meter_idn,
        p.idx, p.frequency_hz, p.temperature_c, p.power_dbm, p.source_dbm, p.value_v, p.stdev_v,
        p.samples, p.settle_s, p.settle_readings, p.settled, p.overload, p.measured_at,
-       p.chamber_c, p.dut_c, e.error_db
+       p.chamber_c, p.dut_c, e.error_db, p.repeat, p.direction, p.unit_id
 FROM points p JOIN runs r ON r.id = p.run_id
 LEFT JOIN point_errors e ON e.analysis_id = {LATEST.format(run="p.run_id")} AND e.idx = p.idx;
 DROP VIEW IF EXISTS v_fits;
