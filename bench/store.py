@@ -74,9 +74,11 @@ def synthesise(path: Path, runs: int) -> tuple[int, int]:
     ridx = np.repeat(idx, per_point).tolist()
     points = readings = 0
     day0 = time.mktime((2025, 1, 1, 22, 0, 0, 0, 0, -1))
+    # each run is created through the product's own path, which commits its own transaction, so
+    # all of them are created before the batched inserts below open theirs
+    run_ids = [new_run(store, loaded) for _ in range(runs)]
     conn.execute("BEGIN")
-    for r in range(runs):
-        run_id = new_run(store, loaded)
+    for r, run_id in enumerate(run_ids):
         start = day0 + 86400 * r
         conn.execute(
             "UPDATE runs SET state='completed', dut_id=?, started_at=?, finished_at=? WHERE id=?",
