@@ -435,3 +435,18 @@ def test_a_completed_run_whose_fits_are_not_stored_yet_waits_for_the_next_push(t
     assert res.returncode == 0, res.stderr
     assert shared_counts(pg_url, "points", "b1") == {run_id: local_counts(db, "points")[run_id]}
     assert shared_counts(pg_url, "fits", "b1") == {run_id: 1}
+
+
+@pytest.mark.parametrize(("ci", "outcome"), [("true", pytest.fail.Exception), (None, pytest.skip.Exception)])
+def test_without_server_programs_the_store_tests_skip_here_and_fail_under_ci(monkeypatch, ci, outcome):
+    # The rule tests/pg.py states: a machine without initdb/pg_ctl skips the shared-store tests with
+    # the reason shown, but CI (CI=true) must test the store, so there a missing server is a failure.
+    from tests import pg
+
+    monkeypatch.setattr(pg, "_program", lambda name: None)
+    if ci is None:
+        monkeypatch.delenv("CI", raising=False)
+    else:
+        monkeypatch.setenv("CI", ci)
+    with pytest.raises(outcome, match="initdb, pg_ctl"):
+        next(pg.start_cluster())
