@@ -94,3 +94,19 @@ class ChamberRole(Role, Protocol):
 
     def stop(self) -> None:
         """Stop conditioning."""
+
+
+class SwitchRole(Role, Protocol):
+    """An RF switch routing one unit at a time to the source and meter (drivers/switch.py).
+    `closed` is the route last closed and read back, None when open or unknown."""
+
+    @property
+    def closed(self) -> int | None: ...
+
+    def open_all(self) -> None: ...
+
+    def query_closed(self, channel: int) -> bool:
+        """Whether the switch itself says this route is closed."""
+
+    def select(self, channel: int) -> None:
+        """Open all, close this route and read it back; InstrumentError if it reads open."""

@@ -3,8 +3,8 @@
 A fault is a dict (from a `[[fault]]` table of the simulator config, or a `--fault` flag):
 
     kind         drop | silence | delay | garbage | spurious_error | refuse_level | overload
-                 | refuse_setpoint | drift
-    instrument   source | meter | adc | chamber
+                 | refuse_setpoint | drift | stuck_route
+    instrument   source | meter | adc | chamber | switch
     after        fire from the N-th message to that instrument on (1-based; 0 = from the start)
     at_s         or from this many seconds after the simulator started
     count        how many times it fires (0 = every time once triggered); default 1
@@ -14,6 +14,7 @@ A fault is a dict (from a `[[fault]]` table of the simulator config, or a `--fau
     code         spurious_error / refuse_level: the SCPI error code; default -221 / -222
     level_dbm    refuse_level: refuse only levels at or above this
     rate_c_per_s drift: how fast the chamber's reading walks away from the air, degC per clock second
+    channel      stuck_route: the switch route that stays open when closed (any route if not given)
 
 Transport kinds (drop, silence, delay, garbage, spurious_error) act where messages arrive;
 refuse_level, overload, refuse_setpoint (the chamber refuses a setpoint, -222) and drift (its
@@ -38,8 +39,9 @@ KINDS = (
     "overload",
     "refuse_setpoint",
     "drift",
+    "stuck_route",
 )
-INSTRUMENTS = ("source", "meter", "adc", "chamber")
+INSTRUMENTS = ("source", "meter", "adc", "chamber", "switch")
 
 
 @dataclass
@@ -55,6 +57,7 @@ class Fault:
     code: int | None = None
     level_dbm: float | None = None
     rate_c_per_s: float = 0.5
+    channel: int | None = None
     fired: int = 0
     fired_at: float | None = None
     rng: random.Random = field(default_factory=random.Random, repr=False)
@@ -90,7 +93,7 @@ def parse_fault_flag(text: str) -> dict:
         if not eq:
             raise ValueError(f"fault option '{item}' is not key=value")
         number = float(value)
-        data[key] = int(number) if key in ("after", "count", "code") else number
+        data[key] = int(number) if key in ("after", "count", "code", "channel") else number
     return data
 
 
@@ -167,6 +170,15 @@ class FaultInjector:
             return sum(
                 f.rate_c_per_s * (now - f.fired_at) for f in self.faults if f.kind == "drift" and f.fired_at is not None
             )
+
+    def stuck_route(self, channel: int) -> bool:
+        """Whether closing this switch route fails (it stays open)."""
+        with self.lock:
+            for fault in self.faults:
+                if fault.kind == "stuck_route" and fault.channel in (None, channel) and self._due(fault):
+                    fault.fired += 1
+                    return True
+        return False
 
     def overload(self, instrument: str) -> bool:
         with self.lock:

@@ -184,6 +184,7 @@ class BenchConfig:
     temperature_c: float = 25.0  # the room, where the chamber's air and the DUT start
     seed: int = 1
     faults: list[dict] = field(default_factory=list)
+    units: list[dict] = field(default_factory=list)  # [[unit]] tables: a detector per switch route (switch.py)
 
     @classmethod
     def from_dict(cls, data: dict) -> BenchConfig:
@@ -195,6 +196,9 @@ class BenchConfig:
                 continue
             if section == "fault":
                 config.faults = list(values)
+                continue
+            if section == "unit":
+                config.units = [dict(v) for v in values]
                 continue
             part = getattr(config, section, None)
             if part is None or not isinstance(values, dict) or section == "faults":
@@ -275,6 +279,7 @@ class BenchModel:
         self.frequency_hz = 100e6
         self.level_dbm = self.config.source.min_dbm
         self.output_on = False
+        self.connected = True  # False while a switch has every route open: the meter sees no detector
         self.thermal = ThermalModel(self.config.chamber, self.config.temperature_c, self.config.seed)
         self.temperature_c = self.config.temperature_c  # the DUT's, as of the last source change
         share = self.config.detector.tail_share
@@ -297,6 +302,8 @@ class BenchModel:
         return level + self.source_error_db(f) - self.config.path.loss(f) if on else -math.inf
 
     def steady_output_v(self) -> float:
+        if not self.connected:
+            return 0.0
         return self.truth_v(self.dut_dbm(), self.frequency_hz)
 
     def truth_v(self, dut_dbm: float, frequency_hz: float) -> float:

@@ -31,6 +31,7 @@ from nightbench.simulators.faults import FaultInjector, parse_fault_flag
 from nightbench.simulators.instruments import DIALECTS, SimAdc, SimMeter, SimSource
 from nightbench.simulators.links import PtyStream, SocketStream, serve_stream
 from nightbench.simulators.physics import BenchConfig, BenchModel
+from nightbench.simulators.switch import SimSwitch
 
 
 class TcpPort:
@@ -121,7 +122,7 @@ class Bench:
         self.model = BenchModel(self.config)
         self.faults = FaultInjector(self.config.faults, seed=self.config.seed)
         self.stop_event = threading.Event()
-        self.locks = {name: threading.Lock() for name in ("source", "meter", "adc", "chamber")}
+        self.locks = {name: threading.Lock() for name in ("source", "meter", "adc", "chamber", "switch")}
         self.source = SimSource(self.model, log=log, faults=self.faults, dialect=dialect)
         self.meter = SimMeter(self.model, faults=self.faults, dialect=dialect)
         self.adc = SimAdc(self.model, faults=self.faults)
@@ -134,15 +135,19 @@ class Bench:
         if serial:
             self.ports += [PtyPort(self.meter, "meter", self), PtyPort(self.adc, "adc", self)]
         self.ports.append(self.chamber_port)
+        self.switch = SimSwitch(self.model, log=log, faults=self.faults)  # the units behind its routes
+        self.switch_port = TcpPort(0, self.switch, "switch", self)
+        self.ports.append(self.switch_port)
 
     def resources(self) -> dict[str, str | None]:
-        serial = len(self.ports) > 3
+        serial = any(isinstance(p, PtyPort) for p in self.ports)
         return {
             "source": self.ports[0].resource,
             "meter": self.ports[1].resource,
             "meter_serial": self.ports[2].resource if serial else None,
             "adc_serial": self.ports[3].resource if serial else None,
             "chamber": self.chamber_port.resource,
+            "switch": self.switch_port.resource,
         }
 
     def start(self) -> None:
@@ -218,7 +223,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument(
         "--config",
         help="simulator config file (TOML: [source] [path] [detector] [meter] [adc] [chamber] sections, "
-        "[[fault]] tables)",
+        "[[fault]] tables, [[unit]] tables: a detector per switch route)",
     )
     parser.add_argument("--log", help="append one JSON line per source state change to this file")
     parser.add_argument(
