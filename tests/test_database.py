@@ -84,6 +84,12 @@ V_FITS = [
     "offset_v",
     "offset_u_v",
     "ranges",
+    "slope_k",
+    "slope_nu_eff",
+    "intercept_k",
+    "intercept_nu_eff",
+    "range_low_u_db",
+    "range_high_u_db",
     "analysis_id",
 ]
 

@@ -231,6 +231,13 @@ GROUP_KEYS = [
     "offset_v",
     "offset_u_v",
     "ranges",
+    # issue 14: each U's k and effective degrees of freedom, the range ends' U (docs/uncertainty.md)
+    "slope_k",
+    "slope_nu_eff",
+    "intercept_k",
+    "intercept_nu_eff",
+    "range_low_u_db",
+    "range_high_u_db",
 ]
 COMPARISON_KEYS = ["run_ids", "runs", "differences", "only_in_a_hz", "only_in_b_hz"]
 DIFFERENCE_KEYS = [
@@ -246,6 +253,9 @@ DIFFERENCE_KEYS = [
     "intercept_diff_u_db",
     "slope_diff_u_type_a_mv_per_db",
     "intercept_diff_u_type_a_db",
+    "slope_diff_u_unshared_mv_per_db",
+    "intercept_diff_u_unshared_db",
+    "shared_terms",
 ]
 
 
@@ -267,6 +277,7 @@ def test_the_json_shapes_are_the_documented_ones(tmp_path):
         "error_limits_db",
         "reference_c",
         "source",
+        "coverage_probability",
     ]
     cmp = _report(db, "1", "2")
     assert list(cmp) == COMPARISON_KEYS

@@ -13,10 +13,11 @@ import numpy as np
 import pytest
 from scipy import stats
 
+from nightbench.analysis.budget import build_budget
 from nightbench.analysis.fit import analyse_group, fit_line
+from nightbench.analysis.gum import coverage_factor, welch_satterthwaite
 from nightbench.analysis.uncertainty import (
     K_EXPANSION,
-    build_budget,
     combine,
     expand,
     propagate_through_fit,
@@ -102,9 +103,11 @@ def test_meter_gain_scales_the_slope_and_offset_moves_the_intercept():
     assert terms["meter_gain"].intercept_db == 0.0 and terms["meter_offset"].slope_mv_per_db == 0.0
 
 
-def test_reported_uncertainty_is_k_times_the_root_sum_of_squares_of_the_included_terms():
+def test_reported_uncertainty_is_k_times_the_root_sum_of_squares_with_k_from_welch_satterthwaite():
+    # issue 14: U = k u_c with k = t_95.45(nu_eff), nu_eff by JCGM 100:2008 G.4.1 (eq. G.2b);
+    # scipy.stats.t as the reference for k; the Type B terms have infinite degrees of freedom.
     rng = np.random.default_rng(1)
-    values = law(LEVELS) + rng.normal(0, 0.001, LEVELS.size)
+    values = law(LEVELS) + rng.normal(0, 0.0002, LEVELS.size)
     accuracy = {
         "source_level_accuracy_db": 0.5,
         "path_loss_accuracy_db": 0.1,
@@ -112,31 +115,55 @@ def test_reported_uncertainty_is_k_times_the_root_sum_of_squares_of_the_included
         "meter_offset_accuracy_v": 1e-4,
     }
     g = analyse_group(1e8, rows(LEVELS, values, stdev=0.0004), (-60, -20), 1.0, accuracy)
-    used = [t for t in g.budget.terms if t.included]
-    assert {t.key for t in g.budget.terms} - {t.key for t in used} == {"reading_scatter"}
-    assert g.slope_u_mv_per_db == pytest.approx(2 * math.sqrt(sum(t.slope_mv_per_db**2 for t in used)))
-    assert g.intercept_u_db == pytest.approx(2 * math.sqrt(sum(t.intercept_db**2 for t in used)))
+    used = [t for t in g.budget.terms if t.included and (t.slope_mv_per_db or t.intercept_db)]
+    assert {t.key for t in used} == {"reading_scatter", "source_level", "path_loss", "meter_gain", "meter_offset"}
+    for quantity, value in (("slope", g.slope_u_mv_per_db), ("intercept", g.intercept_u_db)):
+        parts = [t.u(quantity) for t in used if t.u(quantity)]
+        dofs = [t.dof for t in used if t.u(quantity)]
+        uc = math.sqrt(sum(p * p for p in parts))
+        nu = sum(p * p for p in parts) ** 2 / sum(p**4 / d for p, d in zip(parts, dofs) if math.isfinite(d))
+        assert value == pytest.approx(stats.t.ppf(0.5 + 0.9545 / 2, nu) * uc, rel=1e-9)
+    assert g.slope_nu_eff == pytest.approx(g.budget.nu_eff("slope")) and g.slope_k > 2.0
 
 
-def test_only_the_larger_type_a_estimate_is_combined():
-    # Perfectly straight points with noisy samples: the residuals say ~0, the samples say more.
-    g = analyse_group(1e8, rows(LEVELS, law(LEVELS), stdev=0.002, samples=4), (-60, -20), 1.0)
-    terms = {t.key: t for t in g.budget.terms}
-    assert terms["reading_scatter"].included and not terms["fit"].included
-    expected_u_b, _ = propagate_through_fit(LEVELS, np.full(LEVELS.size, 0.001), 2.2, 0.025)  # 0.002/sqrt(4)
-    assert g.slope_u_mv_per_db == pytest.approx(2 * expected_u_b * 1e3, rel=1e-9)
+def test_lack_of_fit_does_not_enter_the_budget():
+    # issue 14: a part's own ripple (residuals 10x the noise, lag-1 autocorrelation near 1) is reported,
+    # not combined: the slope's U is the reading scatter's alone, as propagate_through_fit gives it.
+    ripple = 0.025 * 0.15 * np.sin(2 * np.pi * LEVELS / 10.0)
+    g = analyse_group(1e8, rows(LEVELS, law(LEVELS) + ripple, stdev=0.0004, samples=4), (-60, -20), 1.0)
+    assert [t.key for t in g.budget.terms if t.type == "A"] == ["reading_scatter"]
+    expected_u_b, _ = propagate_through_fit(LEVELS, np.full(LEVELS.size, 0.0002), 2.2, 0.025)  # 0.0004/sqrt(4)
+    assert g.budget.uc("slope") == pytest.approx(expected_u_b * 1e3, rel=0.05)
+    lof = g.budget.lack_of_fit
+    # residuals 10x the noise; neighbours correlated as a sine sampled 5 times a period: cos(2 pi / 5) = 0.31,
+    # where white noise would give about -1/n (common practice); numpy's correlate as the estimator's reference
+    e = np.array([c["error_db"] for c in g.curve if c["status"] == "in_fit"])
+    e = e - e.mean()
+    assert lof["residual_to_noise"] > 5
+    assert lof["lag1_autocorrelation"] == pytest.approx(np.correlate(e, e, "full")[e.size] / (e @ e), rel=1e-9)
+    assert lof["lag1_autocorrelation"] == pytest.approx(math.cos(2 * math.pi / 5), abs=0.05)
+    # the ripple's rms over whole periods is 0.15/sqrt(2) dB less what the line absorbs (from the law above)
+    assert 0.05 < lof["rms_db"] < 0.15 / math.sqrt(2) + 1e-9
 
 
-def test_no_reading_scatter_term_without_sample_spread():
+def test_with_no_measured_scatter_the_residuals_stand_in_and_say_so():
     budget = build_budget(
         slope_v_per_db=0.025,
         intercept_v=2.2,
-        u_slope_fit=1e-5,
-        u_intercept_fit_db=0.01,
         residual_sd_v=1e-3,
         x=LEVELS,
         u_y=[None] * LEVELS.size,
-        accuracy={},
     )
-    assert [t.key for t in budget.terms if t.type == "A"] == ["fit"]
-    assert budget.slope_u_mv_per_db == pytest.approx(1e-2)
+    assert [t.key for t in budget.terms if t.type == "A"] == ["residual_scatter"]
+    u_b, _ = propagate_through_fit(LEVELS, np.full(LEVELS.size, 1e-3), 2.2, 0.025)
+    assert budget.uc("slope") == pytest.approx(u_b * 1e3)
+    assert budget.nu_eff("slope") == pytest.approx(LEVELS.size - 2)  # n - 2 degrees of freedom of a line's residuals
+
+
+def test_welch_satterthwaite_and_k_follow_the_gum():
+    # JCGM 100:2008 G.4.1, eq. (G.2b), by hand: u = (1, 1), nu = (4, inf) -> nu_eff = 2^2 / (1/4) = 16
+    assert welch_satterthwaite([1.0, 1.0], [4.0, math.inf]) == pytest.approx(16.0)
+    assert welch_satterthwaite([0.3, 0.4], [math.inf, math.inf]) == math.inf
+    # JCGM 100:2008 Table G.2, p = 95.45 % (from memory): nu = 1, 2, 3, 10, 20, 50, inf -> k
+    for nu, k in ((1, 13.97), (2, 4.53), (3, 3.31), (10, 2.28), (20, 2.13), (50, 2.05), (math.inf, 2.00)):
+        assert coverage_factor(nu) == pytest.approx(k, abs=0.006)

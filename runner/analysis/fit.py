@@ -7,8 +7,9 @@ around the fit range where |error| stays within the limit (one range per limit a
 other laws (analysis/laws.py) fit the same line in their own input quantity (mW, V rms) and
 report its parameters in natural units; their error is the implied minus the applied level too.
 Uncertainties follow JCGM 100:2008
-(analysis/uncertainty.py): Type A from the fit and the reading scatter, Type B from what the plan
-states about the bench, expanded with k = 2.
+(analysis/uncertainty.py, docs/uncertainty.md): Type A from the readings' and the repeats' scatter,
+Type B from what the plan states about the bench, k from the t distribution for 95.45 %.
+Repeated sweeps are first collapsed to one mean per level (analysis/repeats.py).
 """
 
 from __future__ import annotations
@@ -22,9 +23,12 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike
 
+from nightbench.analysis.groupbudget import apply_log_budget
 from nightbench.analysis.laws import conformance_db as law_conformance_db
 from nightbench.analysis.laws import get_law, natural_budget
-from nightbench.analysis.uncertainty import Budget, build_budget, expand, type_a_of_mean
+from nightbench.analysis.repeats import collapse
+from nightbench.analysis.stated import Stated
+from nightbench.analysis.uncertainty import Budget, type_a_of_mean
 from nightbench.store.fields import BY_NAME, FIELDS, PUBLIC_KEYS, row_values
 
 
@@ -147,6 +151,13 @@ class GroupResult:
     offset_u_v: float | None = None
     ranges: list[dict[str, Any]] = field(default_factory=list)  # one per error limit, the first as above
     law_budget: dict[str, Any] | None = None  # the square and linear laws' JCGM 100 budget
+    slope_k: float | None = None  # coverage factors (t distribution, 95.45 %) and effective degrees
+    slope_nu_eff: float | None = None  # of freedom of the slope's and the intercept's U (None: infinite)
+    intercept_k: float | None = None
+    intercept_nu_eff: float | None = None
+    range_low_u_db: float | None = None  # expanded uncertainty of each range end (None at a sweep end)
+    range_high_u_db: float | None = None
+    point_u_db: list[float] = field(default_factory=list)  # U of each usable point's error, in level order
 
     @property
     def residual_sd_v(self) -> float | None:
@@ -219,7 +230,7 @@ def analyse_group(
     rows: Sequence[Mapping[str, Any]],
     fit_dbm: tuple[float, float],
     limit_db: float | Sequence[float],
-    accuracy: dict[str, float] | None = None,
+    accuracy: Stated | dict[str, float] | None = None,
     temperature_c: float | None = None,
     *,
     law: str = "log",
@@ -227,6 +238,7 @@ def analyse_group(
     """Fit one group of stored points (mappings with power_dbm, value_v, settled, overload and,
     for the reading-scatter term, stdev_v and samples) with a law; `limit_db` may be several
     limits, the first being the group's `error_limit_db`."""
+    rows, repeats = collapse(rows)
     limits = (float(limit_db),) if isinstance(limit_db, int | float) else tuple(float(x) for x in limit_db)
     the_law = get_law(law)
     rows = sorted(rows, key=lambda r: r["power_dbm"])
@@ -280,8 +292,6 @@ def analyse_group(
             }
         )
     low, high = group.ranges[0]["range_low_dbm"], group.ranges[0]["range_high_dbm"]
-    u_y = [_u_mean(r) for r, ok in zip(usable, in_fit) if ok]
-    _parameters(group, fit, levels[in_fit], x[in_fit], u_y, accuracy or {})
     group.range_low_dbm, group.range_high_dbm = low, high
     group.dynamic_range_db = group.ranges[0]["dynamic_range_db"]
     finite = np.abs(errors[in_fit])
@@ -291,31 +301,36 @@ def analyse_group(
     group.range_low_at_sweep_end = low is not None and low == round(float(levels.min()), 1)
     group.range_high_at_sweep_end = high is not None and high == round(float(levels.max()), 1)
     group.curve = curve(errors)
+    _uncertainties(group, fit, usable, (levels, x, in_fit, errors), accuracy, repeats)
     return group
 
 
-def _parameters(
-    group: GroupResult, fit: LineFit, levels: np.ndarray, x: np.ndarray, u_y: list[float | None], accuracy: dict
+def _uncertainties(
+    group: GroupResult,
+    fit: LineFit,
+    usable: list[Mapping[str, Any]],
+    arrays: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray],
+    accuracy: Stated | dict[str, float] | None,
+    repeats: dict[str, Any] | None,
 ) -> None:
-    """The law's parameters and their budget: slope and intercept for log, else the natural ones."""
-    law = get_law(group.law)
-    if law.param is None:
-        budget = build_budget(
-            slope_v_per_db=fit.slope_v_per_db,
-            intercept_v=fit.intercept_v,
-            u_slope_fit=fit.u_slope_v_per_db,
-            u_intercept_fit_db=fit.u_intercept_dbm,
-            residual_sd_v=fit.residual_sd_v,
-            x=levels,
-            u_y=u_y,
-            accuracy=accuracy,
-        )
-        group.slope_mv_per_db = fit.slope_v_per_db * 1e3
-        group.slope_u_mv_per_db = expand(budget.slope_u_mv_per_db)
-        group.intercept_dbm = fit.intercept_dbm
-        group.intercept_u_db = expand(budget.intercept_u_db)
-        group.budget = budget
+    """The budget (analysis/groupbudget.py for the log law, laws.py for the others) and each point's U."""
+    levels, x, in_fit, errors = arrays
+    u_all = [_u_mean(r) for r in usable]
+    if group.law != "log":
+        _natural(group, fit, x[in_fit], [u for u, ok in zip(u_all, in_fit) if ok], Stated.of(accuracy).accuracy)
         return
+    dof_all = [float(r.get("dof") or (r.get("samples") or 1) - 1) for r in usable]
+    counts = [int(r.get("repeats") or 1) for r in usable]
+    group.budget = apply_log_budget(group, fit, levels, in_fit, u_all, dof_all, counts, errors, accuracy, repeats)
+    usable_entries = [c for c in group.curve if c["status"] in ("in_fit", "outside_fit")]
+    for entry, big in zip(usable_entries, group.point_u_db):
+        entry["error_u_db"] = big if entry["error_db"] is not None else None
+
+
+def _natural(group: GroupResult, fit: LineFit, x: np.ndarray, u_y: list[float | None], accuracy: dict) -> None:
+    """The square and linear laws' natural parameters and their budget (analysis/laws.py)."""
+    law = get_law(group.law)
+    assert law.param is not None
     nat = natural_budget(
         law,
         slope=fit.slope_v_per_db,
@@ -342,7 +357,7 @@ def analyse_run(
     points: Sequence[Mapping[str, Any]],
     fit_dbm: tuple[float, float],
     limit_db: float | Sequence[float],
-    accuracy: dict[str, float] | None = None,
+    accuracy: Stated | dict[str, float] | None = None,
     *,
     law: str = "log",
 ) -> list[GroupResult]:

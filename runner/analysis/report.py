@@ -17,23 +17,21 @@ from dataclasses import dataclass, replace
 from typing import Any
 
 from nightbench.analysis.fit import GroupResult, analyse_run
+from nightbench.analysis.gum import COVERAGE
 from nightbench.analysis.laws import LAWS
-from nightbench.analysis.uncertainty import K_EXPANSION, TERMS, describe_terms
+from nightbench.analysis.stated import Stated, plan_accuracy
+from nightbench.analysis.uncertainty import describe_terms
 from nightbench.drivers.errors import InputError
 from nightbench.store.db import Store
 
-ACCURACY_KEYS = tuple(plan_key for _, plan_key, _ in TERMS.values() if plan_key)
 METHOD = (
-    "JCGM 100:2008 (GUM): Type A from the fit and the reading scatter (the larger), Type B from "
-    "the plan's analysis.*_accuracy_* half-widths as rectangular distributions (a/sqrt(3)), "
-    "combined as a root sum of squares, expanded with k = 2"
+    "JCGM 100:2008 (GUM): Type A from the scatter of the readings and of repeated sweeps (the larger), "
+    "Type B from what the plan states (rectangular a/sqrt(3); mismatch U-shaped a/sqrt(2); a calibration's "
+    "sensor and scatter in place of the source level), combined as a root sum of squares; k from the t "
+    "distribution at the Welch-Satterthwaite effective degrees of freedom for 95.45 % (per group: slope_k, "
+    "intercept_k); the lack of fit is reported apart (details[].uncertainty.lack_of_fit), not as an uncertainty"
 )
 RUN_KEYS = ("run_id", "name", "state", "dut_id", "started_at", "finished_at")  # the JSON's run metadata
-
-
-def plan_accuracy(analysis: Mapping[str, Any]) -> dict[str, float]:
-    """The plan's Type B half-widths; runs stored before these keys existed read as 0 (not stated)."""
-    return {k: float(analysis.get(k) or 0.0) for k in ACCURACY_KEYS}
 
 
 @dataclass(frozen=True)
@@ -44,7 +42,7 @@ class Settings:
     fit_dbm: tuple[float, float]
     error_limit_db: float
     accuracy: dict[str, float]
-    k: float = K_EXPANSION
+    k: float | None = None  # per group now (slope_k, intercept_k); the JSON's analysis.k is null
     law: str = "log"
     error_limits_db: tuple[float, ...] = ()  # every limit asked for, the first being error_limit_db
     reference_c: float | None = None
@@ -118,6 +116,7 @@ class Settings:
             "error_limits_db": list(self.limits),
             "reference_c": self.reference_c,
             "source": self.source,
+            "coverage_probability": COVERAGE,
         }
 
 
@@ -153,12 +152,20 @@ class Report:
         return over_temperature(self.groups, s.reference_c, s.error_limit_db, s.fit_dbm)
 
 
-def analyse(run: Mapping[str, Any], points: Sequence[Mapping[str, Any]], settings: Settings | None = None) -> Report:
-    """The report of a run from its `runs` row (id, name, state, dut_id, times, plan_json) and
-    its point rows, with the plan's settings unless others are given; touches nothing else."""
+def analyse(
+    run: Mapping[str, Any],
+    points: Sequence[Mapping[str, Any]],
+    settings: Settings | None = None,
+    files: Mapping[str, str] | None = None,
+) -> Report:
+    """The report of a run from its `runs` row (id, name, state, dut_id, times, plan_json), its
+    point rows and its snapshotted files (for a calibration), with the plan's settings unless
+    others are given; touches nothing else."""
+    plan = json.loads(run["plan_json"])
     if settings is None:
-        settings = Settings.from_plan(json.loads(run["plan_json"])["analysis"])
-    groups = analyse_run(points, settings.fit_dbm, settings.limits, settings.accuracy, law=settings.law)
+        settings = Settings.from_plan(plan["analysis"])
+    stated = Stated.from_plan(plan, files)
+    groups = analyse_run(points, settings.fit_dbm, settings.limits, stated, law=settings.law)
     return Report(
         run_id=int(run["id"]),
         name=run["name"],
@@ -202,7 +209,8 @@ def build_report(store: Store, run_id: int, choices: Mapping[str, Any] | None = 
                 f"--fit {settings.fit_dbm[0]:g} {settings.fit_dbm[1]:g} holds {len(inside)} of the run's levels: "
                 "a fit needs at least three"
             )
-    return analyse(run, points, settings)
+    files = store.run_files(run_id) if (json.loads(run["plan_json"]).get("path") or {}).get("calibration") else None
+    return analyse(run, points, settings, files)
 
 
 def _point_errors(report: Report) -> list[tuple[int, float | None]]:

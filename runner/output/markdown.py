@@ -36,7 +36,7 @@ def _run_section(report: Report) -> list[str]:
         f"- {settings_line(report)}; the error is the level the output implies through the fitted law "
         "minus the level applied; dynamic range = contiguous span around the fit range within the limit, "
         "ends interpolated to 0.1 dB",
-        f"- ± is the expanded uncertainty U = k u_c with k = {s.k:g}: {s.to_json()['method']}",
+        f"- ± is the expanded uncertainty U = k u_c: {s.to_json()['method']}",
         "",
         *_results(report),
         "",

@@ -8,12 +8,10 @@ summary and in the CSV without touching this module. Widths follow the content.
 from __future__ import annotations
 
 from collections.abc import Sequence
-from typing import Any
 
 from nightbench.analysis.compare import Comparison, u_key
 from nightbench.analysis.fit import GroupResult
 from nightbench.analysis.report import Report
-from nightbench.analysis.uncertainty import AFFECTS, TERMS
 from nightbench.store.fields import BY_NAME, TABLE_FIELDS, Field, table_fields
 
 FREQUENCY = BY_NAME["frequency_hz"]
@@ -73,7 +71,7 @@ def settings_line(report: Report) -> str:
     return (
         f"{LAW_WORDS.get(s.law, s.law)} fitted over {s.fit_dbm[0]:g} .. {s.fit_dbm[1]:g} dBm; range where "
         f"|error| <= {s.error_limit_db:g} dB ('<=', '>=': the sweep ends first){ref}; settings: {s.source}; "
-        f"± is the expanded uncertainty U (k = {s.k:g})"
+        "± is the expanded uncertainty U = k u_c, k from the t distribution for 95.45 %"
     )
 
 
@@ -111,40 +109,10 @@ def render_table(report: Report) -> str:
 
 
 def render_budget(report: Report) -> list[str]:
-    """Two small tables (slope, intercept): one row per group, one column per term."""
-    keys = list(TERMS)
-    out = []
-    log_groups = any(g.budget is not None for g in report.groups)
-    for quantity, unit, fmt in (("slope", "mV/dB", ".4f"), ("intercept", "dB", ".3f")) if log_groups else ():
-        term_key = "slope_u_mv_per_db" if quantity == "slope" else "intercept_u_db"
-        out.append(f"{quantity} budget: standard uncertainties in {unit} (* = combined)")
-        widths = [max(len(k), 7) + 1 for k in keys]
-        out.append(
-            f"{header(FREQUENCY):>10} "
-            + " ".join(f"{k:>{w}}" for k, w in zip(keys, widths))
-            + f" {'u_c':>8} {'U (k=2)':>8}"
-        )
-        for g in report.groups:
-            if g.budget is None:
-                continue
-            u = g.budget.as_dict()
-            terms = {t["key"]: t for t in u["terms"]}
-            cells = [f"{_term(terms.get(k), term_key, fmt, quantity in AFFECTS[k]):>{w}}" for k, w in zip(keys, widths)]
-            uc = u["slope_uc_mv_per_db"] if quantity == "slope" else u["intercept_uc_db"]
-            big = u["slope_U_mv_per_db"] if quantity == "slope" else u["intercept_U_db"]
-            out.append(f"{shown(FREQUENCY, g):>10} " + " ".join(cells) + f" {uc:8{fmt}} {big:8{fmt}}")
-    out += render_law_budget(report)
-    out.append("terms:")
-    for t in report.settings.to_json()["uncertainty_terms"]:
-        stated = ""
-        if "plan_key" in t:
-            stated = (
-                f", ±{t['half_width']:g} from {t['plan_key']}"
-                if t["half_width"]
-                else f", not stated ({t['plan_key']} = 0)"
-            )
-        out.append(f"  {t['key']} (Type {t['type']}{stated}): {t['what']}")
-    return out
+    """The log law's budget tables (output/budget.py), the other laws' budget, and what each term is."""
+    from nightbench.output.budget import render_budget_tables, render_terms
+
+    return [*render_budget_tables(report), *render_law_budget(report), *render_terms(report)]
 
 
 def render_law_budget(report: Report) -> list[str]:
@@ -163,14 +131,6 @@ def render_law_budget(report: Report) -> list[str]:
         out.insert(0, "law budget: standard uncertainties of the law's parameter / of its offset (* = combined)")
         out.append("  input_level: the source level and path loss accuracies, as a scale on the parameter")
     return out
-
-
-def _term(term: dict[str, Any] | None, key: str, fmt: str, affects: bool) -> str:
-    if term is None:
-        return "n/a "  # e.g. no reading scatter when a point has a single sample
-    if not affects:
-        return "- "
-    return num(term[key], fmt) + ("*" if term["included"] else " ")
 
 
 def render_excluded(report: Report, shown_levels: int = 12) -> list[str]:
@@ -223,7 +183,7 @@ def render_comparison(cmp: Comparison) -> str:
         for f in fields:
             assert f.diff is not None
             if f.with_u:
-                diff, u = d.values[f.diff], d.values[u_key(f, type_a=True)]
+                diff, u = d.values[f.diff], d.values[u_key(f, kind="unshared")]
                 row += [shown(f, d.a), shown(f, d.b), f"{num(diff, '+' + f.fmt)} ±{num(u, f.fmt)}" + _exceeds(diff, u)]
             elif f.to:
                 row += [cell(f, d.a), cell(f, d.b)]
@@ -232,9 +192,9 @@ def render_comparison(cmp: Comparison) -> str:
         rows.append(row)
     lines = [f"A = {_label(cmp.a)}", f"B = {_label(cmp.b)}", *align(rows)]
     lines.append(
-        "± is the Type A part of both runs' expanded uncertainties (k = 2), right on one bench where the "
-        "Type B terms are shared; '!' marks a difference larger than it. With all terms: "
-        "slope_diff_u_* and intercept_diff_u_* in --json."
+        "± is the expanded uncertainty of what differs between the runs (both runs' Type A, and the Type B "
+        "terms they do not share: another source, meter, path or calibration, other stated values); '!' marks "
+        "a difference larger than it. With every term of both: slope_diff_u_* and intercept_diff_u_* in --json."
     )
     for which, freqs in (("A", cmp.only_in_a_hz), ("B", cmp.only_in_b_hz)):
         if freqs:

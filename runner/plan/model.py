@@ -302,6 +302,24 @@ class Measure(_Strict):
     samples: Annotated[int, Field(ge=1, le=10_000)] = 4
 
 
+class Mismatch(_Strict):
+    """Stated reflections of the source side and of the DUT input, each as |Gamma| or a return loss
+    (dB): the budget's U-shaped mismatch term (analysis/gum.py, docs/uncertainty.md)."""
+
+    source_gamma: Annotated[float, Field(ge=0, lt=1, allow_inf_nan=False)] | None = None
+    source_return_loss_db: Positive | None = None
+    dut_gamma: Annotated[float, Field(ge=0, lt=1, allow_inf_nan=False)] | None = None
+    dut_return_loss_db: Positive | None = None
+
+    @model_validator(mode="after")
+    def _one_each(self) -> Mismatch:
+        for side in ("source", "dut"):
+            given = [k for k in (f"{side}_gamma", f"{side}_return_loss_db") if getattr(self, k) is not None]
+            if len(given) != 1:
+                raise ValueError(f"give exactly one of {side}_gamma or {side}_return_loss_db")
+        return self
+
+
 class Analysis(_Strict):
     fit_dbm: tuple[Finite, Finite]
     error_limit_db: Positive = 1.0
@@ -316,6 +334,8 @@ class Analysis(_Strict):
     path_loss_accuracy_db: NonNegative = 0.0  # calibration of the path loss, +/- dB
     meter_gain_accuracy_pct: NonNegative = 0.0  # meter accuracy, +/- % of reading
     meter_offset_accuracy_v: NonNegative = 0.0  # meter offset (the "% of range" part), +/- V
+    source_linearity_db: NonNegative = 0.0  # with a calibration: +/- dB per 10 dB beyond the calibrated levels
+    mismatch: Mismatch | None = None  # stated reflections: the U-shaped mismatch term
 
     @field_validator("fit_dbm")
     @classmethod

@@ -111,6 +111,14 @@ FIELDS: tuple[Field, ...] = (
     ),
     Field("offset_u_v", "V", ".3f", scale=1e3, shown_unit="mV", since=5),
     Field("ranges", "", "s", sql="TEXT", csv=False, since=5, as_json=True),
+    # version 6: each U's coverage factor (t distribution, 95.45 %) and effective degrees of freedom
+    # (Welch-Satterthwaite; NULL: infinite), and the range ends' expanded uncertainties (docs/uncertainty.md)
+    Field("slope_k", "", ".2f", since=6, laws=("log",)),
+    Field("slope_nu_eff", "", ".1f", since=6, laws=("log",)),
+    Field("intercept_k", "", ".2f", since=6, laws=("log",)),
+    Field("intercept_nu_eff", "", ".1f", since=6, laws=("log",)),
+    Field("range_low_u_db", "dB", ".2f", since=6),
+    Field("range_high_u_db", "dB", ".2f", since=6),
 )
 
 BY_NAME = {f.name: f for f in FIELDS}
