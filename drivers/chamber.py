@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
+from typing import Any
 
 from nightbench.drivers.dialect import CHAMBER_COMMANDS
 from nightbench.drivers.errors import InstrumentError, SafetyError
@@ -63,6 +64,12 @@ class ScpiChamber(SessionRole):
     def reconnect(self, should_stop: Callable[[], bool]) -> None:
         self.setpoint_c = None
         self.session.reconnect(should_stop)
+
+    def record_state(self, *, preset: bool = False) -> dict[str, Any]:
+        """What the chamber reports (measure/record.py): its setpoint and its air temperature."""
+        c = self.commands
+        setpoint, air = self.session.apply([], [c["query_setpoint"], c["query_temperature"]])
+        return {"setpoint_c": self._number("setpoint", setpoint), "temperature_c": self._number("temperature", air)}
 
     def set_temperature(self, temperature_c: float) -> None:
         if not (self.min_c <= temperature_c <= self.max_c):

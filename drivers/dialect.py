@@ -15,6 +15,14 @@ SOURCE_COMMANDS: dict[str, str] = {
     "query_level": ":SOURce:POWer:LEVel?",
     "query_output": ":OUTPut:STATe?",
     "error_query": ":SYSTem:ERRor?",
+    # the run record (measure/record.py): a preset where the plan allows it, then every modulation
+    # and the level offset off, and read back. Several units may be joined with ';' (each query
+    # unit answers one value); an empty template means the instrument has no such setting.
+    "preset": "*RST",
+    "modulation_off": ":SOURce:AM:STATe OFF;:SOURce:FM:STATe OFF;:SOURce:PM:STATe OFF;:SOURce:PULM:STATe OFF",
+    "query_modulation": ":SOURce:AM:STATe?;:SOURce:FM:STATe?;:SOURce:PM:STATe?;:SOURce:PULM:STATe?",
+    "offset_off": ":SOURce:POWer:LEVel:OFFSet 0",
+    "query_offset": ":SOURce:POWer:LEVel:OFFSet?",
 }
 
 METER_COMMANDS: dict[str, str] = {
@@ -24,6 +32,12 @@ METER_COMMANDS: dict[str, str] = {
     "set_trigger": ":TRIGger:SOURce IMMediate",
     "read": "READ?",
     "error_query": ":SYSTem:ERRor?",
+    # read back for the run record (measure/record.py); an empty template: not asked
+    "query_function": ":SENSe:FUNCtion?",
+    "query_range": ":SENSe:VOLTage:DC:RANGe?",
+    "query_autorange": ":SENSe:VOLTage:DC:RANGe:AUTO?",
+    "query_nplc": ":SENSe:VOLTage:DC:NPLCycles?",
+    "query_autozero": ":SENSe:ZERO:AUTO?",
 }
 
 # There is no SCPI standard for temperature chambers: these SCPI-styled names are nightbench's own

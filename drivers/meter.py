@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 import re
 from collections.abc import Callable, Sequence
+from typing import Any
 
 from nightbench.drivers.dialect import METER_COMMANDS
 from nightbench.drivers.errors import InstrumentError
@@ -62,12 +63,58 @@ class ScpiDmm(SessionRole):
     def reconnect(self, should_stop: Callable[[], bool]) -> None:
         self.session.reconnect(should_stop)
 
+    def record_state(self, *, preset: bool = False) -> dict[str, Any]:
+        """What the meter says it is set to (measure/record.py), in one error-checked message:
+        function, range and autorange, NPLC, autozero; beside them what the plan set. A stated
+        NPLC that does not read back, or a range below the stated one, is an InstrumentError."""
+        asked = [(key, self.commands[f"query_{key}"]) for key in DMM_STATE if self.commands[f"query_{key}"]]
+        replies = self.session.apply([], [q for _, q in asked]) if asked else []
+        state: dict[str, Any] = {"nplc_set": self.nplc, "range_v_set": self.range_v}
+        for (key, query), reply in zip(asked, replies):
+            state[key] = _state_value(key, reply, self.resource, query)
+        nplc, range_v = state.get("nplc"), state.get("range")
+        if self.nplc is not None and isinstance(nplc, float) and not math.isclose(nplc, self.nplc, rel_tol=1e-6):
+            raise InstrumentError(
+                f"meter NPLC reads back {nplc:g}, not the {self.nplc:g} that was set",
+                resource=self.resource,
+                command=self.commands["query_nplc"],
+            )
+        if self.range_v is not None and isinstance(range_v, float) and range_v < self.range_v * (1 - 1e-9):
+            raise InstrumentError(
+                f"meter range reads back {range_v:g} V, below the {self.range_v:g} V that was set",
+                resource=self.resource,
+                command=self.commands["query_range"],
+            )
+        return state
+
     def read(self, *, checked: bool = False) -> float:
         """One reading in volts; +/-inf for an overrange reading. `checked` asks the error queue
         in the same round trip (ScpiError if the meter reported anything)."""
         command = self.commands["read"]
         reply = self.session.query_checked(command) if checked else self.session.query(command)
         return _volts(reply, self.resource, command)
+
+
+DMM_STATE = ("function", "range", "autorange", "nplc", "autozero")
+
+
+def _state_value(key: str, reply: str, resource: str, query: str) -> str | float | bool:
+    """A read-back as stored: the function's name, the range and NPLC as numbers, autorange as a
+    flag, autozero as ON, OFF or ONCE (SCPI-1999 boolean and character data)."""
+    text = reply.strip().strip('"').strip()
+    word = text.upper()
+    if key == "function":
+        return text
+    if key == "autorange" and word in ("1", "ON", "0", "OFF"):
+        return word in ("1", "ON")
+    if key == "autozero" and word in ("1", "ON", "0", "OFF", "ONCE"):
+        return {"1": "ON", "0": "OFF"}.get(word, word)
+    if key in ("range", "nplc"):
+        try:
+            return float(text)
+        except ValueError:
+            pass
+    raise InstrumentError(f"meter {key} reads back {reply!r}", resource=resource, command=query)
 
 
 def _volts(reply: str, resource: str, command: str) -> float:
@@ -128,6 +175,18 @@ class SerialAdc(SessionRole):
     def configure(self) -> None:
         for command in self.setup:
             self.session.query(command)
+
+    def record_state(self, *, preset: bool = False) -> dict[str, Any]:
+        """A board with no queries for its settings: the record holds what the plan set."""
+        return {
+            "query": self.query_text,
+            "pattern": self.pattern.pattern,
+            "scale": self.scale,
+            "offset": self.offset,
+            "setup": list(self.setup),
+            "overload": self.overload,
+            "read_back": "none (the board has no queries for its settings)",
+        }
 
     def prove(self) -> None:
         """Show the board is there and in step: its identity if it has a query for it, else one

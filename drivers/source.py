@@ -4,15 +4,17 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
+from typing import Any
 
 from nightbench.drivers.dialect import SOURCE_COMMANDS
 from nightbench.drivers.errors import InstrumentError, SafetyError, ScpiError
 from nightbench.drivers.line import SessionRole
-from nightbench.drivers.scpi import ScpiSession
+from nightbench.drivers.scpi import ScpiSession, split_response
 from nightbench.drivers.transport import Link
 
 LEVEL_READBACK_DB = 0.01
 FREQ_READBACK_REL = 1e-9
+OFFSET_READBACK_DB = 1e-6
 # The source's own level limits when a plan names none (plan/model.py SourceSpec uses these too):
 # wide enough for any generator's range, and plans beyond a source's real limits name them.
 DEFAULT_MIN_DBM = -130.0
@@ -128,3 +130,50 @@ class RfSource(SessionRole):
 
     def rf_off(self) -> None:
         self.set(output=False)
+
+    def record_state(self, *, preset: bool = False) -> dict[str, Any]:
+        """The known state a run starts from (measure/record.py): a preset if the plan allows it
+        (RF off again after it, read back), then every modulation and the level offset off, read
+        back in the same message. What is returned is what the source said; InstrumentError
+        (naming the query) if it still reports a modulation on or an offset."""
+        c = self.commands
+        if preset and c["preset"]:
+            self.session.apply([c["preset"]])
+            self.forget()  # a preset may change anything; nothing is assumed until read back
+            self.set(output=False)
+        mod_queries = _units(c["query_modulation"])
+        offset_queries = _units(c["query_offset"])
+        commands = [t for t in (c["modulation_off"], c["offset_off"]) if t]
+        replies = self.session.apply(commands, mod_queries + offset_queries) if commands or mod_queries else []
+        state: dict[str, Any] = {"preset": bool(preset and c["preset"]), "output": "off"}
+        modulation = dict(zip(mod_queries, replies))
+        for query, reply in modulation.items():
+            if reply.strip().upper() not in ("0", "OFF"):
+                raise InstrumentError(
+                    f"source modulation reads back {reply!r} after it was switched off",
+                    resource=self.resource,
+                    command=query,
+                )
+        state["modulation"] = "off" if mod_queries else "not asked (no query_modulation)"
+        state["modulation_readback"] = modulation
+        state["level_offset_db"] = None
+        for query, reply in zip(offset_queries, replies[len(mod_queries) :]):
+            try:
+                offset = float(reply)
+            except ValueError as exc:
+                raise InstrumentError(
+                    f"source level offset reads {reply!r}", resource=self.resource, command=query
+                ) from exc
+            if abs(offset) > OFFSET_READBACK_DB:
+                raise InstrumentError(
+                    f"source level offset reads back {offset:g} dB after it was set to 0",
+                    resource=self.resource,
+                    command=query,
+                )
+            state["level_offset_db"] = offset
+        return state
+
+
+def _units(template: str) -> list[str]:
+    """The units of a template joined with ';' (none for an empty one)."""
+    return [u for u in split_response(template) if u] if template.strip() else []

@@ -27,6 +27,8 @@ class SourceHeaders:
     freq: str
     level: str
     output: str
+    offset: str  # the level offset (dB): the source delivers the set level minus it
+    modulation: dict[str, str]  # each modulation's state header, by name
 
 
 @dataclass(frozen=True)
@@ -37,6 +39,9 @@ class MeterHeaders:
     range: str
     trigger: str
     read: tuple[str, ...]
+    function: str
+    autorange: str
+    autozero: str
 
 
 SOURCE_HEADERS = {
@@ -45,8 +50,17 @@ SOURCE_HEADERS = {
         freq="[SOURce]:FREQuency[:CW]",
         level="[SOURce]:POWer[:LEVel][:IMMediate][:AMPLitude]",
         output="OUTPut[:STATe]",
+        offset="[SOURce]:POWer[:LEVel][:IMMediate]:OFFSet",
+        modulation={m: f"[SOURce]:{m}:STATe" for m in ("AM", "FM", "PM", "PULM")},
     ),
-    "alt": SourceHeaders(error="ERRor?", freq="TONE:PITCh", level="TONE:LOUDness", output="TONE:SOUNding"),
+    "alt": SourceHeaders(
+        error="ERRor?",
+        freq="TONE:PITCh",
+        level="TONE:LOUDness",
+        output="TONE:SOUNding",
+        offset="TONE:SHIFt",
+        modulation={"AM": "TONE:WOBBle"},
+    ),
 }
 METER_HEADERS = {
     "scpi": MeterHeaders(
@@ -56,6 +70,9 @@ METER_HEADERS = {
         range="[SENSe]:VOLTage[:DC]:RANGe[:UPPer]",
         trigger="TRIGger:SOURce",
         read=("READ?", "MEASure[:VOLTage][:DC]?"),
+        function="[SENSe]:FUNCtion[:ON]",
+        autorange="[SENSe]:VOLTage[:DC]:RANGe[:UPPer]:AUTO",
+        autozero="[SENSe]:ZERO:AUTO",
     ),
     "alt": MeterHeaders(
         error="ERRor?",
@@ -64,6 +81,9 @@ METER_HEADERS = {
         range="DCV:RANGe",
         trigger="TRIGger:MODE",
         read=("DCV?",),
+        function="MODE",
+        autorange="DCV:ARANge",
+        autozero="DCV:AZERo",
     ),
 }
 
@@ -91,16 +111,36 @@ class SimSource(ScpiInstrument):
         self.add(h.freq, self._set_freq)
         self.add(h.freq + "?", lambda a: f"{self.model.frequency_hz:.6f}")
         self.add(h.level, self._set_level)
-        self.add(h.level + "?", lambda a: f"{self.model.level_dbm:.3f}")
+        self.add(h.level + "?", lambda a: f"{self.model.level_dbm + self.offset_db:.3f}")
         self.add(h.output, self._set_output)
         self.add(h.output + "?", lambda a: "1" if self.model.output_on else "0")
+        # what a previous user left: modulation and a level offset, until set or a *RST
+        self.offset_db = self._limits.user_offset_db
+        self.modulation = {name: False for name in h.modulation}
+        self.modulation["AM"] = self._limits.user_modulation
+        self.add(h.offset, self._set_offset)
+        self.add(h.offset + "?", lambda a: f"{self.offset_db:g}")
+        for name, header in h.modulation.items():
+            self.add(header, lambda a, name=name: self._set_modulation(name, a))
+            self.add(header + "?", lambda a, name=name: "1" if self.modulation[name] else "0")
         self._write_log("start")
 
     def reset(self) -> None:
-        """*RST: output off first, then the lowest level (IEEE 488.2 10.32: a safe known state)."""
+        """*RST: output off first, then the lowest level (IEEE 488.2 10.32: a safe known state);
+        modulation and the level offset off."""
         self.model.set_source(self.clock(), output_on=False)
         self.model.set_source(self.clock(), level_dbm=self._limits.min_dbm)
+        self.offset_db = 0.0
+        self.modulation = dict.fromkeys(self.modulation, False)
         self._write_log("*RST")
+
+    def _set_offset(self, args: list[str]) -> None:
+        """A level offset (dB, as an external gain or loss would be entered): the displayed and
+        queried level is the delivered level plus the offset; the output itself does not change."""
+        self.offset_db = parse_number(one_arg(args), ("DB",), minimum=-100.0, maximum=100.0)
+
+    def _set_modulation(self, name: str, args: list[str]) -> None:
+        self.modulation[name] = parse_bool(one_arg(args))
 
     def _set_freq(self, args: list[str]) -> None:
         value = parse_number(
@@ -125,7 +165,7 @@ class SimSource(ScpiInstrument):
         refusal = self.faults.refuses_level(value)
         if refusal is not None:
             raise ScpiCommandError(refusal.code or -222, f"level {value:.2f} dBm refused")
-        self.model.set_source(self.clock(), level_dbm=value)
+        self.model.set_source(self.clock(), level_dbm=value - self.offset_db)  # delivered: set minus offset
         self._write_log("level")
 
     def _set_output(self, args: list[str]) -> None:
@@ -186,13 +226,41 @@ class SimMeter(ScpiInstrument):
         self.add(h.trigger, self._set_trigger)
         for header in h.read:
             self.add(header, self._read)
+        self.add(h.function, self._set_function)
+        self.add(h.function + "?", lambda a: f'"{self.function}"')
+        self.add(h.autorange, self._set_autorange)
+        self.add(h.autorange + "?", lambda a: "1" if self.autorange else "0")
+        self.add(h.autozero, self._set_autozero)
+        self.add(h.autozero + "?", lambda a: self.autozero)
+        cfg = self.model.config.meter  # what a previous user left, until set or a *RST
+        self.autorange = cfg.user_autorange
+        self.autozero = "ON" if cfg.user_autozero else "OFF"
 
     def reset(self) -> None:
         cfg = self.model.config.meter
         self.nplc = cfg.default_nplc
         self.range_v = cfg.default_range_v
+        self.function = "VOLT"
+        self.autorange = False
+        self.autozero = "ON"
+
+    def _set_function(self, args: list[str]) -> None:
+        name = one_arg(args).strip().strip("\"'").upper()
+        if name not in ("VOLT", "VOLT:DC", "VOLTAGE", "VOLTAGE:DC", "DCV"):
+            raise ScpiCommandError(-224, "only DC volts are simulated")
+        self.function = "VOLT"
+
+    def _set_autorange(self, args: list[str]) -> None:
+        self.autorange = parse_bool(one_arg(args))
+
+    def _set_autozero(self, args: list[str]) -> None:
+        word = one_arg(args).strip().upper()
+        if word != "ONCE":
+            parse_bool(word)
+        self.autozero = {"1": "ON", "0": "OFF"}.get(word, word)
 
     def _configure(self, args: list[str]) -> None:
+        self.function = "VOLT"
         if args and args[0].upper() not in ("DEF", "AUTO"):
             self._set_range(args[:1])
 
@@ -206,6 +274,7 @@ class SimMeter(ScpiInstrument):
     def _set_range(self, args: list[str]) -> None:
         wanted = parse_number(one_arg(args), ("V", "MV"), minimum=0.0, maximum=max(self.model.config.meter.ranges_v))
         self.range_v = min(r for r in self.model.config.meter.ranges_v if r >= wanted)
+        self.autorange = False  # a range set by hand ends autoranging (SCPI-1999 SENSe RANGe:AUTO)
 
     def read_volts(self) -> float | None:
         """Integrate one reading (takes NPLC/line frequency of real time); None on overload."""
@@ -214,9 +283,12 @@ class SimMeter(ScpiInstrument):
         start = self.clock()
         self.sleep(window)
         value = self.model.reading(start, start + window) + self.model.meter_noise(self.nplc)
-        if self.faults.overload("meter") or abs(value) > self.range_v * cfg.overrange:
+        range_v = self.range_v
+        if self.autorange:  # the smallest range that holds the reading
+            range_v = min((r for r in cfg.ranges_v if abs(value) <= r), default=max(cfg.ranges_v))
+        if self.faults.overload("meter") or abs(value) > range_v * cfg.overrange:
             return None
-        step = self.range_v * cfg.resolution_ppm * 1e-6
+        step = range_v * cfg.resolution_ppm * 1e-6
         return round(value / step) * step
 
     def _read(self, args: list[str]) -> str:

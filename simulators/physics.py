@@ -48,6 +48,10 @@ class SourceConfig:
     level_offset_db: float = 0.0  # level accuracy: actual minus set, at 0 Hz
     flatness_db_per_ghz: float = 0.0  # and its change with frequency
     level_settle_s: float = 0.0002  # the output reaches a new level this long after a change
+    # a previous user's settings, found at power-on (a *RST clears them): amplitude modulation on,
+    # and a level offset (the source then delivers the set level minus the offset)
+    user_modulation: bool = False
+    user_offset_db: float = 0.0
 
 
 @dataclass
@@ -157,6 +161,9 @@ class MeterConfig:
     default_range_v: float = 10.0
     overrange: float = 1.2  # readings beyond range * overrange are overloads
     resolution_ppm: float = 1.0  # of range
+    # a previous user's settings, found at power-on: autorange on, autozero off
+    user_autorange: bool = False
+    user_autozero: bool = True
 
 
 @dataclass

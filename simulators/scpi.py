@@ -92,6 +92,7 @@ SUFFIX_SCALE = {
     "MAHZ": 1e6,
     "GHZ": 1e9,
     "DBM": 1.0,
+    "DB": 1.0,
     "V": 1.0,
     "MV": 1e-3,
     "UV": 1e-6,

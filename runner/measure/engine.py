@@ -13,7 +13,8 @@ import time
 from collections.abc import Callable
 
 from nightbench.drivers.errors import InstrumentError, NightbenchError, SafetyError
-from nightbench.measure.order import fast_edge_order
+from nightbench.measure.order import visit_order
+from nightbench.measure.record import record_bench
 from nightbench.measure.replay import REPLAY_POINTS, replay
 from nightbench.measure.roles import Bench
 from nightbench.measure.settle import Direction, SettleDetector
@@ -172,11 +173,10 @@ class Engine:
             store.set_identities(run_id, self.bench.source.identity, self.bench.meter.identity)
             if self.bench.chamber is not None:
                 store.event(run_id, "instruments", f"chamber: {self.bench.chamber.identity}")
-            visit = (
-                fast_edge_order(todo, self.loaded.order, self.detector.level_taus)
-                if self.plan.settle.level_order == "fast-edge"
-                else todo
-            )
+            self.doing = "putting the instruments in a known state (the run record)"
+            record_bench(self.bench, self.plan, store, run_id)
+            fast_edge = self.plan.settle.level_order == "fast-edge"
+            visit = visit_order(todo, self.loaded.order, self.detector.level_taus, fast_edge=fast_edge)
             for point in visit:
                 result = self._point_at_temperature(point)
                 store.add_point(run_id, point, result)

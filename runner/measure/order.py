@@ -10,15 +10,19 @@ innermost); a block is every point sharing a level within a group (the inner axe
 order). Within each group the next level is the nearest unvisited one in the current direction,
 wrapping to the far end when none is left; the direction starts as planned and turns only when
 the run has learned both edges and one is faster by `HYSTERESIS` (turning costs one long step).
+
+With `measure.repeats` > 1 the direction of every pass is imposed by the plan (pass 0 up, pass 1
+down, ...: measure/sweep.py), because the difference between the passes is what is measured
+(hysteresis, and the scatter between sweeps); `fast-edge` then leaves the order as expanded. The
+DUT ceiling and the frequency-change rule are the engine's and hold in either order.
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 
-from nightbench.measure.sweep import Point
+from nightbench.measure.sweep import LEVEL_AXIS, Point
 
-LEVEL_AXIS = "power_dbm"
 HYSTERESIS = 1.5
 
 # learned time constants (level up, level down), None where not yet learned
@@ -45,6 +49,14 @@ def next_level(levels: list[float], current: float | None, direction: int) -> fl
     return max(ahead) if ahead else max(levels)
 
 
+def visit_order(points: list[Point], order: tuple[str, ...], taus: Taus, *, fast_edge: bool) -> Iterable[Point]:
+    """The points still to do, in the order the engine visits them: as expanded (planned, or the
+    imposed up/down passes of repeats), or toward the fast edge where the plan allows it."""
+    if fast_edge and not any(p.direction for p in points):
+        return fast_edge_order(points, order, taus)
+    return points
+
+
 def fast_edge_order(points: list[Point], order: tuple[str, ...], taus: Taus) -> Iterator[Point]:
     """Yield `points` (planned order) group by group, each group's levels toward the fast edge.
 
@@ -54,7 +66,7 @@ def fast_edge_order(points: list[Point], order: tuple[str, ...], taus: Taus) -> 
     outer = order[: order.index(LEVEL_AXIS)]
     groups: dict[tuple[float | None, ...], dict[float, list[Point]]] = {}
     for p in points:
-        key = (p.temperature_c, *(getattr(p, axis) for axis in outer))  # temperature: always outermost
+        key = (p.temperature_c, p.unit_id, *(getattr(p, axis) for axis in outer))  # temperature, unit: outermost
         groups.setdefault(key, {}).setdefault(p.power_dbm, []).append(p)
     planned = [p.power_dbm for p in points]
     direction = 1 if not planned or planned[-1] >= planned[0] else -1

@@ -18,6 +18,8 @@ class Point:
     power_dbm: float  # at the DUT input
     source_dbm: float  # what the source is set to: DUT level plus path loss, on the grid below
     temperature_c: float | None = None  # the chamber setpoint (runs with a chamber), else None
+    repeat: int = 0  # the pass over the levels (measure.repeats), 0 first
+    direction: str | None = None  # 'up' or 'down' with measure.repeats > 1; None without repeats
 
 
 LEVEL_STEP_DB = 0.001  # the source level is commanded with three decimals
@@ -30,15 +32,39 @@ def source_level(power_dbm: float, loss_db: float) -> float:
     return round(steps * LEVEL_STEP_DB, 3)
 
 
+LEVEL_AXIS = "power_dbm"
+
+
 def expand(loaded: LoadedPlan) -> list[Point]:
     """Cartesian product of the axes, outermost first in the order the plan wrote them; with a
-    chamber, temperature is outside them all (a transition takes tens of minutes), in written order."""
+    chamber, temperature is outside them all (a transition takes tens of minutes), in written order.
+
+    With `measure.repeats: N` > 1 the levels of each group (the points sharing the axes outside
+    the level axis) are swept N times, pass 0 upward, pass 1 downward, and so on, the axes inside
+    the level axis in planned order at each level. `index` is the position in this list, so it is
+    a function of the plan alone: a resume finds the same points under the same indices.
+    """
     order = loaded.order
     axes = [loaded.plan.sweep.axis_values(name) for name in order]
     temps: list[float | None] = list(loaded.plan.temperatures()) or [None]
+    repeats = loaded.plan.measure.repeats
+    combos: list[tuple[float | None, dict[str, float], int, str | None]] = []
+    if repeats == 1:
+        for temp, combo in itertools.product(temps, itertools.product(*axes)):
+            combos.append((temp, dict(zip(order, combo)), 0, None))
+    else:
+        at = order.index(LEVEL_AXIS)
+        outer, inner = order[:at], order[at + 1 :]
+        levels = sorted(axes[at])
+        for temp, head in itertools.product(temps, itertools.product(*axes[:at])):
+            for repeat in range(repeats):
+                up = repeat % 2 == 0
+                for level in levels if up else levels[::-1]:
+                    for tail in itertools.product(*axes[at + 1 :]):
+                        values = {**dict(zip(outer, head)), LEVEL_AXIS: level, **dict(zip(inner, tail))}
+                        combos.append((temp, values, repeat, "up" if up else "down"))
     points = []
-    for index, (temp, combo) in enumerate(itertools.product(temps, itertools.product(*axes))):
-        values = dict(zip(order, combo))
-        f, p = values["frequency_hz"], values["power_dbm"]
-        points.append(Point(index, f, p, source_level(p, loaded.path.loss(f)), temp))
+    for index, (temp, values, repeat, direction) in enumerate(combos):
+        f, p = values["frequency_hz"], values[LEVEL_AXIS]
+        points.append(Point(index, f, p, source_level(p, loaded.path.loss(f)), temp, repeat, direction))
     return points

@@ -72,5 +72,11 @@ def parse_plan(
 
 
 def load_plan(path: str | Path) -> LoadedPlan:
+    """A plan file for a new run (check, run, submit): parsed, and its instruments' calibration
+    dates checked (plan/due.py; a stored snapshot is parsed without that check)."""
+    from nightbench.plan.due import check_calibration_due
+
     p = Path(path)
-    return parse_plan(read_text(p), str(p))
+    loaded = parse_plan(read_text(p), str(p))
+    check_calibration_due(loaded)
+    return loaded

@@ -9,6 +9,7 @@ module imports nothing of the plan package.
 from __future__ import annotations
 
 import math
+from datetime import date
 from typing import Annotated, Literal
 
 from pydantic import AfterValidator, BaseModel, ConfigDict, Field, field_validator, model_validator
@@ -50,6 +51,8 @@ class _Link(_Strict):
     timeout_s: Positive = 2.0
     visa_library: str = "@py"  # another VISA library for sites that have one
     baud_rate: Annotated[int, Field(gt=0, le=10_000_000)] | None = None
+    calibration_due: date | None = None  # refused past this date unless allow_overdue (plan/due.py)
+    allow_overdue: bool = False  # run past calibration_due anyway; the run record notes it
 
 
 def _source_commands(value: dict[str, str] | None) -> dict[str, str] | None:
@@ -78,6 +81,7 @@ class SourceSpec(_Link):
     driver: Literal["scpi-source"]
     min_dbm: Finite = DEFAULT_MIN_DBM  # the source's own level limits (the driver's defaults); plans beyond
     max_dbm: Finite = DEFAULT_MAX_DBM  # them are refused
+    preset: bool = False  # a preset (*RST) before each run's record (measure/record.py); RF stays off
     commands: Annotated[dict[str, str] | None, AfterValidator(_source_commands)] = None
 
     @model_validator(mode="after")
@@ -300,6 +304,7 @@ class Soak(_Strict):
 
 class Measure(_Strict):
     samples: Annotated[int, Field(ge=1, le=10_000)] = 4
+    repeats: Annotated[int, Field(ge=1, le=100)] = 1  # level passes per group, alternately up and down
 
 
 class Mismatch(_Strict):

@@ -175,10 +175,13 @@ class Service:
 
     def _run_job(self, store: Store, queue: JobQueue, job: Job) -> None:
         from nightbench.measure.engine import Engine
+        from nightbench.plan.due import check_calibration_due
         from nightbench.runs import new_run, snapshot_plan, store_fits
 
         try:
             loaded = snapshot_plan(store, job.run_id) if job.run_id else queue.plan(job)
+            if not job.run_id:  # a job starting: its instruments' calibration dates, as of today
+                check_calibration_due(loaded)
             run_id = job.run_id or new_run(store, loaded)
         except InputError as exc:  # a snapshot this version cannot read: the job fails, the night goes on
             queue.finish(job.id, JobState.FAILED, str(exc))

@@ -209,6 +209,42 @@ class Store(AnalysesMixin):
         with self._sql(f"storing the instruments of run {run_id}"):
             self.conn.execute("UPDATE runs SET source_idn=?, meter_idn=? WHERE id=?", (source_idn, meter_idn, run_id))
 
+    def record_instrument(
+        self,
+        run_id: int,
+        *,
+        role: str,
+        driver: str,
+        resource: str,
+        identity: str,
+        calibration_due: str | None,
+        state: dict[str, Any],
+    ) -> None:
+        """The run record of one instrument (measure/record.py): the latest start's, a resume
+        replacing what the previous start stored (each start also leaves an event)."""
+        with self._sql(f"storing the {role} of run {run_id}"):
+            self.conn.execute(
+                "INSERT OR REPLACE INTO instruments (run_id, role, driver, resource, identity, calibration_due,"
+                " state_json, recorded_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                (run_id, role, driver, resource, identity, calibration_due, json.dumps(state), now_iso()),
+            )
+
+    def instruments(self, run_id: int) -> list[dict[str, Any]]:
+        """A run's record, one entry per instrument (source, meter, chamber order); [] for a run
+        from before the record, or a file or shared store without the table."""
+        if self.absent("instruments"):
+            return []
+        with self._sql(f"reading the instruments of run {run_id}"):
+            rows = self.conn.execute(
+                "SELECT role, driver, resource, identity, calibration_due, state_json, recorded_at"
+                " FROM instruments WHERE run_id=?",
+                (run_id,),
+            ).fetchall()
+        order = {"source": 0, "meter": 1, "chamber": 2}
+        keys = ("role", "driver", "resource", "identity", "calibration_due", "recorded_at")
+        entries = [{**{k: r[k] for k in keys}, "state": json.loads(r["state_json"])} for r in rows]
+        return sorted(entries, key=lambda e: (order.get(e["role"], 9), e["role"]))
+
     def finish_run(self, run_id: int, state: str, error: str | None = None) -> None:
         assert state in tuple(RunState)
         with self._sql(f"storing the end of run {run_id}"):
