@@ -60,7 +60,7 @@ NOISE_V = (0.05e-3, 0.3e-3)  # detector output noise, rms at a 20 ms window
 TOLERANCE_V = 0.0005
 SAMPLES = 4
 NPLC = 0.1
-FREQS_HZ = (100e6, 900e6)
+FREQS_HZ = [100e6, 900e6]
 LEVEL_STEP_DB = {0.001: 2, 0.03: 4, 0.3: 15}  # by the slower edge: short sweeps for long taus
 TAIL_TAU_S = 0.2
 
@@ -72,6 +72,10 @@ class Cell:
     noise_v: float
     step_db: float | None = None  # None: LEVEL_STEP_DB by the slower edge
     tail_share: float = 0.0  # share of each step in a slow part with time constant TAIL_TAU_S
+    freqs: int = 2  # frequencies swept (100 MHz to 900 MHz): more make an overnight-scale sweep
+
+    def frequencies_hz(self) -> list[float]:
+        return FREQS_HZ if self.freqs == 2 else [float(f) for f in np.linspace(FREQS_HZ[0], FREQS_HZ[1], self.freqs)]
 
     def detector(self) -> dict[str, float]:
         d = {"tau_rise_s": self.rise_s, "tau_fall_s": self.fall_s, "output_noise_v": self.noise_v}
@@ -84,10 +88,13 @@ class Cell:
 
 
 def grid_cells() -> list[Cell]:
-    """The first-order grid, then coarse steps (5 dB, no tail), then a 1 % slow tail (5 and 2 dB)."""
+    """The first-order grid, then coarse steps (5 dB, no tail), then a 1 % slow tail (5 and 2 dB),
+    then two overnight-scale sweeps (hundreds of points, several frequencies): what the tail
+    guard's probes cost once spread over a long run, first order and with a tail."""
     cells = [Cell(r, f, n) for n in NOISE_V for r in TAUS_S for f in TAUS_S]
     cells += [Cell(0.002, 0.006, NOISE_V[0], 5), Cell(0.001, 0.03, NOISE_V[0], 5)]
     cells += [Cell(0.002, 0.006, NOISE_V[0], 5, 0.01), Cell(0.002, 0.006, NOISE_V[0], 2, 0.01)]
+    cells += [Cell(0.001, 0.03, NOISE_V[0], 2, freqs=8), Cell(0.002, 0.006, NOISE_V[0], 2, 0.01, freqs=4)]
     return cells
 
 
@@ -95,17 +102,17 @@ def config_text(detector: dict[str, float]) -> str:
     return "[detector]\n" + "".join(f"{k} = {v}\n" for k, v in detector.items())
 
 
-def plan_for(resources: dict[str, str], model: BenchModel, step_db: float, tail_share: float | None) -> dict:
-    loss = model.config.path.loss
+def plan_for(resources: dict[str, str], model: BenchModel, cell: Cell, tail_share: float | None) -> dict:
+    loss, freqs = model.config.path.loss, cell.frequencies_hz()
     return {
         "name": "bench-settle",
         "instruments": {
             "source": {"driver": "scpi-source", "resource": resources["source"]},
             "meter": {"driver": "scpi-dmm", "resource": resources["meter"], "nplc": NPLC},
         },
-        "path": {"table": [[f, loss(f)] for f in FREQS_HZ]},
+        "path": {"table": [[f, loss(f)] for f in freqs]},
         "limits": {"dut_max_dbm": 0},
-        "sweep": {"frequency_hz": list(FREQS_HZ), "power_dbm": {"start": -70, "stop": -10, "step": step_db}},
+        "sweep": {"frequency_hz": freqs, "power_dbm": {"start": -70, "stop": -10, "step": cell.levels_step_db()}},
         "settle": {"tolerance_v": TOLERANCE_V, "timeout_s": 8, "level_order": "fast-edge"}
         | ({} if tail_share is None else {"tail_share": tail_share}),
         "measure": {"samples": SAMPLES},
@@ -165,13 +172,13 @@ class SweepTimer(Engine):
 
 
 def run_cell(cell: Cell, workdir: Path, plan_tail_share: float | None = None) -> dict:
-    name = f"{cell.rise_s}-{cell.fall_s}-{cell.noise_v}-{cell.levels_step_db()}-{cell.tail_share}"
+    name = f"{cell.rise_s}-{cell.fall_s}-{cell.noise_v}-{cell.levels_step_db()}-{cell.tail_share}-{cell.freqs}"
     cfg_path = workdir / f"sim-{name}.toml"
     cfg_path.write_text(config_text(cell.detector()))
     model = BenchModel(BenchConfig.from_dict({"detector": cell.detector()}))
     window = model.integration_s(NPLC)
     with SimProcess("--config", str(cfg_path)) as sim:
-        plan = plan_for(sim.resources, model, cell.levels_step_db(), plan_tail_share)
+        plan = plan_for(sim.resources, model, cell, plan_tail_share)
         loaded = parse_plan(yaml.safe_dump(plan, sort_keys=False), "bench-settle.yaml")
         store = Store(workdir / f"bench-{name}.db")
         run_id = new_run(store, loaded)
@@ -205,6 +212,7 @@ def run_cell(cell: Cell, workdir: Path, plan_tail_share: float | None = None) ->
         "noise_mv": cell.noise_v * 1e3,
         "step_db": cell.levels_step_db(),
         "tail": cell.tail_share,
+        "freqs": cell.freqs,
         "points": len(rows),
         "within": within / len(rows),
         "unsettled": sum(1 for r in rows.values() if not r["settled"]),
@@ -218,7 +226,7 @@ def run_cell(cell: Cell, workdir: Path, plan_tail_share: float | None = None) ->
 
 
 HEADER = (
-    "| rise ms | fall ms | noise mV @20ms | step dB | tail | points | within | unsettled | time s | min s "
+    "| rise ms | fall ms | noise mV @20ms | step dB | tail | freqs | points | within | unsettled | time s | min s "
     "| time/min | fixed/time | fixed/min | order |"
 )
 
@@ -226,7 +234,8 @@ HEADER = (
 def row_text(c: dict) -> str:
     tail = f"{100 * c['tail']:g} % @ {TAIL_TAU_S * 1e3:g} ms" if c["tail"] else "-"
     return (
-        f"| {c['rise_ms']:g} | {c['fall_ms']:g} | {c['noise_mv']:g} | {c['step_db']:g} | {tail} | {c['points']} "
+        f"| {c['rise_ms']:g} | {c['fall_ms']:g} | {c['noise_mv']:g} | {c['step_db']:g} | {tail} | {c['freqs']} "
+        f"| {c['points']} "
         f"| {100 * c['within']:.1f} % "
         f"| {c['unsettled']} | {c['time_s']:.2f} | {c['min_s']:.2f} | {c['time_min']:.2f} "
         f"| {c['fixed_time']:.1f} | {c['fixed_min']:.1f} | {c['order']:.2f} |"
@@ -255,6 +264,7 @@ def large_tail_steps(tries: int) -> str:
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--cells", type=int, default=0, help="run only the first N cells (0: all)")
+    parser.add_argument("--only", type=int, nargs="*", help="run only these cells (0-based indices)")
     parser.add_argument(
         "--tail-share", type=float, help="the plans' settle.tail_share (default: the plan default, 2 %%)"
     )
@@ -264,6 +274,8 @@ def main(argv: list[str] | None = None) -> int:
     grid = grid_cells()
     if args.cells:
         grid = grid[: args.cells]
+    if args.only:
+        grid = [grid[i] for i in args.only]
     lines = [HEADER, "|" + " --- |" * (HEADER.count("|") - 1)]
     print("\n".join(lines), flush=True)
     cells = []

@@ -252,3 +252,75 @@ def test_after_a_probe_a_part_without_a_tail_settles_on_its_main_response():
     assert max(abs(e) for e in errors) <= TOL
     assert float(np.median(spent)) < 0.04, spent
     assert max(spent) <= MAX_TAU_S + 0.05, "a probe lasts at most max_tau_s"
+
+
+def run_levels(levels: list[float], noise_v: float, seed: int = 1) -> tuple[SettleDetector, list[float], list[dict]]:
+    """A part with no tail (2 ms main part) stepped through `levels`, as the engine drives the
+    detector: returns it, the time spent settling each step, and each point as the store keeps it
+    (`Store.recent_readings`: level, stamp, readings), for a replay."""
+    from datetime import datetime
+
+    rng = np.random.default_rng(seed)
+    det = SettleDetector(TOL, samples=SAMPLES, max_tau_s=MAX_TAU_S)
+    out = TwoPart(0.0, FAST_TAU_S, 0.2, v0=levels[0])
+    t, prev, spent, stored, clock = 0.0, levels[0], [], [], 1.7e9
+    for v in levels[1:]:
+        out.retarget(v, t)
+        det.begin("rise" if v > prev else "fall", at=t)
+        t0, readings = t, []
+        while t - t0 < 2.0:
+            t += CADENCE_S
+            y = out.mean(t - WINDOW_S, t) + rng.normal(0.0, noise_v)
+            readings.append((t - t0, y, "settle"))
+            if det.feed(t - t0, y):
+                break
+        spent.append(t - t0)
+        for _ in range(SAMPLES):
+            t += CADENCE_S
+            y = out.mean(t - WINDOW_S, t) + rng.normal(0.0, noise_v)
+            readings.append((t - t0, y, "measure"))
+            det.record(t - t0, y)
+        det.end()
+        stamp = datetime.fromtimestamp(clock + t).isoformat(timespec="milliseconds")
+        stored.append({"power_dbm": 20 * math.log10(v), "measured_at": stamp, "overload": 0, "readings": readings})
+        prev = v
+    return det, spent, stored
+
+
+# a large rise (1 V), then 100 falls of 8 mV: the large step's exposure covers every later one
+COVERED_LEVELS = [0.1, 1.1] + [1.1 - 0.008 * i for i in range(1, 101)]
+
+
+def test_a_proof_of_no_tail_covers_the_rest_of_the_run():
+    # A probe whose readings bound the share to the probe target is a proof, kept for the run:
+    # the points after it settle on their main response (2 ms x ln(16) = 6 ms for 8 mV, textbook
+    # first-order settling, plus readings), with no second probe once TAIL_KEEP points have passed.
+    # Before proofs were kept, the evidence rolled off after 64 points and point 66 probed again
+    # for 176 ms (measured).
+    from nightbench.measure.tailguard import TAIL_KEEP
+
+    det, spent, _ = run_levels(COVERED_LEVELS, SIGMA_V / 10)
+    assert len(det.proofs) >= 1 and det.proof_reach() > 0.5
+    assert len(spent) > TAIL_KEEP + 10
+    assert max(spent[5:]) < 0.02, [round(1e3 * s) for s in spent]
+
+
+def test_a_resumed_run_keeps_the_proof_its_replayed_points_made():
+    # replay (measure/replay.py) passes the stored readings through end(): the proof comes back
+    from nightbench.measure.replay import replay
+
+    live, _, stored = run_levels(COVERED_LEVELS[:30], SIGMA_V / 10)
+    warm = SettleDetector(TOL, samples=SAMPLES, max_tau_s=MAX_TAU_S)
+    assert replay(warm, stored) == len(stored)
+    assert len(live.proofs) >= 1
+    assert len(warm.proofs) == len(live.proofs)
+    assert warm.proof_reach() == pytest.approx(live.proof_reach(), rel=0.05)
+
+
+def test_weak_evidence_is_no_proof():
+    # noisy readings (10 x the noise above): the probes run out of time (max_tau_s) with a share
+    # proven only to more than the target, so nothing is kept for the run and later points are
+    # still held or probed as before (test_a_large_step_with_a_slow_tail_... covers a real tail)
+    det, spent, _ = run_levels(COVERED_LEVELS[:20], SIGMA_V)
+    assert max(spent) >= MAX_TAU_S, "a probe ran"
+    assert not det.proofs

@@ -27,7 +27,7 @@ from typing import Literal
 import numpy as np
 
 from nightbench.measure.tail import tail_grid
-from nightbench.measure.tailguard import HISTORY_KEEP, PROBE_TAUS, TAIL_KEEP, TAIL_SHARE, TailGuard
+from nightbench.measure.tailguard import HISTORY_KEEP, PROBE_TAUS, PROOF_KEEP, TAIL_KEEP, TAIL_SHARE, TailGuard
 
 Direction = Literal["rise", "fall"]
 DIRECTIONS: tuple[Direction, Direction] = ("rise", "fall")
@@ -135,6 +135,7 @@ class SettleDetector(TailGuard):
         self.profiles: dict[Direction, deque[np.ndarray]] = {d: deque(maxlen=LEARN_KEEP) for d in DIRECTIONS}
         self.noise: deque[tuple[float, int]] = deque(maxlen=NOISE_KEEP)  # (rss, dof) per point
         self.polarity = 0  # +1: hints match the output's direction; -1: they are inverted
+        self._priors: dict[Direction | None, tuple[float, float]] = {}  # prior() per direction, until end() learns
         self.last: Assessment | None = None
         # slow tails (nightbench.measure.tail): the share allowed for, and what points proved about it
         self.tail_share = tail_share
@@ -143,6 +144,7 @@ class SettleDetector(TailGuard):
         self.probing = False
         self.tail_taus = tail_grid(max_tau_s)
         self.tail_evidence: deque[tuple[np.ndarray, np.ndarray]] = deque(maxlen=TAIL_KEEP)
+        self.proofs: deque[tuple[np.ndarray, np.ndarray, float]] = deque(maxlen=PROOF_KEEP)
         self.settled_v: float | None = None  # the previous point's value: where this step started
         # every recent step (time of the change, signed size): a slow tail sums over all of them
         self.history: deque[tuple[float, float]] = deque(maxlen=HISTORY_KEEP)
@@ -214,7 +216,7 @@ class SettleDetector(TailGuard):
         self.noise.append((float(rss[best]), dof))
         s2 = max((float(rss[best]) + nu0 * s0) / (dof + nu0), (NOISE_FLOOR * self.tolerance_v) ** 2)
         k = t99(dof + nu0)
-        self._learn_tail(best, s2, float(c[best]))
+        self._learn_tail(best, s2, float(c[best]), k)
         if self.probed:
             self.since_probe, self.probe_reach = 0, self.probe_reach_now
         else:
@@ -226,12 +228,14 @@ class SettleDetector(TailGuard):
             self.polarity = max(-3, min(3, self.polarity + (1 if self.hint == direction else -1)))
         profile = (rss - rss[best]) / s2  # deviance of each tau against the best one
         self.profiles[direction].append(profile)
+        self._priors.clear()
         inside = np.flatnonzero(profile <= k * k)
         lo, hi = int(inside[0]), int(inside[-1])
         if hi == len(self.grid) - 1:
             return None  # the data cannot tell how slow: no interval of its own
         fact = Learned(direction, float(self.grid[best]), float(self.grid[lo]), float(self.grid[hi]))
         self.learned[direction].append(fact)
+        self._priors.clear()
         return fact
 
     # -- what the run has taught ----------------------------------------------------------
@@ -255,6 +259,11 @@ class SettleDetector(TailGuard):
         if one tau fits them all, the joint interval is far tighter than any one point's. If
         they disagree (tau changes with level), the union of the recent points' own intervals.
         """
+        if direction not in self._priors:
+            self._priors[direction] = self._prior(direction)
+        return self._priors[direction]
+
+    def _prior(self, direction: Direction | None) -> tuple[float, float]:
         if direction is None:
             (a, b), (c, d) = self.prior("rise"), self.prior("fall")
             return min(a, c), max(b, d)

@@ -17,7 +17,9 @@ TAIL_READINGS = 160  # at most this many readings enter a tail fit
 HISTORY_AGE = 12.0  # steps older than this many max_tau_s are forgotten (their tail is < 1e-5 of them)
 HISTORY_KEEP = 2000
 PROBE_TAUS = 1.0  # a probe lasts at most this many max_tau_s (and 0.4 x the timeout) ...
-PROBE_TARGET = 0.5  # ... or until the share it proves allows for at most this much of the tolerance
+PROBE_TARGET = 0.5  # ... or until the share it proves allows for at most this much of the tolerance at
+# its exposure (0.25, to cover twice the exposure, made bench sweeps slower: longer probes that ran out of time)
+PROOF_KEEP = 16  # points whose evidence met PROBE_TARGET: kept for the run, not rolled off with the others
 
 
 class TailGuard:
@@ -39,6 +41,7 @@ class TailGuard:
     tail_share: float
     tail_taus: np.ndarray
     tail_evidence: deque[tuple[np.ndarray, np.ndarray]]
+    proofs: deque[tuple[np.ndarray, np.ndarray, float]]  # (share, its se, the exposure it covers)
     history: deque[tuple[float, float]]
     settled_v: float | None
     probe_s: float
@@ -84,7 +87,7 @@ class TailGuard:
     def _tail_caps(self, k: float) -> np.ndarray:
         """Per tail time constant, the share of a step allowed for: the plan's, or less once the
         pooled evidence of recent points proves less."""
-        proven = pooled_share(list(self.tail_evidence), k)
+        proven = pooled_share(list(self.tail_evidence) + [(r, s) for r, s, _ in self.proofs], k)
         caps = np.full(len(self.tail_taus), self.tail_share)
         return np.minimum(caps, proven) if proven.size else caps
 
@@ -116,14 +119,20 @@ class TailGuard:
             return False
         signed, reach = self._exposure(self._last_step)
         self.probe_reach_now = float(reach.max())
-        if self.since_probe < TAIL_KEEP and not self.probed and self.probe_reach_now <= 2.0 * self.probe_reach:
-            return False  # a recent probe covers steps this large
+        covered = max(self.proof_reach(), self.probe_reach if self.since_probe < TAIL_KEEP else 0.0)
+        if not self.probed and self.probe_reach_now <= 2.0 * covered:
+            return False  # a proof of this run, or a recent probe, covers steps this large
         usable = live & (np.abs(signed) >= 20 * self.tolerance_v)
         if not usable.any() or ((np.abs(amp) - k * se) > 0)[usable].any():
             return False  # nothing to learn a share from, or a tail shows: the guard, not a probe
         with np.errstate(divide="ignore", invalid="ignore"):
             future = k * se[usable] * reach[usable] / np.abs(signed[usable])
         return bool(future.max() > PROBE_TARGET * self.tolerance_v)
+
+    def proof_reach(self) -> float:
+        """The largest exposure a kept proof covers: the part is the same all run (every frequency,
+        and a resumed run, whose replay keeps the proofs again), so one long look serves them all."""
+        return max((reach for _, _, reach in self.proofs), default=0.0)
 
     def _tail_readings(self) -> tuple[np.ndarray, np.ndarray]:
         """The readings for a tail fit: all of them, or an even subset of a long point (a subset
@@ -132,20 +141,28 @@ class TailGuard:
         t = np.asarray(self.ts[::stride]) - self.t_first
         return t, np.asarray(self.ys[::stride]) - self.y0
 
-    def _learn_tail(self, best: int, s2: float, c_best: float) -> None:
-        """Keep what this point's readings prove about a tail's share of its step, and its value."""
+    def _learn_tail(self, best: int, s2: float, c_best: float, k: float) -> None:
+        """Keep what this point's readings prove about a tail's share of its step, and its value.
+        Evidence precise enough to meet the probe target at this exposure (a probe's, or any long
+        point's) is a proof: kept for the run rather than rolled off after TAIL_KEEP points."""
         fast_tau_s = float(self.grid[best])
         step = self._step_v(c_best, best)
-        signed, reach = self._exposure(step)
+        signed, reach = self._exposure(step) if self.tail_share > 0 else (None, None)
         self._remember_step(step)
         self.settled_v = float(np.mean(self.ys[-self.samples :]))
+        if signed is None or reach is None:
+            return  # no tail allowed for: nothing to learn about one (CPU: no exposure sums)
         # a share is learned only from a large exposure of one sign (rises and falls may differ)
         usable = (np.abs(signed) >= 20 * self.tolerance_v) & (np.abs(signed) >= 0.5 * reach)
-        if self.tail_share <= 0 or not usable.any():
+        if not usable.any():
             return
         t, y = self._tail_readings()
         amp, se = slow_amplitudes(t, y, fast_tau_s, self.tail_taus, s2)
         with np.errstate(divide="ignore", invalid="ignore"):
             share = np.where(usable, amp / signed, 0.0)
             share_se = np.where(usable, se / np.abs(signed), math.inf)
-        self.tail_evidence.append((share, share_se))
+            future = np.where(usable, k * share_se * reach, math.inf)
+        if float(future[usable].max()) <= PROBE_TARGET * self.tolerance_v:
+            self.proofs.append((share, share_se, float(reach.max())))
+        else:
+            self.tail_evidence.append((share, share_se))
