@@ -212,6 +212,10 @@ ALT_SOURCE = {
     "query_level": "TONE:LOUD?",
     "query_output": "TONE:SOUN?",
     "error_query": "ERR?",
+    "modulation_off": "TONE:WOBB OFF",
+    "query_modulation": "TONE:WOBB?",
+    "offset_off": "TONE:SHIF 0",
+    "query_offset": "TONE:SHIF?",
 }
 ALT_METER = {
     "configure": "CONF:DCV",
@@ -220,6 +224,11 @@ ALT_METER = {
     "set_trigger": "TRIG:MODE IMM",
     "read": "DCV?",
     "error_query": "ERR?",
+    "query_function": "MODE?",
+    "query_range": "DCV:RANG?",
+    "query_autorange": "DCV:ARAN?",
+    "query_nplc": "DCV:INT?",
+    "query_autozero": "DCV:AZER?",
 }
 
 

@@ -13,12 +13,13 @@ from __future__ import annotations
 import json
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 from nightbench.analysis.fit import GroupResult, analyse_run
 from nightbench.analysis.gum import COVERAGE
 from nightbench.analysis.laws import LAWS
+from nightbench.analysis.setup import run_setup
 from nightbench.analysis.stated import Stated, plan_accuracy
 from nightbench.analysis.uncertainty import describe_terms
 from nightbench.drivers.errors import InputError
@@ -130,6 +131,7 @@ class Report:
     finished_at: str | None
     settings: Settings
     groups: list[GroupResult]
+    setup: dict[str, Any] = field(default_factory=dict)  # the run record and settings (analysis/setup.py)
 
     def to_json(self) -> dict[str, Any]:
         """The `report --json` object, exactly (a contract: docs/design.md)."""
@@ -138,6 +140,7 @@ class Report:
             "groups": [g.public() for g in self.groups],
             "analysis": self.settings.to_json(),
             "details": [g.detail() for g in self.groups],
+            "instruments": self.setup.get("instruments", []),  # the run record (docs/run-record.md)
         }
         over = self.over_temperature()
         if over is not None:  # runs with a chamber only: a run without keeps its JSON as it was
@@ -210,7 +213,9 @@ def build_report(store: Store, run_id: int, choices: Mapping[str, Any] | None = 
                 "a fit needs at least three"
             )
     files = store.run_files(run_id) if (json.loads(run["plan_json"]).get("path") or {}).get("calibration") else None
-    return analyse(run, points, settings, files)
+    report = analyse(run, points, settings, files)
+    report.setup = run_setup(store, run_id)
+    return report
 
 
 def _point_errors(report: Report) -> list[tuple[int, float | None]]:

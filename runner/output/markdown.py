@@ -7,6 +7,7 @@ store/fields.py), with the units in brackets.
 from __future__ import annotations
 
 from nightbench.analysis.report import Report
+from nightbench.output.record import setup_lines
 from nightbench.output.table import cell, extra_ranges, render_budget, render_excluded, settings_line
 from nightbench.store.fields import Field, table_fields
 
@@ -47,6 +48,7 @@ def _run_section(report: Report) -> list[str]:
         *render_excluded(report),
         "```",
         "",
+        *setup_lines(report),  # the instruments and settings (output/record.py); the budget stays above
     ]
 
 
