@@ -16,7 +16,7 @@ from typing import Any
 import numpy as np
 
 from nightbench.analysis.budget import build_budget, level_u_db
-from nightbench.analysis.gum import INFINITE, combine, coverage_factor, welch_satterthwaite
+from nightbench.analysis.gum import INFINITE, combine, coverage_factor, coverage_factors, welch_satterthwaite
 from nightbench.analysis.lackfit import lack_of_fit
 from nightbench.analysis.repeats import hysteresis_db
 from nightbench.analysis.stated import Stated
@@ -101,20 +101,19 @@ def _point_uncertainties(
     b = abs(group.slope_mv_per_db) / 1e3
     a_dof = min((t.dof for t in budget.terms if t.included and t.type == "A"), default=INFINITE)
     line = line_u_at(x, u_line_y, levels)
-    u_e, big = [], []
-    for i, level_line in enumerate(line):
-        own = u_all[i] or 0.0
-        u = combine(own, float(level_line)) / b
-        nu = welch_satterthwaite([own, float(level_line)], [dof_all[i], a_dof])
-        u_e.append(u)
-        big.append(coverage_factor(nu) * u)
-    group.point_u_db = big
+    own = np.array([u or 0.0 for u in u_all], dtype=float)
+    u_e = np.hypot(own, line) / b
+    # Welch-Satterthwaite of each point's two parts (G.2b), then k for all points in one call
+    with np.errstate(divide="ignore", invalid="ignore"):
+        denom = own**4 / np.asarray(dof_all, dtype=float) + (line**4 / a_dof if math.isfinite(a_dof) else 0.0)
+        nu = np.where(denom > 0, (own**2 + line**2) ** 2 / denom, np.inf)
+    group.point_u_db = [float(v) for v in coverage_factors(nu) * u_e]
     level_u = level_u_db(budget)
     for end in ("range_low_dbm", "range_high_dbm"):
         setattr(group, end.replace("_dbm", "_u_db"), _end_u(group, end, levels, u_e, level_u, a_dof))
 
 
-def _end_u(group: Any, end: str, levels: np.ndarray, u_e: list[float], level_u: float, a_dof: float) -> float | None:
+def _end_u(group: Any, end: str, levels: np.ndarray, u_e: np.ndarray, level_u: float, a_dof: float) -> float | None:
     """U of a range end: the error's u where |error| crosses the limit, over the rate |error| grows
     there (dB per dB), combined with the Type B level terms; None where the end is the sweep's end."""
     at = getattr(group, end)

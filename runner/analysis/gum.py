@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from typing import Any
 
 COVERAGE = 0.9545
 INFINITE = math.inf
@@ -67,6 +68,19 @@ def coverage_factor(nu_eff: float, p: float = COVERAGE) -> float:
     if not math.isfinite(nu_eff):
         return float(stats.norm.ppf(q))
     return float(stats.t.ppf(q, max(nu_eff, 1.0)))
+
+
+def coverage_factors(nu_eff: Any, p: float = COVERAGE) -> Any:
+    """coverage_factor for an array of degrees of freedom at once (inf: the normal quantile)."""
+    import numpy as np
+    from scipy import stats
+
+    nu = np.asarray(nu_eff, dtype=float)
+    return np.where(
+        np.isfinite(nu),
+        stats.t.ppf(0.5 + p / 2.0, np.clip(np.nan_to_num(nu, posinf=1e12), 1.0, None)),
+        stats.norm.ppf(0.5 + p / 2.0),
+    )
 
 
 def mismatch_limits_db(gamma_source: float, gamma_dut: float) -> tuple[float, float]:

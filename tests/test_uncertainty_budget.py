@@ -1,0 +1,167 @@
+"""The budget's parts (issue 14): repeats and hysteresis, a calibration in place of the source's
+accuracy, uncertainties on every point's error and on the range ends, and differences between runs
+tested against what the runs do not share. In process; numpy and scipy as the references."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from nightbench.analysis.compare import Difference
+from nightbench.analysis.fit import analyse_group
+from nightbench.analysis.gum import rectangular
+from nightbench.analysis.report import build_report
+from nightbench.analysis.stated import Stated
+from nightbench.analysis.uncertainty import level_sensitivity, line_u_at, propagate_through_fit
+from nightbench.plan.calibration import format_calibration
+from nightbench.store.db import Store
+from tests.conftest import store_run
+
+LEVELS = np.arange(-60.0, -19.0, 2.0)
+BENCH = {"source": {"driver": "scpi-source", "resource": "TCPIP::10.0.0.1::5025::SOCKET"}}
+
+
+def law(p):
+    """An invented detector: 25 mV/dB, 0 V at -88 dBm."""
+    return 0.025 * (np.asarray(p, dtype=float) + 88.0)
+
+
+def rows(values, *, repeat=0, direction=None, stdev=0.0004, levels=LEVELS):
+    return [
+        {
+            "power_dbm": float(p),
+            "value_v": float(v),
+            "settled": 1,
+            "overload": 0,
+            "stdev_v": stdev,
+            "samples": 4,
+            "repeat": repeat,
+            "direction": direction,
+        }
+        for p, v in zip(levels, values)
+    ]
+
+
+def test_repeats_are_averaged_per_level_with_their_pooled_scatter_and_hysteresis():
+    rng = np.random.default_rng(4)
+    shift = 0.0005  # the up sweeps read 0.5 mV high: hysteresis of 2 x 0.5 mV / 25 mV/dB = 0.04 dB
+    sweeps = [law(LEVELS) + (shift if r % 2 == 0 else -shift) + rng.normal(0, 0.002, LEVELS.size) for r in range(4)]
+    points = [row for r, v in enumerate(sweeps) for row in rows(v, repeat=r, direction="up" if r % 2 == 0 else "down")]
+    g = analyse_group(1e8, points, (-60, -20), 1.0)
+    assert g.points == LEVELS.size  # one point per level after averaging the repeats
+    assert g.slope_mv_per_db == pytest.approx(np.polyfit(LEVELS, np.mean(sweeps, axis=0), 1)[0] * 1e3, rel=1e-9)
+    rep = g.budget.repeats
+    # GUM 4.2.4 pooled standard deviation: numpy's ddof=1 variances averaged over the levels
+    pooled = math.sqrt(float(np.mean(np.var(np.array(sweeps), axis=0, ddof=1))))
+    assert rep["pooled_sd_v"] == pytest.approx(pooled, rel=1e-9) and rep["dof"] == LEVELS.size * 3
+    terms = {t.key: t for t in g.budget.terms}
+    u_b, _ = propagate_through_fit(LEVELS, np.full(LEVELS.size, pooled / 2.0), 2.2, 0.025)
+    assert terms["repeat_scatter"].slope_mv_per_db == pytest.approx(u_b * 1e3, rel=1e-3)
+    assert terms["repeat_scatter"].included and not terms["reading_scatter"].included  # the larger is used
+    expected = np.mean(np.array(sweeps[0::2]) - np.array(sweeps[1::2]), axis=0) / g.slope_mv_per_db * 1e3
+    assert rep["hysteresis"]["mean_db"] == pytest.approx(float(expected.mean()), rel=1e-9)
+    assert rep["hysteresis"]["mean_db"] == pytest.approx(0.04, abs=0.01)
+
+
+def test_a_single_sweep_has_no_repeat_term():
+    g = analyse_group(1e8, rows(law(LEVELS)), (-60, -20), 1.0)
+    assert g.budget.repeats is None and "repeat_scatter" not in {t.key for t in g.budget.terms}
+
+
+def _calibration(low_dbm: float, scatter_db: float) -> str:
+    """A calibration at 100 MHz from low_dbm up to -10 dBm: corrections alternating +/- scatter around 6 dB."""
+    levels = np.arange(low_dbm, -9.0, 5.0)
+    corrections = 6.0 + scatter_db * np.where(np.arange(levels.size) % 2 == 0, 1.0, -1.0)
+    return format_calibration("SIM-SENSOR", "2026-01-01", 0.15, [(1e8, d + c, d) for d, c in zip(levels, corrections)])
+
+
+def test_a_calibration_replaces_the_source_level_and_adds_linearity_below_it():
+    text = _calibration(-40.0, 0.01)
+    plan = {
+        "instruments": BENCH,
+        "path": {"calibration": "cal.csv"},
+        "analysis": {"fit_dbm": [-60, -20], "source_level_accuracy_db": 0.5, "source_linearity_db": 0.1},
+    }
+    stated = Stated.from_plan(plan, {"cal.csv": text})
+    g = analyse_group(1e8, rows(law(LEVELS)), (-60, -20), 1.0, stated)
+    terms = {t.key: t for t in g.budget.terms}
+    assert not terms["source_level"].included and not terms["path_loss"].included
+    assert terms["sensor"].intercept_db == pytest.approx(rectangular(0.15)) and terms["sensor"].common
+    assert terms["calibration_scatter"].intercept_db == pytest.approx(stated.calibration.scatter_db(1e8))
+    # linearity: a level error of e per 10 dB below -40 dBm, propagated by least squares (numpy's polyfit as
+    # the reference): fit the levels the DUT then sees, e = the stated half-width, divided by sqrt(3)
+    e = 0.1
+    seen = LEVELS + e * np.clip(-40.0 - LEVELS, 0, None) / 10.0
+    b, a = np.polyfit(LEVELS, law(seen), 1)
+    assert terms["source_linearity"].slope_mv_per_db == pytest.approx(abs(b - 0.025) * 1e3 / math.sqrt(3), rel=1e-6)
+    # the intercept -a/b is not linear in the readings: first order (GUM 5.1.2) agrees to within 1 %
+    assert terms["source_linearity"].intercept_db == pytest.approx(abs(-a / b - (-88.0)) / math.sqrt(3), rel=0.01)
+    assert level_sensitivity(LEVELS, np.ones(LEVELS.size), 2.2, 0.025) == pytest.approx((0.0, -1.0))
+
+
+def test_every_point_error_and_the_range_ends_carry_an_uncertainty():
+    levels = np.arange(-80.0, 1.0, 2.0)
+    values = law(levels) + 0.025 * 0.01 * (levels + 40.0) ** 2 / 10  # bends away from the line at both ends
+    g = analyse_group(1e8, rows(values, levels=levels), (-60, -20), 1.0, {"source_level_accuracy_db": 0.3})
+    u_y = 0.0002  # 0.0004 / sqrt(4)
+    in_fit = (levels >= -60) & (levels <= -20)
+    line = line_u_at(levels[in_fit], np.full(in_fit.sum(), u_y), levels)
+    entries = [c for c in g.curve if c["error_db"] is not None]
+    k = np.array([c["error_u_db"] for c in entries]) / (np.hypot(u_y, line) / 0.025)
+    # k from the t distribution (scipy) at the Welch-Satterthwaite dof of the point's own mean (4 samples:
+    # 3 dof) and of the line's Type A term (GUM G.2b, G.3)
+    line_dof = next(t.dof for t in g.budget.terms if t.key == "reading_scatter")
+    nu = (u_y**2 + line**2) ** 2 / (u_y**4 / 3 + line**4 / line_dof)
+    assert k == pytest.approx(stats.t.ppf(0.5 + 0.9545 / 2, nu), rel=1e-9)
+    assert g.range_low_u_db is not None and g.range_high_u_db is not None
+    # a range end is an absolute level: it carries the source's 0.3/sqrt(3) at least, times k >= 2
+    assert g.range_low_u_db >= 2 * rectangular(0.3) and g.range_high_u_db >= 2 * rectangular(0.3)
+
+
+def _group(value_shift: float, stated: Stated, seed: int):
+    rng = np.random.default_rng(seed)
+    return analyse_group(
+        1e8, rows(law(LEVELS) + value_shift + rng.normal(0, 0.0002, LEVELS.size)), (-60, -20), 1.0, stated
+    )
+
+
+def test_a_difference_cancels_what_both_runs_share_and_keeps_both_type_a():
+    plan = {
+        "instruments": BENCH,
+        "path": {"loss_db": 6},
+        "analysis": {"fit_dbm": [-60, -20], "source_level_accuracy_db": 0.5},
+    }
+    same = Stated.from_plan(plan)
+    a, b = _group(0.0, same, 1), _group(0.001, same, 2)
+    d = Difference.of(a, b)
+    assert "source_level" in d.shared_terms
+    type_a = math.hypot(a.budget.type_a_u("intercept"), b.budget.type_a_u("intercept"))
+    assert d.values["intercept_diff_u_unshared_db"] == pytest.approx(type_a * 2.0, rel=0.05)  # k near 2
+    assert d.values["intercept_diff_u_unshared_db"] < 0.1 < d.values["intercept_diff_u_db"]
+    # another source (another resource): its level accuracy no longer cancels
+    other = Stated.from_plan(
+        {**plan, "instruments": {"source": {**BENCH["source"], "resource": "TCPIP::10.0.0.2::5025::SOCKET"}}}
+    )
+    d2 = Difference.of(a, _group(0.001, other, 2))
+    assert "source_level" not in d2.shared_terms
+    assert d2.values["intercept_diff_u_unshared_db"] == pytest.approx(
+        2.0 * math.sqrt(2 * rectangular(0.5) ** 2 + type_a**2), rel=0.01
+    )
+
+
+def test_report_of_two_stored_runs_on_one_bench_states_the_shared_terms(tmp_path):
+    db = tmp_path / "two.db"
+    analysis = {"fit_dbm": [-60, -20], "error_limit_db": 1.0, "source_level_accuracy_db": 0.5}
+    store_run(db, lambda p, f: 0.0200 * (p + 90.0), dut_id="A", analysis=analysis)
+    store_run(db, lambda p, f: 0.0200 * (p + 89.9), dut_id="B", analysis=analysis)
+    from nightbench.analysis.compare import compare_reports
+
+    store = Store(db, readonly=True)
+    cmp = compare_reports(build_report(store, 1), build_report(store, 2)).to_json()
+    diff = cmp["differences"][0]
+    assert diff["intercept_diff_db"] == pytest.approx(0.1, abs=1e-9)
+    assert "source_level" in diff["shared_terms"]
+    assert diff["intercept_diff_u_unshared_db"] < 0.05 < diff["intercept_diff_u_db"]
