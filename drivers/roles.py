@@ -110,3 +110,13 @@ class SwitchRole(Role, Protocol):
 
     def select(self, channel: int) -> None:
         """Open all, close this route and read it back; InstrumentError if it reads open."""
+
+
+class SensorRole(Role, Protocol):
+    """An RF power sensor where the DUT goes (drivers/sensor.py): the level calibration's reference."""
+
+    def set_frequency(self, frequency_hz: float) -> None:
+        """The signal's frequency, for the sensor's cal factor (read back)."""
+
+    def read_dbm(self) -> float:
+        """One reading in dBm; InstrumentError beyond the sensor's range."""

@@ -340,8 +340,9 @@ def serve(db: str | None, poll_s: float, push_to: str | None, push_retry_s: floa
 
 # commands in their own modules (cli.py stays under the size limit); they use friendly, _db and
 # _read_store from here
+from nightbench.calcli import calibrate  # noqa: E402
 from nightbench.pushcli import push  # noqa: E402
 from nightbench.reportcli import export, report  # noqa: E402
 
-for _command in (push, report, export):
+for _command in (push, report, export, calibrate):
     main.add_command(_command)

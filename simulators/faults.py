@@ -4,7 +4,7 @@ A fault is a dict (from a `[[fault]]` table of the simulator config, or a `--fau
 
     kind         drop | silence | delay | garbage | spurious_error | refuse_level | overload
                  | refuse_setpoint | drift | stuck_route
-    instrument   source | meter | adc | chamber | switch
+    instrument   source | meter | adc | chamber | switch | sensor
     after        fire from the N-th message to that instrument on (1-based; 0 = from the start)
     at_s         or from this many seconds after the simulator started
     count        how many times it fires (0 = every time once triggered); default 1
@@ -41,7 +41,7 @@ KINDS = (
     "drift",
     "stuck_route",
 )
-INSTRUMENTS = ("source", "meter", "adc", "chamber", "switch")
+INSTRUMENTS = ("source", "meter", "adc", "chamber", "switch", "sensor")
 
 
 @dataclass

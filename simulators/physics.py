@@ -52,6 +52,30 @@ class SourceConfig:
     # and a level offset (the source then delivers the set level minus the offset)
     user_modulation: bool = False
     user_offset_db: float = 0.0
+    # a hidden level error for calibration to find (off by default): actual minus set, dB, at
+    # error_hz (interpolated linearly, held beyond the ends), plus error_db_per_10db for every
+    # 10 dB the setting lies below error_reference_dbm (an attenuator's small level dependence)
+    error_hz: tuple[float, ...] = ()
+    error_db: tuple[float, ...] = ()
+    error_db_per_10db: float = 0.0
+    error_reference_dbm: float = 0.0
+
+    def hidden_error_db(self, frequency_hz: float, level_dbm: float) -> float:
+        """The hidden level error (actual minus set) at a frequency and setting."""
+        if len(self.error_hz) != len(self.error_db):
+            raise ValueError("source.error_hz and source.error_db must have the same length")
+        table = 0.0
+        if self.error_hz:
+            pairs = sorted(zip(self.error_hz, self.error_db))
+            if frequency_hz <= pairs[0][0]:
+                table = pairs[0][1]
+            elif frequency_hz >= pairs[-1][0]:
+                table = pairs[-1][1]
+            else:
+                i = next(k for k, (f, _) in enumerate(pairs) if f >= frequency_hz)
+                (f0, e0), (f1, e1) = pairs[i - 1], pairs[i]
+                table = e0 + (e1 - e0) * (frequency_hz - f0) / (f1 - f0)
+        return table + self.error_db_per_10db * (self.error_reference_dbm - level_dbm) / 10.0
 
 
 @dataclass
@@ -181,6 +205,18 @@ class AdcConfig:
 
 
 @dataclass
+class SensorConfig:
+    """A power sensor where the DUT goes (simulators/sensor.py): it reads the true DUT-plane level."""
+
+    min_dbm: float = -60.0  # below: the SCPI under-range value (-9.9E37), as the sensor cannot resolve it
+    max_dbm: float = 20.0  # above: overrange (+9.9E37)
+    noise_db: float = 0.004  # rms of one reading, strong signal
+    zero_noise_dbm: float = -80.0  # rms power noise of the zero: grows the scatter toward min_dbm
+    cal_factor_db_per_ghz: float = 0.3  # reading error per GHz between its set frequency and the signal's
+    reading_s: float = 0.002  # time one reading takes
+
+
+@dataclass
 class BenchConfig:
     source: SourceConfig = field(default_factory=SourceConfig)
     path: PathConfig = field(default_factory=PathConfig)
@@ -188,6 +224,7 @@ class BenchConfig:
     meter: MeterConfig = field(default_factory=MeterConfig)
     adc: AdcConfig = field(default_factory=AdcConfig)
     chamber: ChamberConfig = field(default_factory=ChamberConfig)
+    sensor: SensorConfig = field(default_factory=SensorConfig)
     temperature_c: float = 25.0  # the room, where the chamber's air and the DUT start
     seed: int = 1
     faults: list[dict] = field(default_factory=list)
@@ -295,9 +332,11 @@ class BenchModel:
         self._input_dbm = self.dut_dbm()
 
     # -- truth --------------------------------------------------------------------------
-    def source_error_db(self, frequency_hz: float) -> float:
+    def source_error_db(self, frequency_hz: float, level_dbm: float | None = None) -> float:
+        """Actual minus set level; the hidden error's level-dependent part needs the setting."""
         s = self.config.source
-        return s.level_offset_db + s.flatness_db_per_ghz * frequency_hz / GHZ
+        hidden = s.hidden_error_db(frequency_hz, self.level_dbm if level_dbm is None else level_dbm)
+        return s.level_offset_db + s.flatness_db_per_ghz * frequency_hz / GHZ + hidden
 
     def dut_dbm(
         self, frequency_hz: float | None = None, level_dbm: float | None = None, output_on: bool | None = None
@@ -306,7 +345,7 @@ class BenchModel:
         f = self.frequency_hz if frequency_hz is None else frequency_hz
         level = self.level_dbm if level_dbm is None else level_dbm
         on = self.output_on if output_on is None else output_on
-        return level + self.source_error_db(f) - self.config.path.loss(f) if on else -math.inf
+        return level + self.source_error_db(f, level) - self.config.path.loss(f) if on else -math.inf
 
     def steady_output_v(self) -> float:
         if not self.connected:

@@ -5,7 +5,7 @@ strings, then serves until SIGTERM or SIGINT:
 
     {"source": "TCPIP::127.0.0.1::P::SOCKET", "meter": "TCPIP::127.0.0.1::Q::SOCKET",
      "meter_serial": "ASRL/dev/pts/N::INSTR", "adc_serial": "ASRL/dev/pts/M::INSTR",
-     "chamber": "TCPIP::127.0.0.1::R::SOCKET"}
+     "chamber": "TCPIP::127.0.0.1::R::SOCKET", "sensor": "TCPIP::127.0.0.1::S::SOCKET"}
 
 The meter is one instrument reachable two ways (LAN and serial), as real meters are.
 """
@@ -31,6 +31,7 @@ from nightbench.simulators.faults import FaultInjector, parse_fault_flag
 from nightbench.simulators.instruments import DIALECTS, SimAdc, SimMeter, SimSource
 from nightbench.simulators.links import PtyStream, SocketStream, serve_stream
 from nightbench.simulators.physics import BenchConfig, BenchModel
+from nightbench.simulators.sensor import SimSensor
 from nightbench.simulators.switch import SimSwitch
 
 
@@ -117,12 +118,13 @@ class Bench:
         serial: bool = True,
         dialect: str = "scpi",
         chamber_port: int = 0,
+        sensor_port: int = 0,
     ) -> None:
         self.config = config or BenchConfig()
         self.model = BenchModel(self.config)
         self.faults = FaultInjector(self.config.faults, seed=self.config.seed)
         self.stop_event = threading.Event()
-        self.locks = {name: threading.Lock() for name in ("source", "meter", "adc", "chamber", "switch")}
+        self.locks = {name: threading.Lock() for name in ("source", "meter", "adc", "chamber", "switch", "sensor")}
         self.source = SimSource(self.model, log=log, faults=self.faults, dialect=dialect)
         self.meter = SimMeter(self.model, faults=self.faults, dialect=dialect)
         self.adc = SimAdc(self.model, faults=self.faults)
@@ -138,6 +140,9 @@ class Bench:
         self.switch = SimSwitch(self.model, log=log, faults=self.faults)  # the units behind its routes
         self.switch_port = TcpPort(0, self.switch, "switch", self)
         self.ports.append(self.switch_port)
+        self.sensor = SimSensor(self.model, faults=self.faults)  # where the DUT goes: the same level
+        self.sensor_port = TcpPort(sensor_port, self.sensor, "sensor", self)
+        self.ports.append(self.sensor_port)
 
     def resources(self) -> dict[str, str | None]:
         serial = any(isinstance(p, PtyPort) for p in self.ports)
@@ -148,6 +153,7 @@ class Bench:
             "adc_serial": self.ports[3].resource if serial else None,
             "chamber": self.chamber_port.resource,
             "switch": self.switch_port.resource,
+            "sensor": self.sensor_port.resource,
         }
 
     def start(self) -> None:
@@ -188,6 +194,7 @@ def serve(
     dialect: str = "scpi",
     chamber_port: int = 0,
     chamber_time_scale: float | None = None,
+    sensor_port: int = 0,
 ) -> int:
     """Run the bench in this process until SIGTERM/SIGINT; print the resource line first."""
     config = load_config(config_path, faults, seed)
@@ -198,7 +205,13 @@ def serve(
     with contextlib.ExitStack() as stack:
         log = stack.enter_context(open(log_path, "a", encoding="utf-8")) if log_path else None
         bench = Bench(
-            config, source_port=source_port, meter_port=meter_port, log=log, dialect=dialect, chamber_port=chamber_port
+            config,
+            source_port=source_port,
+            meter_port=meter_port,
+            log=log,
+            dialect=dialect,
+            chamber_port=chamber_port,
+            sensor_port=sensor_port,
         )
         stack.callback(bench.stop)  # threads end before the log closes
         stop = threading.Event()
@@ -215,6 +228,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--source-port", type=int, default=0, help="TCP port of the source (0 = any free)")
     parser.add_argument("--meter-port", type=int, default=0, help="TCP port of the meter (0 = any free)")
     parser.add_argument("--chamber-port", type=int, default=0, help="TCP port of the chamber (0 = any free)")
+    parser.add_argument("--sensor-port", type=int, default=0, help="TCP port of the power sensor (0 = any free)")
     parser.add_argument(
         "--chamber-time-scale",
         type=float,
@@ -256,6 +270,7 @@ def main(argv: list[str] | None = None, prog: str = "nightbench.simulators.serve
             dialect=args.dialect,
             chamber_port=args.chamber_port,
             chamber_time_scale=args.chamber_time_scale,
+            sensor_port=args.sensor_port,
         )
     except (OSError, ValueError, tomllib.TOMLDecodeError) as exc:
         print(f"nightbench.simulators.server: cannot start the simulated bench: {exc}", file=sys.stderr)

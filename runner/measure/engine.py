@@ -22,6 +22,7 @@ from nightbench.measure.signals import StopFlag
 from nightbench.measure.soak import SoakProgress, SoakTimeout, soak
 from nightbench.measure.sweep import Point, expand
 from nightbench.plan.load import LoadedPlan
+from nightbench.plan.path import dut_for
 from nightbench.store.db import PointResult, Store
 from nightbench.store.states import RunState
 
@@ -73,7 +74,7 @@ class Engine:
 
     # -- safety ---------------------------------------------------------------------------
     def _check_ceiling(self, level_dbm: float, frequency_hz: float) -> None:
-        dut = level_dbm - self.loaded.path.loss(frequency_hz)
+        dut = dut_for(self.loaded.path, frequency_hz, level_dbm)  # calibrated: what it delivers
         if dut > self.plan.limits.dut_max_dbm + CEILING_SLACK_DB:
             raise SafetyError(
                 f"refusing to set {level_dbm:.2f} dBm at {frequency_hz:g} Hz: {dut:.2f} dBm at the DUT "

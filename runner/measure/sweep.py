@@ -7,6 +7,8 @@ import math
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
+from nightbench.plan.path import source_for
+
 if TYPE_CHECKING:
     from nightbench.plan.load import LoadedPlan
 
@@ -66,5 +68,5 @@ def expand(loaded: LoadedPlan) -> list[Point]:
     points = []
     for index, (temp, values, repeat, direction) in enumerate(combos):
         f, p = values["frequency_hz"], values[LEVEL_AXIS]
-        points.append(Point(index, f, p, source_level(p, loaded.path.loss(f)), temp, repeat, direction))
+        points.append(Point(index, f, p, source_level(p, source_for(loaded.path, f, p) - p), temp, repeat, direction))
     return points

@@ -13,13 +13,16 @@ from nightbench.drivers.errors import InputError
 from nightbench.plan.files import PlanProblem
 from nightbench.plan.messages import at_key, from_problem
 from nightbench.plan.model import MAX_POINTS, Plan
-from nightbench.plan.path import PathModel
+from nightbench.plan.path import Calibrated, PathModel, source_for
 from nightbench.plan.yamlfile import KeyPath
 
 # The analysis fits a line with uncertainties to the levels within analysis.fit_dbm, endpoints
 # included to FIT_SLACK_DB, and needs MIN_FIT_LEVELS of them (analysis/fit.py uses the same numbers).
 MIN_FIT_LEVELS = 3
 FIT_SLACK_DB = 1e-9
+# A level this far above a calibration's highest is still its top correction, held: calibrate lands
+# its levels within the sensor's noise (a few mdB) and the 0.001 dB setting resolution of the target.
+CALIBRATION_TOP_SLACK_DB = 0.02
 
 
 def check_consistency(plan: Plan, path: PathModel, file: str, lines: dict[KeyPath, int]) -> None:
@@ -40,13 +43,13 @@ def check_consistency(plan: Plan, path: PathModel, file: str, lines: dict[KeyPat
         raise fail(
             f"level {top:g} dBm exceeds the DUT ceiling limits.dut_max_dbm = {ceiling:g} dBm", "sweep", "power_dbm"
         )
+    _check_calibration(plan, path, freqs, top, fail)
     src = plan.instruments.source
     for f in freqs:
         try:
-            loss = path.loss(f)
+            lo, hi = source_for(path, f, min(levels)), source_for(path, f, top)
         except PlanProblem as exc:
             raise from_problem(exc, file, lines) from None
-        lo, hi = min(levels) + loss, top + loss
         if lo < src.min_dbm or hi > src.max_dbm:
             raise fail(
                 f"at {f:g} Hz the source would need {lo:.2f} to {hi:.2f} dBm, outside its limits "
@@ -55,6 +58,37 @@ def check_consistency(plan: Plan, path: PathModel, file: str, lines: dict[KeyPat
                 "power_dbm",
             )
     _check_fit_range(plan, levels, fail)
+
+
+def _check_calibration(
+    plan: Plan, path: PathModel, freqs: list[float], top: float, fail: Callable[..., InputError]
+) -> None:
+    """A calibrated path is never extrapolated upward toward the DUT's ceiling: every swept level
+    lies within the calibrated levels at its frequency (or below them, where the correction at the
+    lowest is held). A calibration run itself never goes above the ceiling."""
+    cal = plan.calibration
+    if cal is not None and cal.levels_dbm.stop > plan.limits.dut_max_dbm:
+        raise fail(
+            f"calibration level {cal.levels_dbm.stop:g} dBm exceeds the DUT ceiling limits.dut_max_dbm = "
+            f"{plan.limits.dut_max_dbm:g} dBm (the sensor sits where the DUT goes)",
+            "calibration",
+            "levels_dbm",
+            "stop",
+        )
+    if not isinstance(path, Calibrated):
+        return
+    for f in freqs:
+        if not path.calibration.covers(f):
+            continue  # the loop over frequencies below says which, with the file's span
+        highest = path.calibration.highest_dbm(f)
+        if top > highest + CALIBRATION_TOP_SLACK_DB:
+            raise fail(
+                f"level {top:g} dBm at {f:g} Hz lies above the highest calibrated level there ({highest:.3f} dBm "
+                f"in {path.calibration.name}); a calibration is never extrapolated upward: calibrate up to "
+                "the sweep's top level",
+                "sweep",
+                "power_dbm",
+            )
 
 
 def _check_temperatures(plan: Plan, fail: Callable[..., InputError]) -> None:

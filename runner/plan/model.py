@@ -3,7 +3,7 @@
 Every key of docs/design.md's plan format is accepted as written; unknown keys are errors, because a
 typo must not silently change a night's work. What needs more than one section or a file (the path's
 loss model, the sweep's axis order, the cross-section checks) is worked out by plan/load.py, so this
-module imports nothing of the plan package.
+module imports nothing of the plan package but the calibration section's model (plan/calspec.py).
 """
 
 from __future__ import annotations
@@ -15,6 +15,7 @@ from typing import Annotated, Literal
 from pydantic import AfterValidator, BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from nightbench.drivers.source import DEFAULT_MAX_DBM, DEFAULT_MIN_DBM
+from nightbench.plan.calspec import CalibrationSpec
 
 MAX_POINTS = 200_000
 Finite = Annotated[float, Field(allow_inf_nan=False)]
@@ -179,7 +180,7 @@ class PathElementSpec(_Strict):
 
     @model_validator(mode="after")
     def _one_form(self) -> PathElementSpec:
-        forms = PATH_FORMS + (("elements",) if "elements" in type(self).model_fields else ())
+        forms = PATH_FORMS + tuple(k for k in ("elements", "calibration") if k in type(self).model_fields)
         given = [k for k in forms if getattr(self, k) is not None]
         if len(given) != 1:
             raise ValueError(f"give exactly one of {', '.join(forms)}")
@@ -192,6 +193,7 @@ class PathSpec(PathElementSpec):
     """Loss from the source port to the DUT input (positive = loss); `elements` add in dB."""
 
     elements: Annotated[list[PathElementSpec], Field(min_length=1)] | None = None
+    calibration: Annotated[str, Field(min_length=1)] | None = None  # a `calibrate` file (plan/calibration.py)
 
 
 class Limits(_Strict):
@@ -362,6 +364,7 @@ class Plan(_Strict):
     soak: Soak | None = None
     measure: Measure = Measure()
     analysis: Analysis
+    calibration: CalibrationSpec | None = None  # what `nightbench calibrate` runs (plan/calspec.py)
 
     def temperatures(self) -> list[float]:
         """The chamber setpoints in visiting order; [] for a plan without a chamber."""

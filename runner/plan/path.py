@@ -20,6 +20,7 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Protocol
 
 from nightbench.drivers.errors import InputError
+from nightbench.plan.calibration import Calibration, parse_calibration
 from nightbench.plan.files import PlanFiles, PlanProblem
 
 if TYPE_CHECKING:
@@ -123,8 +124,70 @@ class Chain:
         return [line for e in self.elements for line in e.describe()]
 
 
+@dataclass(frozen=True)
+class Calibrated:
+    """A measured level calibration (plan/calibration.py): the loss depends on the level too, so
+    the source setting and the ceiling go through `source_for`/`dut_for` below; `loss(f)` is the
+    correction at the highest calibrated level, for `check` to show."""
+
+    calibration: Calibration
+    key: Key
+
+    def _problem(self, exc: ValueError) -> PlanProblem:
+        return PlanProblem(f"{exc}; calibrate at this frequency too (nothing is extrapolated)", self.key)
+
+    def correction(self, frequency_hz: float, dut_dbm: float) -> float:
+        try:
+            return self.calibration.correction(frequency_hz, dut_dbm)
+        except ValueError as exc:
+            raise self._problem(exc) from None
+
+    def dut_for(self, frequency_hz: float, source_dbm: float) -> float:
+        try:
+            return self.calibration.dut_for(frequency_hz, source_dbm)
+        except ValueError as exc:
+            raise self._problem(exc) from None
+
+    def loss(self, frequency_hz: float) -> float:
+        try:
+            top = self.calibration.highest_dbm(frequency_hz)
+        except ValueError as exc:
+            raise self._problem(exc) from None
+        return self.correction(frequency_hz, top)
+
+    def parts(self, frequency_hz: float) -> list[tuple[str, float, bool]]:
+        return [("calibration", self.loss(frequency_hz), False)]
+
+    def describe(self) -> list[str]:
+        return self.calibration.describe()
+
+
+def source_for(path: PathModel, frequency_hz: float, dut_dbm: float) -> float:
+    """The source setting that puts `dut_dbm` at the DUT: through a calibration's measured
+    relation where the path is one, else DUT level plus loss."""
+    if isinstance(path, Calibrated):
+        return dut_dbm + path.correction(frequency_hz, dut_dbm)
+    return dut_dbm + path.loss(frequency_hz)
+
+
+def dut_for(path: PathModel, frequency_hz: float, source_dbm: float) -> float:
+    """The DUT level a source setting implies (what the ceiling is checked against): with a
+    calibration, what the source was measured to deliver, not what it was told."""
+    if isinstance(path, Calibrated):
+        return path.dut_for(frequency_hz, source_dbm)
+    return source_dbm - path.loss(frequency_hz)
+
+
 def build_path(spec: PathSpec, files: PlanFiles) -> PathModel:
     """The model for a validated `path` section; PlanProblem/InputError for what keys cannot say."""
+    if spec.calibration is not None:
+        key = ("path", "calibration")
+        text, name = files.read(spec.calibration, key)
+        try:
+            return Calibrated(parse_calibration(text, name), key)
+        except InputError as exc:  # the file's own line, and the plan key that named the file
+            exc.key = f"path.calibration ({exc.key})" if exc.key else "path.calibration"
+            raise
     if spec.elements is not None:
         return Chain(
             tuple(_element(e, files, ("path", "elements", i), f"element {i + 1}") for i, e in enumerate(spec.elements))
