@@ -14,15 +14,17 @@ from nightbench.drivers.chamber import ScpiChamber
 from nightbench.drivers.dialect import CHAMBER_COMMANDS, METER_COMMANDS, SOURCE_COMMANDS, merged
 from nightbench.drivers.errors import ConnectionLost, InstrumentError, NightbenchError
 from nightbench.drivers.meter import ScpiDmm, SerialAdc
-from nightbench.drivers.roles import ChamberRole, MeterRole, Role, SourceRole
+from nightbench.drivers.roles import ChamberRole, MeterRole, Role, SourceRole, SwitchRole
 from nightbench.drivers.source import RfSource
+from nightbench.drivers.switch import ScpiSwitch, switch_commands
 from nightbench.drivers.transport import Link
 from nightbench.plan.model import AdcSpec, ChamberSpec, DmmSpec, Plan, SourceSpec
+from nightbench.plan.units import SwitchSpec
 
 R = TypeVar("R", bound=Role)
 
 
-Spec = SourceSpec | DmmSpec | AdcSpec | ChamberSpec
+Spec = SourceSpec | DmmSpec | AdcSpec | ChamberSpec | SwitchSpec
 
 
 def _link(spec: Spec) -> Link:
@@ -89,11 +91,18 @@ def open_chamber(spec: ChamberSpec) -> ChamberRole:
     )
 
 
+def open_switch(spec: SwitchSpec) -> SwitchRole:
+    """Open the switch: proven and its error queue emptied, its routes left as they are."""
+    commands = switch_commands(spec.commands)
+    return _open("switch", spec, lambda link: ScpiSwitch.open(link, commands=commands))
+
+
 @dataclass
 class Bench:
     source: SourceRole
     meter: MeterRole
     chamber: ChamberRole | None = None
+    switch: SwitchRole | None = None
 
     @classmethod
     def open(cls, plan: Plan) -> Bench:
@@ -106,17 +115,20 @@ class Bench:
             opened.append(meter)
             spec = plan.instruments.chamber
             chamber = open_chamber(spec) if spec is not None else None
+            if chamber is not None:
+                opened.append(chamber)
+            switch = open_switch(plan.instruments.switch) if plan.instruments.switch is not None else None
         except BaseException:
             for role in opened:
                 role.close()
             raise
-        return cls(source, meter, chamber)
+        return cls(source, meter, chamber, switch)
 
     def names(self) -> tuple[str, ...]:
-        return ("source", "meter", "chamber") if self.chamber is not None else ("source", "meter")
+        return tuple(n for n in ("source", "meter", "chamber", "switch") if getattr(self, n) is not None)
 
     def role(self, name: str) -> Role:
-        role = {"source": self.source, "meter": self.meter, "chamber": self.chamber}[name]
+        role = {"source": self.source, "meter": self.meter, "chamber": self.chamber, "switch": self.switch}[name]
         assert role is not None
         return role
 

@@ -22,6 +22,7 @@ class Point:
     temperature_c: float | None = None  # the chamber setpoint (runs with a chamber), else None
     repeat: int = 0  # the pass over the levels (measure.repeats), 0 first
     direction: str | None = None  # 'up' or 'down' with measure.repeats > 1; None without repeats
+    unit_id: str | None = None  # the unit (plan `units`, measure/units.py), else None
 
 
 LEVEL_STEP_DB = 0.001  # the source level is commanded with three decimals
@@ -69,4 +70,8 @@ def expand(loaded: LoadedPlan) -> list[Point]:
     for index, (temp, values, repeat, direction) in enumerate(combos):
         f, p = values["frequency_hz"], values[LEVEL_AXIS]
         points.append(Point(index, f, p, source_level(p, source_for(loaded.path, f, p) - p), temp, repeat, direction))
+    if loaded.plan.units:  # an axis inside temperature, outside the sweep's own axes
+        from nightbench.measure.units import per_unit
+
+        return per_unit(loaded, points)
     return points

@@ -21,6 +21,7 @@ from nightbench.plan.files import PlanFiles, PlanProblem
 from nightbench.plan.messages import from_problem, from_validation
 from nightbench.plan.model import AXES, Plan
 from nightbench.plan.path import PathModel, build_path
+from nightbench.plan.unitchecks import check_unit_plan
 from nightbench.plan.yamlfile import load_yaml_text, read_text
 
 
@@ -40,6 +41,7 @@ class LoadedPlan:
     path: PathModel
     order: tuple[str, ...]
     files: dict[str, str] = field(default_factory=dict)
+    unit_paths: dict[str, PathModel] = field(default_factory=dict)  # a unit's own path, by unit id (plan/units.py)
 
 
 def axis_order(data: Mapping[str, Any]) -> tuple[str, ...]:
@@ -68,7 +70,8 @@ def parse_plan(
     except PlanProblem as exc:
         raise from_problem(exc, file, lines) from None
     check_consistency(plan, path, file, lines)
-    return LoadedPlan(plan, text, file, path, axis_order(data), refs.texts)
+    unit_paths = check_unit_plan(plan, path, refs, file, lines)
+    return LoadedPlan(plan, text, file, path, axis_order(data), refs.texts, unit_paths)
 
 
 def load_plan(path: str | Path) -> LoadedPlan:

@@ -16,6 +16,7 @@ from pydantic import AfterValidator, BaseModel, ConfigDict, Field, field_validat
 
 from nightbench.drivers.source import DEFAULT_MAX_DBM, DEFAULT_MIN_DBM
 from nightbench.plan.calspec import CalibrationSpec
+from nightbench.plan.units import AcceptSpec, SwitchSpec, UnitSpec
 
 MAX_POINTS = 200_000
 Finite = Annotated[float, Field(allow_inf_nan=False)]
@@ -154,6 +155,7 @@ class Instruments(_Strict):
     source: SourceSpec
     meter: MeterSpec
     chamber: ChamberSpec | None = None
+    switch: SwitchSpec | None = None  # several units, one route each (plan/units.py)
 
 
 Extrapolate = Literal["none", "hold", "linear"]
@@ -198,6 +200,7 @@ class PathSpec(PathElementSpec):
 
 class Limits(_Strict):
     dut_max_dbm: Finite
+    accept: AcceptSpec | None = None  # acceptance limits and decision rule (analysis/accept.py)
 
 
 class Span(_Strict):
@@ -364,6 +367,7 @@ class Plan(_Strict):
     soak: Soak | None = None
     measure: Measure = Measure()
     analysis: Analysis
+    units: Annotated[list[UnitSpec[PathSpec]], Field(min_length=1)] | None = None  # an axis inside temperature
     calibration: CalibrationSpec | None = None  # what `nightbench calibrate` runs (plan/calspec.py)
 
     def temperatures(self) -> list[float]:
