@@ -16,6 +16,7 @@ from typing import TYPE_CHECKING
 
 from nightbench.drivers.errors import NightbenchError
 from nightbench.measure.sweep import Point, source_level
+from nightbench.plan.path import source_for
 
 if TYPE_CHECKING:
     from nightbench.measure.roles import Bench
@@ -44,7 +45,11 @@ def per_unit(loaded: LoadedPlan, points: list[Point]) -> list[Point]:
         for unit in units:
             own = loaded.unit_paths.get(unit.id)
             for p in group:
-                src = p.source_dbm if own is None else source_level(p.power_dbm, own.loss(p.frequency_hz))
+                src = (
+                    p.source_dbm
+                    if own is None
+                    else source_level(p.power_dbm, source_for(own, p.frequency_hz, p.power_dbm) - p.power_dbm)
+                )
                 out.append(replace(p, index=len(out), source_dbm=src, unit_id=unit.id))
     return out
 
