@@ -157,6 +157,7 @@ class GroupResult:
     intercept_nu_eff: float | None = None
     range_low_u_db: float | None = None  # expanded uncertainty of each range end (None at a sweep end)
     range_high_u_db: float | None = None
+    unit_id: str | None = None  # the unit of a run with several (plan `units`), else None
     point_u_db: list[float] = field(default_factory=list)  # U of each usable point's error, in level order
 
     @property
@@ -204,6 +205,7 @@ class GroupResult:
         return {
             "frequency_hz": self.frequency_hz,
             "temperature_c": self.temperature_c,
+            "unit_id": self.unit_id,
             "note": self.note,
             "line": None
             if self.line is None
@@ -361,11 +363,13 @@ def analyse_run(
     *,
     law: str = "log",
 ) -> list[GroupResult]:
-    """One result per group: each frequency (and, once points carry it, each temperature)."""
-    groups: dict[tuple[float, float | None], list[Mapping[str, Any]]] = {}
+    """One result per group: each frequency (and, once points carry them, each temperature and unit)."""
+    groups: dict[tuple[float, float | None, str | None], list[Mapping[str, Any]]] = {}
     for row in points:
-        groups.setdefault((row["frequency_hz"], row.get("temperature_c")), []).append(row)
-    return [
-        analyse_group(f, rows, fit_dbm, limit_db, accuracy, temperature_c=t, law=law)
-        for (f, t), rows in sorted(groups.items(), key=lambda kv: (kv[0][0], kv[0][1] or 0.0))
-    ]
+        groups.setdefault((row["frequency_hz"], row.get("temperature_c"), row.get("unit_id")), []).append(row)
+    results = []
+    for (f, t, unit), rows in sorted(groups.items(), key=lambda kv: (kv[0][0], kv[0][1] or 0.0, kv[0][2] or "")):
+        group = analyse_group(f, rows, fit_dbm, limit_db, accuracy, temperature_c=t, law=law)
+        group.unit_id = unit
+        results.append(group)
+    return results

@@ -132,6 +132,7 @@ class Report:
     settings: Settings
     groups: list[GroupResult]
     setup: dict[str, Any] = field(default_factory=dict)  # the run record and settings (analysis/setup.py)
+    plan: dict[str, Any] = field(default_factory=dict)  # the run's plan (units, limits.accept: analysis/lot.py)
 
     def to_json(self) -> dict[str, Any]:
         """The `report --json` object, exactly (a contract: docs/design.md)."""
@@ -145,7 +146,14 @@ class Report:
         over = self.over_temperature()
         if over is not None:  # runs with a chamber only: a run without keeps its JSON as it was
             out["over_temperature"] = over
+        out.update(self.units_and_lot())  # runs with units or limits.accept only (analysis/lot.py)
         return out
+
+    def units_and_lot(self) -> dict[str, Any]:
+        """`units`, `lot` and `acceptance` (analysis/lot.py); {} without units and limits.accept."""
+        from nightbench.analysis.lot import units_and_lot
+
+        return units_and_lot(self.plan, self.groups, self.dut_id)
 
     def over_temperature(self) -> dict[str, Any] | None:
         """Error vs the reference-temperature line and the drift of the line (analysis/temperature.py)."""
@@ -178,6 +186,7 @@ def analyse(
         finished_at=run["finished_at"],
         settings=settings,
         groups=groups,
+        plan=plan,
     )
 
 

@@ -119,6 +119,7 @@ FIELDS: tuple[Field, ...] = (
     Field("intercept_nu_eff", "", ".1f", since=6, laws=("log",)),
     Field("range_low_u_db", "dB", ".2f", since=6),
     Field("range_high_u_db", "dB", ".2f", since=6),
+    Field("unit_id", "", "s", sql="TEXT", since=6),  # the unit of a run with several (plan `units`), else NULL
 )
 
 BY_NAME = {f.name: f for f in FIELDS}
