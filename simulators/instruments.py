@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 import json
 import math
 import time
@@ -121,8 +122,8 @@ class SimSource(ScpiInstrument):
         self.add(h.offset, self._set_offset)
         self.add(h.offset + "?", lambda a: f"{self.offset_db:g}")
         for name, header in h.modulation.items():
-            self.add(header, lambda a, name=name: self._set_modulation(name, a))
-            self.add(header + "?", lambda a, name=name: "1" if self.modulation[name] else "0")
+            self.add(header, functools.partial(self._set_modulation, name))
+            self.add(header + "?", functools.partial(self._query_modulation, name))
         self._write_log("start")
 
     def reset(self) -> None:
@@ -141,6 +142,9 @@ class SimSource(ScpiInstrument):
 
     def _set_modulation(self, name: str, args: list[str]) -> None:
         self.modulation[name] = parse_bool(one_arg(args))
+
+    def _query_modulation(self, name: str, args: list[str]) -> str:
+        return "1" if self.modulation[name] else "0"
 
     def _set_freq(self, args: list[str]) -> None:
         value = parse_number(
