@@ -24,6 +24,7 @@ from nightbench.cli import DB_HELP, _db, _read_store, friendly
 @click.option("--law", type=click.Choice(["log", "linear", "square"]), help="the detector law to fit")
 @click.option("--reference-c", "reference_c", type=float, metavar="T", help="reference temperature, degC")
 @click.option("--save", is_flag=True, help="store this analysis with the run (the views then show it)")
+@click.option("--unit", metavar="ID", help="only this unit's groups (a run with several units)")
 @friendly
 def report(
     run_ids: tuple[int, ...],
@@ -35,6 +36,7 @@ def report(
     law: str | None,
     reference_c: float | None,
     save: bool,
+    unit: str | None,
 ) -> None:
     """Characterisation results of RUN: slope, intercept, conformance, dynamic range, uncertainties.
 
@@ -46,7 +48,17 @@ def report(
 
     # read through a read-only open; --save writes through its own, after every choice is checked
     choices = {"fit_dbm": fit_dbm, "limits": limits, "law": law, "reference_c": reference_c}
-    run_report(run_ids, _read_store(db), _db(db), as_json=as_json, out=out, choices=choices, save=save, echo=click.echo)
+    run_report(
+        run_ids,
+        _read_store(db),
+        _db(db),
+        as_json=as_json,
+        out=out,
+        choices=choices,
+        save=save,
+        echo=click.echo,
+        unit=unit,
+    )
 
 
 @click.command()

@@ -27,6 +27,7 @@ def run_report(
     choices: Mapping[str, Any],
     save: bool,
     echo: Callable[..., None],
+    unit: str | None = None,
 ) -> None:
     """Analyse RUN (or RUN and RUN_B side by side) and print, save or write what was asked."""
     if len(run_ids) > 2:
@@ -45,6 +46,10 @@ def run_report(
         for rep in reports:
             echo(f"run {rep.run_id}: stored as analysis {save_analysis(writer, rep)}", err=True)
         writer.close()
+    if unit is not None:  # one unit's groups (output/units.py); after --save, which stores the whole run
+        from nightbench.output.units import only_unit
+
+        reports = [only_unit(r, unit) for r in reports]
     comparison_text = None
     if len(reports) == 2:
         from nightbench.analysis.compare import compare_reports
@@ -58,7 +63,10 @@ def run_report(
             else "\n\n".join([comparison_text, *(render_table(r) for r in reports)])
         )
     else:
-        echo(json.dumps(reports[0].to_json(), indent=1) if as_json else render_table(reports[0]))
+        from nightbench.output.units import render_units
+
+        text = "\n".join([render_table(reports[0]), *render_units(reports[0])])
+        echo(json.dumps(reports[0].to_json(), indent=1) if as_json else text)
     if out:
         from nightbench.output.files import prepare_dir, write_outputs
 

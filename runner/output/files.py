@@ -52,10 +52,12 @@ def write_outputs(store: Store, reports: list[Report], comparison_text: str | No
     from nightbench.output.markdown import markdown_summary
     from nightbench.output.plots import write_plots
     from nightbench.output.temperature_plots import write_temperature_plots
+    from nightbench.output.unit_plots import write_unit_plots
 
     files = write_plots(reports, out)
     for report in reports:
         files += write_temperature_plots(report, out)  # runs with a chamber only
+        files += write_unit_plots(report, out)  # runs with units only
     files.append(write_results_csv(reports, out / "results.csv"))
     for report in reports:
         path = out / f"points-run{report.run_id}.csv"

@@ -9,6 +9,7 @@ from __future__ import annotations
 from nightbench.analysis.report import Report
 from nightbench.output.record import setup_lines
 from nightbench.output.table import cell, extra_ranges, render_budget, render_excluded, settings_line
+from nightbench.output.units import markdown_units
 from nightbench.store.fields import Field, table_fields
 
 
@@ -48,6 +49,7 @@ def _run_section(report: Report) -> list[str]:
         *render_excluded(report),
         "```",
         "",
+        *markdown_units(report),  # runs with units or limits.accept (output/units.py)
         *setup_lines(report),  # the instruments and settings (output/record.py); the budget stays above
     ]
 
