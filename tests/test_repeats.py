@@ -123,7 +123,7 @@ def test_a_run_with_repeats_stores_up_then_down_and_resumes_exactly_where_a_down
     plan = plan_dict(
         bench.resources,
         sweep={"frequency_hz": [100e6, 300e6], "power_dbm": LEVELS},
-        measure={"samples": 8, "repeats": 2},
+        measure={"samples": 4, "repeats": 2},
     )
     path = write_plan(plan)
     run = subprocess.Popen(
@@ -153,6 +153,11 @@ def test_a_run_with_repeats_stores_up_then_down_and_resumes_exactly_where_a_down
     assert [r["idx"] for r in rows] == list(range(16)), "no point lost, none twice"
     with sqlite3.connect(db) as conn:
         assert conn.execute("SELECT points_total FROM runs WHERE id=1").fetchone()[0] == 16, "totals count repeats"
+        roles = sorted(r[0] for r in conn.execute("SELECT role FROM instruments WHERE run_id=1"))
+        starts = conn.execute(
+            "SELECT COUNT(*) FROM events WHERE run_id=1 AND kind='instruments' AND message LIKE 'source:%'"
+        ).fetchone()[0]
+    assert roles == ["meter", "source"] and starts == 2, "each start (the run, the resume) records the instruments"
     new = sorted((r for r in rows if r["idx"] not in before), key=lambda r: r["measured_at"])
     assert new[0]["idx"] == k and new[0]["direction"] == "down", "the resume starts at the first missing point"
     assert [r["idx"] for r in new] == list(range(k, 16)), "and goes on in the plan's order"

@@ -19,8 +19,6 @@ if TYPE_CHECKING:
     from nightbench.plan.load import LoadedPlan
     from nightbench.plan.model import Plan
 
-ROLES = ("source", "meter", "chamber")
-
 
 @dataclass(frozen=True)
 class Overdue:
@@ -38,8 +36,8 @@ def overdue(plan: Plan, today: date | None = None) -> list[Overdue]:
     """The instruments whose calibration_due is before `today` (default: the local date)."""
     today = today or date.today()
     found = []
-    for role in ROLES:
-        spec = getattr(plan.instruments, role, None)
+    for role in type(plan.instruments).model_fields:  # every instrument the plan can name
+        spec = getattr(plan.instruments, role)
         due = getattr(spec, "calibration_due", None)
         if due is not None and due < today:
             found.append(Overdue(role, due, bool(getattr(spec, "allow_overdue", False))))
