@@ -165,3 +165,21 @@ def test_report_of_two_stored_runs_on_one_bench_states_the_shared_terms(tmp_path
     assert diff["intercept_diff_db"] == pytest.approx(0.1, abs=1e-9)
     assert "source_level" in diff["shared_terms"]
     assert diff["intercept_diff_u_unshared_db"] < 0.05 < diff["intercept_diff_u_db"]
+
+
+def test_a_level_offset_moves_the_slope_of_a_rippled_part_as_monte_carlo_says():
+    # JCGM 101 style: a rippled part (0.3 dB, 10 dB period, from the simulator's kind of law), the
+    # source's offset drawn rectangular +/- 0.5 dB; the DUT sees every level shifted, so the ripple
+    # slides through the fit range and the fitted slope moves: the budget's first-order term must
+    # give the spread of the refitted slopes (numpy's polyfit as the reference).
+    levels = np.arange(-63.0, -16.0, 1.0)
+
+    def rippled(p):
+        return 0.025 * (p + 88.0 + 0.3 * np.sin(2 * np.pi * (p + 2.5) / 10.0))
+
+    rng = np.random.default_rng(8)
+    slopes = [np.polyfit(levels, rippled(levels + d), 1)[0] * 1e3 for d in rng.uniform(-0.5, 0.5, 4000)]
+    g = analyse_group(1e8, rows(rippled(levels), levels=levels), (-63, -17), 1.0, {"source_level_accuracy_db": 0.5})
+    term = next(t for t in g.budget.terms if t.key == "source_level")
+    assert float(np.std(slopes)) > 0.005  # the effect is there to be seen
+    assert term.slope_mv_per_db == pytest.approx(float(np.std(slopes)), rel=0.1)

@@ -2,8 +2,9 @@
 
 Type A from the readings' scatter (and the repeats' when there are some), Type B from analysis/stated.py;
 every level error is propagated through the same least-squares coefficients (level_sensitivity),
-so an offset common to a group moves only the intercept and a level error that grows with the
-distance from the calibrated levels moves both.
+so an offset common to a group moves the intercept one for one and the slope as far as the part's
+local slope changes over the fit range (the readings' own gradient, when they are given), and a
+level error that grows with the distance from the calibrated levels moves both.
 """
 
 from __future__ import annotations
@@ -72,8 +73,10 @@ def build_budget(
     stated: Stated | dict[str, float] | None = None,
     frequency_hz: float = 0.0,
     repeats: dict[str, Any] | None = None,
+    values: Sequence[float] | None = None,
 ) -> Budget:
-    """The budget of one fitted group."""
+    """The budget of one fitted group; `values` (the fit points' readings, in level order) give the
+    part's local slope, through which a level offset also moves the fitted slope."""
     st = Stated.of(stated)
     acc, b = st.accuracy, slope_v_per_db
     b_mv = abs(b) * 1e3
@@ -81,8 +84,14 @@ def build_budget(
     dofs = list(dof_y) if dof_y is not None else [INFINITE] * len(u_y)
     terms = _type_a(xs, u_y, dofs, residual_sd_v, (intercept_v, b), repeats)
 
+    local = np.gradient(np.asarray(values, dtype=float), xs) if values is not None and len(xs) >= 3 else None
+    slope_per_db, icpt_per_db = level_sensitivity(xs, np.ones(len(xs)), intercept_v, b, local)
+    if local is None:
+        slope_per_db, icpt_per_db = 0.0, 1.0  # a straight part: an offset moves the intercept alone
+
     def offset_term(key: str, u_db: float, basis: str | None, *, common: bool = False, included: bool = True) -> Term:
-        return Term(key, "B", 0.0, u_db, included=included, common=common, basis=basis)
+        slope_u = abs(slope_per_db) * 1e3 * u_db
+        return Term(key, "B", slope_u, abs(icpt_per_db) * u_db, included=included, common=common, basis=basis)
 
     cal = st.calibration
     src, path = acc.get("source_level_accuracy_db", 0.0), acc.get("path_loss_accuracy_db", 0.0)
@@ -95,7 +104,7 @@ def build_budget(
         terms.append(offset_term("calibration_scatter", scatter, st.basis("calibration", ("scatter", frequency_hz))))
         weights = _beyond_calibration(xs, cal.lowest_dbm(frequency_hz), cal.highest_dbm(frequency_hz))
         lin = rectangular(acc.get("source_linearity_db", 0.0))
-        ds, dx0 = level_sensitivity(xs, weights, intercept_v, b)
+        ds, dx0 = level_sensitivity(xs, weights, intercept_v, b, local)
         basis = st.basis("source", ("linearity", lin))
         terms.append(Term("source_linearity", "B", abs(ds) * 1e3 * lin, abs(dx0) * lin, basis=basis))
     mismatch = mismatch_u_db(st.gamma_source, st.gamma_dut)
@@ -105,7 +114,9 @@ def build_budget(
         Term("meter_gain", "B", b_mv * rectangular(gain / 100.0), 0.0, common=True, basis=st.basis("meter", gain))
     )
     off = acc.get("meter_offset_accuracy_v", 0.0)
-    terms.append(offset_term("meter_offset", rectangular(off) / abs(b), st.basis("meter", off), common=True))
+    # a voltage offset: the line moves up, the intercept by offset/slope, the slope not at all
+    u_off = rectangular(off) / abs(b)
+    terms.append(Term("meter_offset", "B", 0.0, u_off, common=True, basis=st.basis("meter", off)))
     return Budget(terms, repeats=repeats)
 
 

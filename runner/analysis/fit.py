@@ -323,7 +323,10 @@ def _uncertainties(
         return
     dof_all = [float(r.get("dof") or (r.get("samples") or 1) - 1) for r in usable]
     counts = [int(r.get("repeats") or 1) for r in usable]
-    group.budget = apply_log_budget(group, fit, levels, in_fit, u_all, dof_all, counts, errors, accuracy, repeats)
+    values = np.array([r["value_v"] for r in usable], dtype=float)
+    group.budget = apply_log_budget(
+        group, fit, levels, values, in_fit, u_all, dof_all, counts, errors, accuracy, repeats
+    )
     usable_entries = [c for c in group.curve if c["status"] in ("in_fit", "outside_fit")]
     for entry, big in zip(usable_entries, group.point_u_db):
         entry["error_u_db"] = big if entry["error_db"] is not None else None

@@ -37,6 +37,7 @@ def apply_log_budget(
     group: Any,
     fit: Any,
     levels: np.ndarray,
+    values: np.ndarray,
     in_fit: np.ndarray,
     u_all: Sequence[float | None],
     dof_all: Sequence[float],
@@ -61,6 +62,7 @@ def apply_log_budget(
         stated=stated,
         frequency_hz=group.frequency_hz,
         repeats=repeats,
+        values=values[in_fit],
     )
     b = fit.slope_v_per_db
     resid_v = errors[in_fit] * b

@@ -62,8 +62,9 @@ TERMS: dict[str, tuple[str, str | None, str]] = {
     "source_level": (
         "B",
         "source_level_accuracy_db",
-        "the source's absolute level accuracy (rectangular): an offset common to every level of a group, so it "
-        "moves the intercept and not the slope; replaced by the calibration when the path has one",
+        "the source's absolute level accuracy (rectangular): an offset common to every level of a group; it moves "
+        "the intercept one for one, and the slope as far as the part's response is curved over the fit range "
+        "(every level offset does); replaced by the calibration when the path has one",
     ),
     "path_loss": (
         "B",
@@ -111,12 +112,12 @@ AFFECTS = {
     "reading_scatter": ("slope", "intercept"),
     "repeat_scatter": ("slope", "intercept"),
     "residual_scatter": ("slope", "intercept"),
-    "source_level": ("intercept",),
-    "path_loss": ("intercept",),
-    "sensor": ("intercept",),
-    "calibration_scatter": ("intercept",),
+    "source_level": ("slope", "intercept"),
+    "path_loss": ("slope", "intercept"),
+    "sensor": ("slope", "intercept"),
+    "calibration_scatter": ("slope", "intercept"),
     "source_linearity": ("slope", "intercept"),
-    "mismatch": ("intercept",),
+    "mismatch": ("slope", "intercept"),
     "meter_gain": ("slope",),
     "meter_offset": ("intercept",),
 }
@@ -224,13 +225,20 @@ def propagate_through_fit(
 
 
 def level_sensitivity(
-    x: np.ndarray, weights: np.ndarray, intercept_v: float, slope_v_per_db: float
+    x: np.ndarray,
+    weights: np.ndarray,
+    intercept_v: float,
+    slope_v_per_db: float,
+    local_v_per_db: np.ndarray | None = None,
 ) -> tuple[float, float]:
     """How the slope (V/dB) and intercept (dB) move per dB of a level error e that reaches the point at
-    x_i as w_i e (w = 1 everywhere: a plain offset). The DUT then sees x_i + w_i e, so y_i moves by b w_i e."""
+    x_i as w_i e (w = 1 everywhere: a plain offset). The DUT then sees x_i + w_i e, so y_i moves by
+    V'(x_i) w_i e: the part's local slope (`local_v_per_db`), or the fitted b for a straight part. Through
+    a curved or rippled response an offset moves the slope too, by the least-squares slope of V'."""
     c, d = fit_coefficients(x)
     x0 = -intercept_v / slope_v_per_db
-    return float(slope_v_per_db * (c * weights).sum()), float(-((d + x0 * c) * weights).sum())
+    dv = np.full(len(x), slope_v_per_db) if local_v_per_db is None else np.asarray(local_v_per_db, dtype=float)
+    return float((c * dv * weights).sum()), float(-((d + x0 * c) * dv * weights).sum() / slope_v_per_db)
 
 
 def line_u_at(x: np.ndarray, u_y: np.ndarray, at: np.ndarray) -> np.ndarray:
