@@ -80,12 +80,14 @@ class Calibrator:
         self.progress = progress
         self.source: SourceRole | None = None
         self.sensor: SensorRole | None = None
+        self.doing = "opening the source"
 
     def run(self) -> CalibrationResult:
         """Every plan frequency at every calibration level; RF off and both closed on every way out."""
         try:
             self._check_stop()
             self.source = open_source(self.loaded.plan.instruments.source)  # RF off first (configure)
+            self.doing = "opening the sensor"
             self.sensor = open_sensor(self.spec.sensor)
             freqs = list(dict.fromkeys(self.loaded.plan.sweep.axis_values("frequency_hz")))
             levels = self.spec.levels_dbm.values()
@@ -93,6 +95,9 @@ class Calibrator:
             for f in freqs:
                 rows += self._frequency(f, levels, len(rows), len(freqs) * len(levels))
             return CalibrationResult(rows, self.sensor.identity, self.source.identity)
+        except InstrumentError as exc:
+            exc.add_context(f"calibration failed while {self.doing}")
+            raise
         finally:
             self._make_safe()
 
@@ -112,6 +117,7 @@ class Calibrator:
 
     def _frequency(self, f: float, levels: list[float], done: int, total: int) -> list[Row]:
         assert self.source is not None and self.sensor is not None
+        self.doing = f"setting {f / 1e6:g} MHz on the source and the sensor"
         self.source.rf_off()  # a frequency change with RF off: nothing to step through
         self.source.set(frequency_hz=f)
         self.sensor.set_frequency(f)
@@ -140,9 +146,11 @@ class Calibrator:
         """Set the level (RF on), read the sensor `samples` times; the mean, in dBm."""
         assert self.source is not None and self.sensor is not None
         self._check_stop()
+        self.doing = f"setting the source to {setting:.3f} dBm at {f / 1e6:g} MHz"
         self.source.set(level_dbm=setting)
         if not self.source.output_on:
             self.source.set(output=True)
+        self.doing = f"reading the sensor at {f / 1e6:g} MHz with the source at {setting:.3f} dBm"
         readings = []
         for _ in range(self.spec.samples):
             readings.append(self.sensor.read_dbm())
