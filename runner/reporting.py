@@ -14,6 +14,7 @@ from typing import Any
 from nightbench.analysis.report import build_report, save_analysis
 from nightbench.drivers.errors import InputError
 from nightbench.output.table import render_table
+from nightbench.output.units import check_unit_option, only_unit, render_units
 from nightbench.store.db import Store
 
 
@@ -40,16 +41,14 @@ def run_report(
         check_out_dir(out)
     for run_id in run_ids:
         read_store.run(run_id)  # every run must exist before anything is written
-    reports = [build_report(read_store, run_id, choices) for run_id in run_ids]  # bad choices stop here
+    check_unit_option(read_store, run_ids, unit, save)  # before any analysis (output/units.py)
+    reports = [build_report(read_store, run_id, choices, unit) for run_id in run_ids]  # bad choices stop here
     if save:  # only now, with every choice checked: the one write `report` makes
         writer = Store(db_path, create=False)
         for rep in reports:
             echo(f"run {rep.run_id}: stored as analysis {save_analysis(writer, rep)}", err=True)
         writer.close()
-    if unit is not None:  # one unit's groups (output/units.py); after --save, which stores the whole run
-        from nightbench.output.units import only_unit
-
-        reports = [only_unit(r, unit) for r in reports]
+    reports = [only_unit(r, unit) for r in reports]  # --unit: the plan's units narrowed to the one
     comparison_text = None
     if len(reports) == 2:
         from nightbench.analysis.compare import compare_reports
@@ -63,8 +62,6 @@ def run_report(
             else "\n\n".join([comparison_text, *(render_table(r) for r in reports)])
         )
     else:
-        from nightbench.output.units import render_units
-
         text = "\n".join([render_table(reports[0]), *render_units(reports[0])])
         echo(json.dumps(reports[0].to_json(), indent=1) if as_json else text)
     if out:

@@ -24,7 +24,7 @@ from nightbench.simulators.faults import FaultInjector
 from nightbench.simulators.physics import BenchConfig, BenchModel, DetectorConfig
 from nightbench.simulators.scpi import MAKER, ScpiCommandError, ScpiInstrument
 
-DEFAULT_CHANNELS = 8
+DEFAULT_CHANNELS = 16  # routes of the simulated switch (a unit table may name a higher one)
 
 
 def unit_detectors(config: BenchConfig) -> dict[int, DetectorConfig]:

@@ -206,11 +206,14 @@ def run_settings(store: Store, run_id: int) -> Settings:
     )
 
 
-def build_report(store: Store, run_id: int, choices: Mapping[str, Any] | None = None) -> Report:
+def build_report(
+    store: Store, run_id: int, choices: Mapping[str, Any] | None = None, unit: str | None = None
+) -> Report:
     """Analyse a stored run with its own analysis (run_settings), or with `choices` (fit_dbm, limits,
-    law, reference_c: any left None keep the run's). Reads only: a read-only store will do."""
+    law, reference_c: any left None keep the run's); only one unit's points with `unit`. Reads only:
+    a read-only store will do."""
     run = dict(store.run(run_id))
-    points = [dict(r) for r in store.points(run_id)]
+    points = [dict(r) for r in store.points(run_id) if unit is None or r["unit_id"] == unit]
     settings = run_settings(store, run_id)
     if choices and any(v is not None and v != () for v in choices.values()):
         settings = settings.with_choices(**{k: v for k, v in choices.items() if v != ()}, source="report options")

@@ -7,6 +7,8 @@ table per quantity, frequency and temperature.
 
 from __future__ import annotations
 
+import json
+from collections.abc import Mapping, Sequence
 from dataclasses import replace
 from typing import Any
 
@@ -97,11 +99,29 @@ def markdown_units(report: Report) -> list[str]:
     return out
 
 
-def only_unit(report: Report, unit_id: str) -> Report:
-    """The report of one unit: its groups, and the plan's units narrowed to it (`report --unit`)."""
-    ids = [u["id"] for u in report.plan.get("units") or []]
+def check_unit(run: Mapping[str, Any], unit_id: str) -> None:
+    """`--unit ID` names one of the run's units (from its `runs` row), else InputError (exit 2)."""
+    ids = [u["id"] for u in json.loads(run["plan_json"]).get("units") or []]
     if unit_id not in ids:
         known = ", ".join(ids) if ids else "none (the run has no units)"
-        raise InputError(f"--unit {unit_id}: run {report.run_id} has no such unit (its units: {known})")
-    plan = {**report.plan, "units": [u for u in report.plan["units"] if u["id"] == unit_id]}
+        raise InputError(f"--unit {unit_id}: run {run['id']} has no such unit (its units: {known})")
+
+
+def check_unit_option(store: Any, run_ids: Sequence[int], unit_id: str | None, save: bool) -> None:
+    """`--unit ID` names one of each run's units (InputError, exit 2, before any analysis); not with
+    --save, which stores the whole run's analysis."""
+    if unit_id is None:
+        return
+    if save:
+        raise InputError("--unit shows one unit; --save stores the whole run's analysis: use them apart")
+    for run_id in run_ids:
+        check_unit(store.run(run_id), unit_id)
+
+
+def only_unit(report: Report, unit_id: str | None) -> Report:
+    """The report of one unit: its groups, and the plan's units narrowed to it (`report --unit`);
+    the report as it is without a unit."""
+    if unit_id is None:
+        return report
+    plan = {**report.plan, "units": [u for u in report.plan.get("units") or [] if u["id"] == unit_id]}
     return replace(report, groups=[g for g in report.groups if g.unit_id == unit_id], plan=plan)
