@@ -324,3 +324,14 @@ def test_weak_evidence_is_no_proof():
     det, spent, _ = run_levels(COVERED_LEVELS[:20], SIGMA_V)
     assert max(spent) >= MAX_TAU_S, "a probe ran"
     assert not det.proofs
+
+
+def test_a_new_temperature_forgets_what_was_proven_about_the_tail():
+    # the engine calls new_conditions() after each soak: a tail proven small at one temperature
+    # is not assumed at the next, so the first large step there is held and probed again
+    det, _, _ = run_levels(COVERED_LEVELS[:10], SIGMA_V / 10)
+    assert det.proofs
+    det.new_conditions()
+    assert not det.proofs and not det.tail_evidence and det.proof_reach() == 0.0
+    caps = det._tail_caps(2.5)
+    assert np.all(caps == det.tail_share), "back to the plan's share until new evidence comes"

@@ -275,6 +275,7 @@ class Engine:
             store.finish_soak(soak_id, seconds=time.monotonic() - started, outcome=outcome, readings=readings)
         store.event(run_id, "soak", f"stable at {setpoint_c:g} degC after {time.monotonic() - started:.1f} s")
         self.soaked_c = setpoint_c
+        self.detector.new_conditions()  # a tail proven small at another temperature is not assumed here
 
     def _point_with_recovery(self, point: Point) -> PointResult:
         """Set and measure one point; on an instrument fault, recover and redo the whole point,

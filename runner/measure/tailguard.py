@@ -129,6 +129,13 @@ class TailGuard:
             future = k * se[usable] * reach[usable] / np.abs(signed[usable])
         return bool(future.max() > PROBE_TARGET * self.tolerance_v)
 
+    def new_conditions(self) -> None:
+        """The part's conditions changed (a new chamber temperature): what was proven about its
+        tail held for the old ones, so it is forgotten and the next held point may probe again."""
+        self.proofs.clear()
+        self.tail_evidence.clear()
+        self.since_probe, self.probe_reach = TAIL_KEEP, 0.0
+
     def proof_reach(self) -> float:
         """The largest exposure a kept proof covers: the part is the same all run (every frequency,
         and a resumed run, whose replay keeps the proofs again), so one long look serves them all."""
