@@ -101,15 +101,18 @@ def unit_results(
     """Each unit's quantities and verdicts, worst first. Without units (`unit_ids` empty) the run's
     DUT is the one unit, named `single_id`."""
     ids = list(unit_ids) or [single_id or "dut"]
-    out = []
-    for position, uid in enumerate(ids):
+    out: list[dict[str, Any]] = []
+    for uid in ids:
         mine = [g for g in groups if (g.unit_id == uid if unit_ids else True)]
-        quantities = []
+        quantities: list[dict[str, Any]] = []
         for g in mine:
             for name in QUANTITIES:
                 value, u = value_and_u(g, name)
                 low, high = limits.get(name, (None, None))
-                verdict, used = decide(value, u, low, high, rule) if name in limits else (None, None)
+                verdict: str | None = None
+                used: str | None = None
+                if name in limits:
+                    verdict, used = decide(value, u, low, high, rule)
                 quantities.append(
                     {
                         "name": name,
@@ -123,12 +126,10 @@ def unit_results(
                         "rule": used,
                     }
                 )
-        verdict = worst(q["verdict"] for q in quantities) if limits else None
-        out.append({"id": uid, "verdict": verdict, "quantities": quantities, "_order": position})
-    out.sort(key=lambda u: (-RANK.get(u["verdict"] or "pass", 0), u["_order"]))
-    for u in out:
-        del u["_order"]
-    return out
+        overall = worst(q["verdict"] for q in quantities) if limits else None
+        out.append({"id": uid, "verdict": overall, "quantities": quantities})
+    # worst first; sorted() is stable, so units of one verdict keep the plan's order
+    return sorted(out, key=lambda unit: -RANK.get(unit["verdict"] or "pass", 0))
 
 
 def units_and_lot(plan: Mapping[str, Any], groups: Sequence[GroupResult], dut_id: str | None) -> dict[str, Any]:

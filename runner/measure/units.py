@@ -54,11 +54,11 @@ def per_unit(loaded: LoadedPlan, points: list[Point]) -> list[Point]:
     return out
 
 
-def route_to(bench: Bench, loaded: LoadedPlan, unit_id: str) -> str:
+def route_to(bench: Bench | None, loaded: LoadedPlan, unit_id: str) -> str:
     """RF off, then the unit's route alone closed and read back; returns the unit id. A fault is
     an InstrumentError naming the unit and channel (the engine stops the run safely)."""
     unit = next(u for u in loaded.plan.units or [] if u.id == unit_id)
-    assert bench.switch is not None
+    assert bench is not None and bench.switch is not None
     bench.source.rf_off()  # the route never moves with RF on
     try:
         bench.switch.select(unit.channel)
