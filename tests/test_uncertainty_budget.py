@@ -183,3 +183,16 @@ def test_a_level_offset_moves_the_slope_of_a_rippled_part_as_monte_carlo_says():
     term = next(t for t in g.budget.terms if t.key == "source_level")
     assert float(np.std(slopes)) > 0.005  # the effect is there to be seen
     assert term.slope_mv_per_db == pytest.approx(float(np.std(slopes)), rel=0.1)
+
+
+def test_the_square_law_budget_also_leaves_the_lack_of_fit_out():
+    # the square and linear laws' budgets (analysis/laws.py) take Type A from the measured scatter too:
+    # a bent response (residuals far above the noise) must not enter the responsivity's uncertainty
+    levels = np.arange(-40.0, -19.0, 1.0)
+    mw = 10 ** (levels / 10)
+    values = 0.5 * mw * (1 + 0.05 * np.sin(levels))  # 5 % wiggle: residuals >> 0.4 mV / sqrt(4) noise
+    g = analyse_group(1e8, rows(values, levels=levels, stdev=1e-6), (-40, -20), 1.0, law="square")
+    terms = {t["key"]: t for t in g.law_budget["terms"]}
+    assert terms["reading_scatter"]["included"] and not terms["fit"]["included"]
+    c = (mw - mw.mean()) / ((mw - mw.mean()) ** 2).sum()
+    assert g.law_budget["param_uc"] == pytest.approx(math.sqrt(((c * 5e-7) ** 2).sum()), rel=1e-9)

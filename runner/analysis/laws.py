@@ -109,8 +109,8 @@ def natural_budget(
 ) -> dict[str, Any]:
     """JCGM 100:2008 budget of b (responsivity or gain) and a (offset) for the square and linear laws.
 
-    Type A as for the log law (analysis/uncertainty.py: the fit's residuals or the readings' scatter
-    propagated through the fit, the larger). Type B: an input-level offset of d dB (source level,
+    Type A as for the log law (analysis/uncertainty.py): the readings' scatter propagated through the
+    fit; the fit's residuals only where no scatter was measured. Type B: an input-level offset of d dB (source level,
     path loss) scales x by exp(d / db_per_neper), so b by the inverse: u(b)/b = u(d)/db_per_neper;
     the meter's gain scales b and a by its fraction; its offset adds to a.
     """
@@ -123,7 +123,9 @@ def natural_budget(
         mx = x.mean()
         c = (x - mx) / float(((x - mx) ** 2).sum())
         d = 1.0 / len(x) - mx * c
-        use = math.sqrt(float((uy**2).mean())) > residual_sd_v
+        # measured scatter is the Type A; the residuals (which hold the part's own lack of fit) only stand in
+        # without it (docs/uncertainty.md)
+        use = True
         terms[0]["included"] = not use
         terms.append(
             {
