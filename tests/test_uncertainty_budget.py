@@ -196,3 +196,34 @@ def test_the_square_law_budget_also_leaves_the_lack_of_fit_out():
     assert terms["reading_scatter"]["included"] and not terms["fit"]["included"]
     c = (mw - mw.mean()) / ((mw - mw.mean()) ** 2).sum()
     assert g.law_budget["param_uc"] == pytest.approx(math.sqrt(((c * 5e-7) ** 2).sum()), rel=1e-9)
+
+
+def test_a_stored_calibrated_run_reads_its_calibration_from_the_snapshot(tmp_path):
+    # the whole way through the real plan loader and Store: the file's text is snapshotted with the run,
+    # and the report's budget takes the sensor and the calibration's scatter from it, not from the disk
+    import yaml
+
+    from nightbench.measure.sweep import expand
+    from nightbench.plan.load import parse_plan
+    from nightbench.runs import new_run
+    from nightbench.store.db import PointResult
+    from tests.conftest import OFFLINE, plan_dict
+
+    cal = _calibration(-40.0, 0.01)
+    sweep = {"frequency_hz": [1e8], "power_dbm": {"start": -60, "stop": -20, "step": 2}}
+    analysis = {"fit_dbm": [-60, -20], "source_level_accuracy_db": 0.5, "source_linearity_db": 0.1}
+    plan = plan_dict(OFFLINE, sweep=sweep, path={"calibration": "cal.csv"}, analysis=analysis)
+    loaded = parse_plan(yaml.safe_dump(plan, sort_keys=False), "cal-plan.yaml", files={"cal.csv": cal})
+    store = Store(tmp_path / "cal.db")
+    run_id = new_run(store, loaded)
+    store.mark_running(run_id)
+    for point in expand(loaded):
+        v = float(law(point.power_dbm))
+        store.add_point(run_id, point, PointResult(v, 4e-4, 4, 0.01, 3, True, False, [(0.01, v, "measure")]))
+    store.finish_run(run_id, "completed")
+    (tmp_path / "cal.csv").write_text("not read")  # a report never reads the file on disk again
+    terms = {t.key: t for t in build_report(store, run_id).groups[0].budget.terms}
+    store.close()
+    assert not terms["source_level"].included
+    assert terms["sensor"].intercept_db == pytest.approx(rectangular(0.15), rel=0.01)
+    assert terms["calibration_scatter"].included and terms["source_linearity"].slope_mv_per_db > 0
