@@ -226,3 +226,45 @@ def test_calibrate_refuses_bad_input_with_exit_2_before_any_instrument(tmp_path)
     res = cli("calibrate", str(plan), "-o", str(tmp_path / "cal.csv"))
     assert res.returncode == 1 and "connection refused" in res.stderr and "Traceback" not in res.stderr
     assert list(tmp_path.iterdir()) == [plan]
+
+
+def test_the_simulated_sources_hidden_error_is_off_by_default_and_interpolated_when_set():
+    from nightbench.simulators.physics import BenchConfig, BenchModel
+
+    default = BenchModel(BenchConfig())
+    assert default.source_error_db(900e6, -30.0) == 0.0
+    cfg = {"source": {"error_hz": [100e6, 900e6], "error_db": [0.3, -0.5], "error_db_per_10db": 0.05}}
+    model = BenchModel(BenchConfig.from_dict(cfg))
+    # by hand: halfway in frequency (-0.1 dB), and 3 x 10 dB below the 0 dBm reference (+0.15 dB)
+    assert model.source_error_db(500e6, -30.0) == pytest.approx(-0.1 + 0.15)
+    assert model.source_error_db(50e6, 0.0) == pytest.approx(0.3)  # held beyond the table
+    assert model.dut_dbm(500e6, -30.0, True) == pytest.approx(-30.0 + 0.05 - model.config.path.loss(500e6))
+
+
+def test_a_stop_mid_calibration_switches_rf_off_and_returns_nothing(inproc_bench, tmp_path):
+    """The flag SIGINT/SIGTERM set (measure/signals.py), set here after the first calibrated level."""
+    import json
+
+    from nightbench.measure.calibrate import CalibrationInterrupted, Calibrator
+    from nightbench.measure.signals import StopFlag
+
+    log = (tmp_path / "log.jsonl").open("w")
+    bench = inproc_bench(log=log)
+    res = bench.resources()
+    calibration = {
+        "sensor": {"driver": "scpi-power-sensor", "resource": res["sensor"], "accuracy_db": 0.1},
+        "levels_dbm": {"start": -40, "stop": -10, "step": 10},
+    }
+    loaded = parse_plan(yaml.safe_dump(plan_dict(res, calibration=calibration)), "p.yaml")
+    stop = StopFlag()
+    rows = []
+
+    def progress(row, done, total):
+        rows.append(row)
+        stop.set("SIGTERM")
+
+    with pytest.raises(CalibrationInterrupted, match="SIGTERM"):
+        Calibrator(loaded, stop, progress).run()
+    log.close()
+    events = [json.loads(line) for line in (tmp_path / "log.jsonl").read_text().splitlines()]
+    assert len(rows) == 1 and any(e["output"] for e in events) and events[-1]["output"] is False
