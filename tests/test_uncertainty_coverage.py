@@ -19,7 +19,6 @@ from __future__ import annotations
 import math
 
 import numpy as np
-import pytest
 
 from nightbench.analysis.fit import analyse_group, fit_line
 from nightbench.analysis.stated import Stated
@@ -65,8 +64,7 @@ def _one_run(seed: int, det: DetectorConfig, meter: MeterConfig) -> list[dict]:
     return rows
 
 
-@pytest.fixture(scope="module")
-def coverage() -> dict[str, float]:
+def _coverage() -> dict[str, float]:
     det, meter = DetectorConfig(), MeterConfig()
     truth = fit_line(LEVELS, [det.steady_v(p, FREQUENCY) for p in LEVELS])  # noise-free law, same fit range
     stated = Stated(accuracy=STATED, gamma_source=GAMMA_SOURCE, gamma_dut=GAMMA_DUT)
@@ -78,7 +76,9 @@ def coverage() -> dict[str, float]:
     return {k: v / RUNS for k, v in hits.items()}
 
 
-@pytest.mark.parametrize("quantity", ["slope", "intercept"])
-def test_stated_95_percent_intervals_cover_the_truth_93_to_97_percent_of_the_time(coverage, quantity):
-    # issue 14 acceptance; the observed rates are in docs/uncertainty.md (seeds 0..199)
-    assert 0.93 <= coverage[quantity] <= 0.97, coverage
+def test_stated_95_percent_intervals_cover_the_truth_93_to_97_percent_of_the_time():
+    # issue 14 acceptance, slope and intercept from one set of runs (one test: under xdist a shared
+    # fixture would be built once per worker); the observed rates are in docs/uncertainty.md (seeds 0..199)
+    coverage = _coverage()
+    assert 0.93 <= coverage["slope"] <= 0.97, coverage
+    assert 0.93 <= coverage["intercept"] <= 0.97, coverage
