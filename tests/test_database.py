@@ -90,6 +90,7 @@ V_FITS = [
     "intercept_nu_eff",
     "range_low_u_db",
     "range_high_u_db",
+    "unit_id",  # issue 17: several units (docs/units.md)
     "analysis_id",
 ]
 

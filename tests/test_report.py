@@ -238,6 +238,7 @@ GROUP_KEYS = [
     "intercept_nu_eff",
     "range_low_u_db",
     "range_high_u_db",
+    "unit_id",  # issue 17: several units (docs/units.md)
 ]
 COMPARISON_KEYS = ["run_ids", "runs", "differences", "only_in_a_hz", "only_in_b_hz"]
 DIFFERENCE_KEYS = [
