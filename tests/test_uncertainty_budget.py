@@ -227,3 +227,21 @@ def test_a_stored_calibrated_run_reads_its_calibration_from_the_snapshot(tmp_pat
     assert not terms["source_level"].included
     assert terms["sensor"].intercept_db == pytest.approx(rectangular(0.15), rel=0.01)
     assert terms["calibration_scatter"].included and terms["source_linearity"].slope_mv_per_db > 0
+
+
+def test_every_repeated_point_keeps_its_own_error_against_the_line_of_the_means():
+    import json
+
+    from nightbench.analysis.report import _point_errors, analyse
+
+    sweeps = [law(LEVELS) + 0.001, law(LEVELS) - 0.001]  # up reads 1 mV high, down 1 mV low
+    points = [row for r, v in enumerate(sweeps) for row in rows(v, repeat=r, direction=("up", "down")[r])]
+    for i, p in enumerate(points):
+        p.update(idx=i, frequency_hz=1e8)
+    run = {"id": 1, "name": "r", "state": "completed", "dut_id": None, "started_at": None, "finished_at": None}
+    run["plan_json"] = json.dumps({"analysis": {"fit_dbm": [-60, -20], "error_limit_db": 1.0}})
+    errors = dict(_point_errors(analyse(run, points)))
+    assert sorted(errors) == list(range(len(points)))
+    # the line through the means is the law itself: each point is off by +/- 1 mV / 25 mV/dB = 0.04 dB
+    assert [errors[i] for i in range(LEVELS.size)] == pytest.approx([0.04] * LEVELS.size, abs=1e-9)
+    assert [errors[i] for i in range(LEVELS.size, len(points))] == pytest.approx([-0.04] * LEVELS.size, abs=1e-9)

@@ -270,6 +270,8 @@ def analyse_group(
                     entry["error_db"] = float(errors[k])
                 k += 1
             entry["idx"] = r.get("idx")
+            if "members" in r:  # a level's repeated points (analysis/repeats.py): (idx, value_v) each
+                entry["members"] = r["members"]
             out.append(entry)
         return out
 

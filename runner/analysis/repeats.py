@@ -51,6 +51,7 @@ def collapse(rows: Sequence[Mapping[str, Any]]) -> tuple[list[Mapping[str, Any]]
             samples=sum(samples),
             dof=sum(n - 1 for n in samples),
             repeats=len(ok),
+            members=[(r.get("idx"), r["value_v"]) for r in ok],
         )
         out.append(row)
         up = [r["value_v"] for r in ok if r.get("direction") == "up"]

@@ -18,7 +18,7 @@ from typing import Any
 
 from nightbench.analysis.fit import GroupResult, analyse_run
 from nightbench.analysis.gum import COVERAGE
-from nightbench.analysis.laws import LAWS
+from nightbench.analysis.laws import LAWS, conformance_db, get_law
 from nightbench.analysis.setup import run_setup
 from nightbench.analysis.stated import Stated, plan_accuracy
 from nightbench.analysis.uncertainty import describe_terms
@@ -231,7 +231,20 @@ def build_report(
 
 
 def _point_errors(report: Report) -> list[tuple[int, float | None]]:
-    return [(int(c["idx"]), c["error_db"]) for g in report.groups for c in g.curve if c.get("idx") is not None]
+    """Each stored point's error; a repeated level's points each against the line fitted to the levels' means."""
+    out: list[tuple[int, float | None]] = []
+    for g in report.groups:
+        for c in g.curve:
+            if c.get("members") and g.line is not None:
+                law, line = get_law(g.law), g.line
+                for idx, value in (m for m in c["members"] if m[0] is not None):
+                    err = float(
+                        conformance_db(law, line.intercept_v, line.slope_v_per_db, [c["power_dbm"]], [value])[0]
+                    )
+                    out.append((int(idx), err if math.isfinite(err) else None))
+            elif c.get("idx") is not None:
+                out.append((int(c["idx"]), c["error_db"]))
+    return out
 
 
 def save_fits(store: Store, report: Report) -> None:
