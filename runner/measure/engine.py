@@ -14,7 +14,7 @@ from collections.abc import Callable
 
 from nightbench.drivers.errors import InstrumentError, NightbenchError, SafetyError
 from nightbench.measure.order import visit_order
-from nightbench.measure.record import record_bench
+from nightbench.measure.record import open_recorded
 from nightbench.measure.replay import REPLAY_POINTS, replay
 from nightbench.measure.roles import Bench
 from nightbench.measure.settle import Direction, SettleDetector
@@ -176,8 +176,6 @@ class Engine:
             store.set_identities(run_id, self.bench.source.identity, self.bench.meter.identity)
             if self.bench.chamber is not None:
                 store.event(run_id, "instruments", f"chamber: {self.bench.chamber.identity}")
-            self.doing = "putting the instruments in a known state (the run record)"
-            record_bench(self.bench, self.plan, store, run_id)
             fast_edge = self.plan.settle.level_order == "fast-edge"
             visit = visit_order(todo, self.loaded.order, self.detector.level_taus, fast_edge=fast_edge)
             for point in visit:
@@ -311,7 +309,7 @@ class Engine:
             if self.stop.is_set():
                 raise Interrupted(self.stop.reason)
             try:
-                return Bench.open(self.plan)
+                return open_recorded(self.plan, self.store, self.run_id)  # with the run record (measure/record.py)
             except SafetyError:
                 raise
             except InstrumentError as exc:

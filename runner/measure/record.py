@@ -8,8 +8,9 @@ default), then every modulation and the level offset off, read back; the meter's
 autorange, NPLC and autozero are read back; a chamber reports its setpoint and air temperature;
 a serial ADC with no queries for its settings records what the plan set. Each goes into the
 `instruments` table with its identity and calibration-due date (plan/due.py), and an event.
-A refused setting or a read-back that disagrees fails the start, naming the instrument and the
-command, like any instrument fault (RF is off: the source was made safe when opened).
+A refused setting or a read-back that disagrees is a fault while opening, naming the instrument
+and the command: retried like one (engine._open_bench), then the start fails (RF is off: the
+source was made safe when opened).
 """
 
 from __future__ import annotations
@@ -23,6 +24,18 @@ from nightbench.measure.roles import Bench
 from nightbench.plan.due import overdue
 from nightbench.plan.model import Plan
 from nightbench.store.db import Store
+
+
+def open_recorded(plan: Plan, store: Store, run_id: int) -> Bench:
+    """The bench opened (the source first, RF off) and recorded; closed again if the record
+    fails, so the engine retries a transient fault here like one while opening."""
+    bench = Bench.open(plan)
+    try:
+        record_bench(bench, plan, store, run_id)
+    except BaseException:
+        bench.close()
+        raise
+    return bench
 
 
 def record_bench(bench: Bench, plan: Plan, store: Store, run_id: int) -> None:
