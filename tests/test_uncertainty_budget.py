@@ -147,6 +147,9 @@ def test_a_difference_cancels_what_both_runs_share_and_keeps_both_type_a():
     )
     d2 = Difference.of(a, _group(0.001, other, 2))
     assert "source_level" not in d2.shared_terms
+    # the same address but another instrument answering there (another *IDN? reply): not shared either
+    swapped = Stated.from_plan(plan, identities={"source": "Nightbench Simulated Instruments,SG-2,0002,1.0"})
+    assert "source_level" not in Difference.of(a, _group(0.001, swapped, 2)).shared_terms
     assert d2.values["intercept_diff_u_unshared_db"] == pytest.approx(
         2.0 * math.sqrt(2 * rectangular(0.5) ** 2 + type_a**2), rel=0.01
     )

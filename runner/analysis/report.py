@@ -175,7 +175,8 @@ def analyse(
     plan = json.loads(run["plan_json"])
     if settings is None:
         settings = Settings.from_plan(plan["analysis"])
-    stated = Stated.from_plan(plan, files)
+    row = dict(run)
+    stated = Stated.from_plan(plan, files, {"source": row.get("source_idn"), "meter": row.get("meter_idn")})
     groups = analyse_run(points, settings.fit_dbm, settings.limits, stated, law=settings.law)
     return Report(
         run_id=int(run["id"]),

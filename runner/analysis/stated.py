@@ -61,8 +61,16 @@ class Stated:
         return cls(accuracy={k: float(v) for k, v in (value or {}).items()})
 
     @classmethod
-    def from_plan(cls, plan: Mapping[str, Any], files: Mapping[str, str] | None = None) -> Stated:
-        """From a run's stored plan (plan_json) and its snapshotted files (path as written -> text)."""
+    def from_plan(
+        cls,
+        plan: Mapping[str, Any],
+        files: Mapping[str, str] | None = None,
+        identities: Mapping[str, str | None] | None = None,
+    ) -> Stated:
+        """From a run's stored plan (plan_json), its snapshotted files (path as written -> text) and the
+        identities its instruments gave (role -> *IDN? reply): another instrument at the same address
+        is another instrument."""
+        ids = identities or {}
         analysis = plan.get("analysis") or {}
         instruments = plan.get("instruments") or {}
         path = plan.get("path") or {}
@@ -75,8 +83,10 @@ class Stated:
             if text is not None:
                 calibration = parse(text, cal_file)
         bases = {
-            "source": _digest([(instruments.get("source") or {}).get(k) for k in ("driver", "resource")]),
-            "meter": _digest([(instruments.get("meter") or {}).get(k) for k in ("driver", "resource")]),
+            **{
+                role: _digest([*((instruments.get(role) or {}).get(k) for k in ("driver", "resource")), ids.get(role)])
+                for role in ("source", "meter")
+            },
             "path": _digest({k: v for k, v in dict(path).items() if k != "calibration"}),
         }
         if cal_file is not None:
