@@ -71,6 +71,7 @@ def check(plan: str) -> None:
     """Validate PLAN; touches no instrument and writes nothing."""
     from nightbench.measure.sweep import expand
     from nightbench.plan.load import load_plan
+    from nightbench.plan.path import source_for
 
     loaded = load_plan(plan)
     p = loaded.plan
@@ -86,8 +87,8 @@ def check(plan: str) -> None:
         parts = model.parts(f)
         detail = " + ".join(f"{label} {part:.3f}{' (extrapolated)' if ext else ''}" for label, part, ext in parts)
         click.echo(
-            f"  {f / 1e6:10.3f} MHz  path loss {loss:7.3f} dB  source {min(levels) + loss:7.2f} .. "
-            f"{max(levels) + loss:7.2f} dBm" + (f"  [{detail}]" if len(parts) > 1 or parts[0][2] else "")
+            f"  {f / 1e6:10.3f} MHz  path loss {loss:7.3f} dB  source {source_for(model, f, min(levels)):7.2f} .. "
+            f"{source_for(model, f, max(levels)):7.2f} dBm" + (f"  [{detail}]" if len(parts) > 1 or parts[0][2] else "")
         )
     temps = p.temperatures()
     if temps and p.soak:

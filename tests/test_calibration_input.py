@@ -123,6 +123,10 @@ def test_check_shows_the_calibrated_range(tmp_path):
     assert res.returncode == 0, res.stderr
     assert "calibrated at 100 MHz: -50 to -20.01 dBm at the DUT, 4 levels" in res.stdout
     assert "calibrated at 900 MHz: -50 to -20 dBm at the DUT, 4 levels" in res.stdout
+    # the source range comes from the relation at each end, worked by hand from CAL: -60 dBm holds
+    # the correction at -50 (6.0 dB); -20 dBm lies 10/9.99 of the way from -30 (6.0) to -20.01 (6.01)
+    row = next(line for line in res.stdout.splitlines() if line.strip().startswith("100.000 MHz"))
+    assert "source  -54.00 ..  -13.99 dBm" in row, row
 
 
 @pytest.mark.parametrize(
