@@ -183,8 +183,8 @@ def test_frequency_change_lowers_the_level_first(bench, write_plan, db):
 
 def _phase_faults():
     n_points = len([-60, -50, -40, -30, -20, -10])
-    end = 2 + 3 + (n_points - 1) + 1  # source messages: *IDN?, RF off, 3 for the first point,
-    cases = []  # one level per further point, and the final RF off
+    end = 2 + 1 + 3 + (n_points - 1) + 1  # source messages: *IDN?, RF off, the run record's one
+    cases = []  # (measure/record.py), 3 for the first point, one level per further point, the final RF off
     for kind in ("drop", "silence", "delay", "garbage", "spurious_error"):
         extra = {"silence": ",duration_s=0.8", "delay": ",delay_s=0.9"}.get(kind, "")
         cases.append((f"{kind}@source:after=2{extra}", "configuration"))
