@@ -10,7 +10,6 @@ difference between them (analysis/compare.py).
 from __future__ import annotations
 
 import hashlib
-import importlib
 import json
 from collections.abc import Mapping
 from dataclasses import dataclass, field
@@ -77,11 +76,11 @@ class Stated:
         mismatch = analysis.get("mismatch") or {}
         calibration, cal_file = None, path.get("calibration") if isinstance(path, Mapping) else None
         if cal_file is not None:
-            # the calibration file's parser (plan/calibration.py), looked up when a plan names one
-            parse = importlib.import_module("nightbench.plan.calibration").parse_calibration
+            from nightbench.plan.calibration import parse_calibration
+
             text = (files or {}).get(cal_file)
             if text is not None:
-                calibration = parse(text, cal_file)
+                calibration = parse_calibration(text, cal_file)
         bases = {
             **{
                 role: _digest([*((instruments.get(role) or {}).get(k) for k in ("driver", "resource")), ids.get(role)])
