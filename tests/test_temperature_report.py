@@ -42,6 +42,44 @@ def test_error_vs_reference_is_the_level_offset_of_a_shifted_line():
     assert error_vs_reference(ref, levels, b * (levels + d - x0)) == pytest.approx([d, d, d])
 
 
+def test_each_unit_of_a_lot_is_judged_against_its_own_reference_line():
+    # Two units at two temperatures, each an ideal 20 mV/dB line whose intercept moves 0.02 dB/degC,
+    # unit B 5 dB above unit A. Against its own 25 degC line each unit's 60 degC error is the
+    # intercept shift, 35 x 0.02 = 0.7 dB (arithmetic); judged against the other unit's line it would
+    # read 5 dB more, so a mixed-up reference cannot pass. Each unit keeps its own drift.
+    from types import SimpleNamespace
+
+    from nightbench.analysis.fit import LineFit
+    from nightbench.analysis.temperature import over_temperature
+
+    b, levels = 0.02, np.arange(-70.0, -9.0, 5.0)
+
+    def group(unit, temp, x0):
+        x = x0 + 0.02 * (temp - 25.0)
+        line = LineFit(-b * x, b, 0, 0, 0, 0, len(levels))
+        curve = [{"power_dbm": p, "value_v": b * (p - x), "status": "in_fit"} for p in levels]
+        return SimpleNamespace(
+            unit_id=unit,
+            frequency_hz=1e8,
+            temperature_c=temp,
+            law="log",
+            line=line,
+            curve=curve,
+            slope_mv_per_db=b * 1e3,
+            intercept_dbm=x,
+        )
+
+    groups = [group(u, t, x0) for u, x0 in (("A", -90.0), ("B", -85.0)) for t in (25.0, 60.0)]
+    over = over_temperature(groups, 25.0, 1.0, (-60.0, -20.0))
+    hot = {g["unit_id"]: g for g in over["groups"] if g["temperature_c"] == 60.0}
+    assert set(hot) == {"A", "B"}
+    for unit in "AB":
+        assert hot[unit]["max_abs_error_vs_reference_db"] == pytest.approx(0.7)
+    drift = {d["unit_id"]: d for d in over["drift"]}
+    assert drift["A"]["intercept_tc_db_per_c"] == pytest.approx(0.02)
+    assert drift["B"]["intercept_tc_db_per_c"] == pytest.approx(0.02)
+
+
 @pytest.fixture(scope="module")
 def over_temperature_run(tmp_path_factory):
     """One simulated run at three temperatures (seconds in accelerated time), shared by the checks."""

@@ -75,24 +75,44 @@ def over_temperature(
     if reference_c is None:
         reference_c = 25.0 if 25.0 in temps else temps[0]
     out: dict[str, Any] = {"reference_c": reference_c, "groups": [], "drift": []}
-    for frequency in sorted({g.frequency_hz for g in groups}):
-        at_f = sorted(
-            (g for g in groups if g.frequency_hz == frequency and g.temperature_c is not None),
-            key=lambda g: float(g.temperature_c or 0.0),
-        )
+    for unit, frequency in series(groups):
+        at_f = _at(groups, unit, frequency)
         ref = _reference_line(at_f, reference_c)
         for g in at_f:
-            out["groups"].append(_group_entry(g, ref, error_limit_db, fit_dbm))
+            out["groups"].append(_unit_first(unit, _group_entry(g, ref, error_limit_db, fit_dbm)))
         fitted = [g for g in at_f if g.slope_mv_per_db is not None and g.intercept_dbm is not None]
         t = [float(g.temperature_c or 0.0) for g in fitted]
-        out["drift"].append(
-            {
-                "frequency_hz": frequency,
-                "slope_tc_mv_per_db_per_c": least_squares_slope(t, [float(g.slope_mv_per_db or 0.0) for g in fitted]),
-                "intercept_tc_db_per_c": least_squares_slope(t, [float(g.intercept_dbm or 0.0) for g in fitted]),
-            }
-        )
+        drift = {
+            "frequency_hz": frequency,
+            "slope_tc_mv_per_db_per_c": least_squares_slope(t, [float(g.slope_mv_per_db or 0.0) for g in fitted]),
+            "intercept_tc_db_per_c": least_squares_slope(t, [float(g.intercept_dbm or 0.0) for g in fitted]),
+        }
+        out["drift"].append(_unit_first(unit, drift))
     return out
+
+
+def series(groups: Sequence[TemperatureGroup]) -> list[tuple[str | None, float]]:
+    """(unit, frequency) of each series over temperature: each unit is its own part, so a lot's
+    units are never judged against one another's reference line. Unit None: a single-unit run."""
+    keys = {(getattr(g, "unit_id", None), g.frequency_hz) for g in groups}
+    return sorted(keys, key=lambda k: (k[0] or "", k[1]))
+
+
+def _at(groups: Sequence[TemperatureGroup], unit: str | None, frequency: float) -> list[TemperatureGroup]:
+    """One unit's groups at one frequency that have a temperature, coldest first."""
+    return sorted(
+        (
+            g
+            for g in groups
+            if g.frequency_hz == frequency and getattr(g, "unit_id", None) == unit and g.temperature_c is not None
+        ),
+        key=lambda g: float(g.temperature_c or 0.0),
+    )
+
+
+def _unit_first(unit: str | None, entry: dict[str, Any]) -> dict[str, Any]:
+    """The entry, led by `unit_id` for a run with units (a single-unit run's JSON is unchanged)."""
+    return entry if unit is None else {"unit_id": unit, **entry}
 
 
 def _reference_line(groups: Sequence[TemperatureGroup], reference_c: float) -> LineFit | None:
@@ -129,15 +149,15 @@ def _group_entry(
 
 
 def errors_by_temperature(
-    groups: Sequence[TemperatureGroup], reference_c: float, frequency_hz: float
+    groups: Sequence[TemperatureGroup], reference_c: float, frequency_hz: float, unit_id: str | None = None
 ) -> dict[float, tuple[np.ndarray, np.ndarray]]:
-    """{temperature: (levels, error vs the reference line)} at one frequency: what the plots draw."""
-    at_f = [g for g in groups if g.frequency_hz == frequency_hz and g.temperature_c is not None]
+    """{temperature: (levels, error vs the reference line)} of one unit at one frequency: what the plots draw."""
+    at_f = _at(groups, unit_id, frequency_hz)
     ref = _reference_line(at_f, reference_c)
     if ref is None:
         return {}
     out = {}
-    for g in sorted(at_f, key=lambda g: float(g.temperature_c or 0.0)):
+    for g in at_f:
         levels, values = _usable(g)
         out[float(g.temperature_c or 0.0)] = (levels, error_vs_reference(ref, levels, values))
     return out

@@ -17,7 +17,7 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
 from nightbench.analysis.report import Report
-from nightbench.analysis.temperature import errors_by_temperature
+from nightbench.analysis.temperature import errors_by_temperature, series
 
 DPI = 110
 
@@ -36,8 +36,10 @@ def write_temperature_plots(report: Report, out: Path) -> list[Path]:
     reference_c = float(over["reference_c"])
     limit = report.settings.error_limit_db
     files = []
-    for frequency in sorted({g.frequency_hz for g in report.groups}):
-        curves = errors_by_temperature(report.groups, reference_c, frequency)
+    for unit, frequency in series(report.groups):
+        curves = errors_by_temperature(report.groups, reference_c, frequency, unit)
+        who = "" if unit is None else f"{unit} "
+        tag = "" if unit is None else f"-{unit}"
         if not curves:
             continue
         fig = Figure(figsize=(8, 5))
@@ -52,21 +54,24 @@ def write_temperature_plots(report: Report, out: Path) -> list[Path]:
         ax.set_ylim(-3 * limit, 3 * limit)
         ax.set_xlabel("input level at the DUT (dBm)")
         ax.set_ylabel(f"error vs the {reference_c:g} °C line (dB)")
-        ax.set_title(f"run {report.run_id} {report.name}: {frequency / 1e6:g} MHz, limit ±{limit:g} dB")
+        ax.set_title(f"run {report.run_id} {report.name}: {who}{frequency / 1e6:g} MHz, limit ±{limit:g} dB")
         ax.grid(True, alpha=0.3)
         ax.legend(fontsize="small")
-        files.append(_save(fig, out / f"run{report.run_id}-error-vs-reference-{frequency / 1e6:g}MHz.png"))
+        files.append(_save(fig, out / f"run{report.run_id}-error-vs-reference{tag}-{frequency / 1e6:g}MHz.png"))
     fig = Figure(figsize=(8, 7))
     top, bottom = fig.subplots(2, 1, sharex=True)
-    for frequency in sorted({g.frequency_hz for g in report.groups}):
-        fitted = sorted(
-            (g for g in report.groups if g.frequency_hz == frequency and g.temperature_c is not None),
-            key=lambda g: float(g.temperature_c or 0.0),
-        )
+    for unit, frequency in series(report.groups):
+        fitted = [
+            g
+            for g in report.groups
+            if g.frequency_hz == frequency and getattr(g, "unit_id", None) == unit and g.temperature_c is not None
+        ]
+        fitted.sort(key=lambda g: float(g.temperature_c or 0.0))
         fitted = [g for g in fitted if g.intercept_dbm is not None and g.slope_mv_per_db is not None]
         temps = [g.temperature_c for g in fitted]
-        top.plot(temps, [g.intercept_dbm for g in fitted], marker="o", label=f"{frequency / 1e6:g} MHz")
-        bottom.plot(temps, [g.slope_mv_per_db for g in fitted], marker="o", label=f"{frequency / 1e6:g} MHz")
+        label = ("" if unit is None else f"{unit} ") + f"{frequency / 1e6:g} MHz"
+        top.plot(temps, [g.intercept_dbm for g in fitted], marker="o", label=label)
+        bottom.plot(temps, [g.slope_mv_per_db for g in fitted], marker="o", label=label)
     top.set_ylabel("intercept (dBm)")
     bottom.set_ylabel("slope (mV/dB)")
     bottom.set_xlabel("temperature (°C, chamber setpoint)")
