@@ -199,6 +199,10 @@ def test_the_square_law_budget_also_leaves_the_lack_of_fit_out():
     assert terms["reading_scatter"]["included"] and not terms["fit"]["included"]
     c = (mw - mw.mean()) / ((mw - mw.mean()) ** 2).sum()
     assert g.law_budget["param_uc"] == pytest.approx(math.sqrt(((c * 5e-7) ** 2).sum()), rel=1e-9)
+    # k from the t distribution (scipy) at the reading scatter's Welch-Satterthwaite dof: 4 samples, 3 dof a point
+    nu = ((c * 5e-7) ** 2).sum() ** 2 / ((c * 5e-7) ** 4 / 3).sum()
+    assert g.law_budget["param_nu_eff"] == pytest.approx(nu, rel=1e-9)
+    assert g.responsivity_u_v_per_mw == pytest.approx(stats.t.ppf(0.5 + 0.9545 / 2, nu) * g.law_budget["param_uc"])
 
 
 def test_a_stored_calibrated_run_reads_its_calibration_from_the_snapshot(tmp_path):

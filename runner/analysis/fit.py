@@ -321,7 +321,9 @@ def _uncertainties(
     levels, x, in_fit, errors = arrays
     u_all = [_u_mean(r) for r in usable]
     if group.law != "log":
-        _natural(group, fit, x[in_fit], [u for u, ok in zip(u_all, in_fit) if ok], Stated.of(accuracy).accuracy)
+        dofs = [float(r.get("dof") or (r.get("samples") or 1) - 1) for r, ok in zip(usable, in_fit) if ok]
+        u_fit = [u for u, ok in zip(u_all, in_fit) if ok]
+        _natural(group, fit, x[in_fit], u_fit, Stated.of(accuracy).accuracy, dofs)
         return
     dof_all = [float(r.get("dof") or (r.get("samples") or 1) - 1) for r in usable]
     counts = [int(r.get("repeats") or 1) for r in usable]
@@ -334,7 +336,9 @@ def _uncertainties(
         entry["error_u_db"] = big if entry["error_db"] is not None else None
 
 
-def _natural(group: GroupResult, fit: LineFit, x: np.ndarray, u_y: list[float | None], accuracy: dict) -> None:
+def _natural(
+    group: GroupResult, fit: LineFit, x: np.ndarray, u_y: list[float | None], accuracy: dict, dofs: list[float]
+) -> None:
     """The square and linear laws' natural parameters and their budget (analysis/laws.py)."""
     law = get_law(group.law)
     assert law.param is not None
@@ -348,6 +352,7 @@ def _natural(group: GroupResult, fit: LineFit, x: np.ndarray, u_y: list[float | 
         u_y=u_y,
         residual_sd_v=fit.residual_sd_v,
         accuracy=accuracy,
+        dof_y=dofs,
     )
     setattr(group, law.param, fit.slope_v_per_db)
     setattr(group, law.param.replace("_v_per", "_u_v_per"), nat["param_U"])

@@ -24,7 +24,7 @@ from typing import Any
 
 import numpy as np
 
-from nightbench.analysis.uncertainty import K_EXPANSION, combine, expand, rectangular
+from nightbench.analysis.gum import combine, coverage_factor, expand, rectangular, welch_satterthwaite
 
 LAWS = ("log", "linear", "square")
 REF_OHM = 50.0
@@ -106,16 +106,25 @@ def natural_budget(
     u_y: Sequence[float | None],
     residual_sd_v: float,
     accuracy: dict[str, float],
+    dof_y: Sequence[float] | None = None,
 ) -> dict[str, Any]:
     """JCGM 100:2008 budget of b (responsivity or gain) and a (offset) for the square and linear laws.
 
     Type A as for the log law (analysis/uncertainty.py): the readings' scatter propagated through the
     fit; the fit's residuals only where no scatter was measured. Type B: an input-level offset of d dB (source level,
     path loss) scales x by exp(d / db_per_neper), so b by the inverse: u(b)/b = u(d)/db_per_neper;
-    the meter's gain scales b and a by its fraction; its offset adds to a.
+    the meter's gain scales b and a by its fraction; its offset adds to a. k from the t distribution at
+    the Welch-Satterthwaite degrees of freedom (analysis/gum.py), per parameter.
     """
     terms: list[dict[str, Any]] = [
-        {"key": "fit", "type": "A", "param_u": u_slope_fit, "offset_u": u_intercept_fit, "included": True}
+        {
+            "key": "fit",
+            "type": "A",
+            "param_u": u_slope_fit,
+            "offset_u": u_intercept_fit,
+            "included": True,
+            "dof": float(len(x) - 2),
+        }
     ]
     known = [u for u in u_y if u is not None]
     if known and len(known) == len(u_y):
@@ -127,6 +136,7 @@ def natural_budget(
         # without it (docs/uncertainty.md)
         use = True
         terms[0]["included"] = not use
+        dofs = list(dof_y) if dof_y is not None else [math.inf] * len(known)
         terms.append(
             {
                 "key": "reading_scatter",
@@ -134,6 +144,7 @@ def natural_budget(
                 "param_u": math.sqrt(float(((c * uy) ** 2).sum())),
                 "offset_u": math.sqrt(float(((d * uy) ** 2).sum())),
                 "included": use,
+                "dof": min(welch_satterthwaite(list(c * uy), dofs), welch_satterthwaite(list(d * uy), dofs)),
             }
         )
     level_u = combine(
@@ -153,14 +164,26 @@ def natural_budget(
     ]
     for t in terms:
         t.setdefault("included", True)
-    param_uc = combine(*(float(t["param_u"]) for t in terms if t["included"]))
-    offset_uc = combine(*(float(t["offset_u"]) for t in terms if t["included"]))
+        t.setdefault("dof", math.inf)
+    used = [t for t in terms if t["included"]]
+    nu = {
+        q: welch_satterthwaite([float(t[q]) for t in used], [t["dof"] for t in used]) for q in ("param_u", "offset_u")
+    }
+    k = {q: coverage_factor(v) for q, v in nu.items()}
+    param_uc = combine(*(float(t["param_u"]) for t in used))
+    offset_uc = combine(*(float(t["offset_u"]) for t in used))
+    for t in terms:
+        t["dof"] = None if not math.isfinite(t["dof"]) else t["dof"]  # JSON: null is infinite
     return {
-        "k": K_EXPANSION,
+        "k": k["param_u"],
         "parameter": law.param,
         "terms": terms,
         "param_uc": param_uc,
         "offset_uc_v": offset_uc,
-        "param_U": expand(param_uc),
-        "offset_U_v": expand(offset_uc),
+        "param_U": expand(param_uc, k["param_u"]),
+        "offset_U_v": expand(offset_uc, k["offset_u"]),
+        "param_k": k["param_u"],
+        "param_nu_eff": nu["param_u"] if math.isfinite(nu["param_u"]) else None,
+        "offset_k": k["offset_u"],
+        "offset_nu_eff": nu["offset_u"] if math.isfinite(nu["offset_u"]) else None,
     }

@@ -37,7 +37,7 @@ from nightbench.analysis.gum import (
 
 __all__ = ["COVERAGE", "K_EXPANSION", "Budget", "Term", "combine", "expand", "rectangular", "type_a_of_mean"]
 
-K_EXPANSION = 2.0  # k for infinite degrees of freedom at 95.45 % (the square and linear laws' budgets)
+K_EXPANSION = 2.0  # k for infinite degrees of freedom at 95.45 % (GUM Table G.2)
 
 # key -> (type, plan key or None, what the term is): the words the report prints
 TERMS: dict[str, tuple[str, str | None, str]] = {
