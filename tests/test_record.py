@@ -23,12 +23,13 @@ import yaml
 
 from nightbench.drivers.chamber import ScpiChamber
 from nightbench.drivers.dialect import METER_COMMANDS, SOURCE_COMMANDS, merged
+from nightbench.drivers.errors import InputError
 from nightbench.drivers.meter import ScpiDmm, SerialAdc
 from nightbench.drivers.source import RfSource
 from nightbench.drivers.transport import Link
 from nightbench.measure.engine import Engine
 from nightbench.measure.signals import StopFlag
-from nightbench.plan.load import parse_plan
+from nightbench.plan.load import load_plan, parse_plan
 from nightbench.runs import new_run
 from nightbench.simproc import SimProcess
 from nightbench.simulators.physics import BenchConfig, BenchModel
@@ -98,7 +99,15 @@ def record(conn: sqlite3.Connection, role: str) -> dict[str, Any]:
     return {**dict(row), "state": json.loads(row["state_json"])}
 
 
-def test_the_record_reads_back_modulation_off_offset_zero_and_the_plans_nplc(night):
+def test_one_night_on_a_bench_left_in_a_previous_users_state(night):
+    """One run checked from four sides (one test, so parallel workers do not each run the night)."""
+    check_the_record_reads_back_modulation_off_offset_zero_and_the_plans_nplc(night)
+    check_calibration_dates_are_stored_and_an_allowed_overdue_instrument_is_noted(night)
+    check_with_the_record_the_night_measures_the_planned_levels(night)
+    check_report_json_and_summary_carry_the_record(night)
+
+
+def check_the_record_reads_back_modulation_off_offset_zero_and_the_plans_nplc(night):
     source, meter = record(night["conn"], "source"), record(night["conn"], "meter")
     s = source["state"]
     # SCPI-1999 boolean responses: 0 is off; the simulator started with AM on (PREVIOUS_USER)
@@ -116,7 +125,7 @@ def test_the_record_reads_back_modulation_off_offset_zero_and_the_plans_nplc(nig
     assert (source["driver"], meter["driver"]) == ("scpi-source", "scpi-dmm")
 
 
-def test_calibration_dates_are_stored_and_an_allowed_overdue_instrument_is_noted(night):
+def check_calibration_dates_are_stored_and_an_allowed_overdue_instrument_is_noted(night):
     source, meter = record(night["conn"], "source"), record(night["conn"], "meter")
     assert (source["calibration_due"], meter["calibration_due"]) == (FUTURE, PAST)
     assert "calibration" not in source["state"]
@@ -125,7 +134,7 @@ def test_calibration_dates_are_stored_and_an_allowed_overdue_instrument_is_noted
     assert len(events) == 1 and events[0].startswith("meter: ")
 
 
-def test_with_the_record_the_night_measures_the_planned_levels(night):
+def check_with_the_record_the_night_measures_the_planned_levels(night):
     """The simulator's truth for each planned DUT level (simulators/physics.py truth_v): with the
     3 dB offset left on, every reading would sit 3 dB (about 60 mV) low."""
     model = BenchModel(previous_user_config())
@@ -138,7 +147,7 @@ def test_with_the_record_the_night_measures_the_planned_levels(night):
     assert 3.0 * slope > 0.05, "the offset would be far outside that tolerance"
 
 
-def test_report_json_and_summary_carry_the_record(night):
+def check_report_json_and_summary_carry_the_record(night):
     report, summary = night["report"], night["summary"]
     assert [i["role"] for i in report["instruments"]] == ["source", "meter"]
     meter = report["instruments"][1]
@@ -274,8 +283,20 @@ def test_check_refuses_an_overdue_instrument_naming_file_line_and_key(write_plan
     assert res.returncode == 2 and "Traceback" not in res.stderr
     where = f"{path}, line {line_of(path, 'calibration_due')}, key 'instruments.meter.calibration_due'"
     assert where in res.stderr and PAST in res.stderr and "allow_overdue" in res.stderr, res.stderr
-    assert cli("check", str(due_plan(write_plan, OFFLINE, PAST, allow_overdue=True))).returncode == 0
-    assert cli("check", str(due_plan(write_plan, OFFLINE, FUTURE))).returncode == 0
+
+
+def test_load_plan_refuses_a_past_date_at_its_line_and_key(write_plan):
+    path = due_plan(write_plan, OFFLINE, PAST)
+    with pytest.raises(InputError) as info:
+        load_plan(path)
+    key, line = "instruments.meter.calibration_due", line_of(path, "calibration_due")
+    assert (info.value.key, info.value.line) == (key, line)
+
+
+@pytest.mark.parametrize("due, allow", [(PAST, True), (FUTURE, False)])
+def test_a_future_date_or_allow_overdue_is_accepted(write_plan, due, allow):
+    path = due_plan(write_plan, OFFLINE, due, allow_overdue=allow)
+    assert load_plan(path).plan.instruments.meter.calibration_due.isoformat() == due
 
 
 @pytest.mark.parametrize("command", ["run", "submit"])
