@@ -104,7 +104,18 @@ def test_eight_units_in_one_night(tmp_path: Path):
     check_the_switch_only_moved_with_rf_off_from_the_simulators_log(lot)
     check_report_unit_shows_one_units_groups(lot)
     check_text_markdown_and_plot_show_units_and_lot(lot, tmp_path)
+    check_two_runs_are_compared_unit_by_unit(lot)
     assert_never_above(log, 0.0)
+
+
+def check_two_runs_are_compared_unit_by_unit(lot: dict[str, Any]) -> None:
+    # `report A B` pairs each unit with the same unit: the run against itself gives one difference per
+    # unit and frequency, each zero (paired by frequency alone, eight units would collapse into one)
+    from nightbench.analysis.compare import compare_reports
+
+    diffs = compare_reports(lot["built"], lot["built"]).to_json()["differences"]
+    assert sorted((d["unit_id"], d["frequency_hz"]) for d in diffs) == sorted((u, f) for u in UNITS for f in FREQS)
+    assert all(d["slope_diff_mv_per_db"] == 0.0 and d["intercept_diff_db"] == 0.0 for d in diffs)
 
 
 def check_verdicts_of_all_eight_units_under_the_guarded_rule(lot: dict[str, Any]) -> None:

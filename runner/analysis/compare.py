@@ -33,8 +33,9 @@ def u_key(f: Field, type_a: bool = False, kind: str = "") -> str:
     return f.diff.replace("_diff_", f"_diff_u_{kind}_" if kind else "_diff_u_", 1)
 
 
-def group_key(group: GroupResult) -> tuple[float, float | None]:
-    return round(group.frequency_hz, 3), group.temperature_c
+def group_key(group: GroupResult) -> tuple[float, float | None, str | None]:
+    """What pairs a group of A with one of B: frequency, temperature and unit (each unit is its own part)."""
+    return round(group.frequency_hz, 3), group.temperature_c, group.unit_id
 
 
 def _minus(b: float | None, a: float | None) -> float | None:
@@ -112,7 +113,9 @@ class Difference:
         return cls(a, b, values, shared)
 
     def to_json(self) -> dict[str, Any]:
+        unit = {} if self.a.unit_id is None else {"unit_id": self.a.unit_id}
         return {
+            **unit,
             "frequency_hz": self.a.frequency_hz,
             "temperature_c": self.a.temperature_c,
             **self.values,
