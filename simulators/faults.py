@@ -3,20 +3,22 @@
 A fault is a dict (from a `[[fault]]` table of the simulator config, or a `--fault` flag):
 
     kind         drop | silence | delay | garbage | spurious_error | refuse_level | overload
-                 | refuse_setpoint | drift | stuck_route
+                 | refuse_setpoint | drift | stuck_route | reboot
     instrument   source | meter | adc | chamber | switch | sensor
     after        fire from the N-th message to that instrument on (1-based; 0 = from the start)
     at_s         or from this many seconds after the simulator started
     count        how many times it fires (0 = every time once triggered); default 1
     probability  chance that an eligible message triggers it (seeded); default 1
-    duration_s   drop/silence: how long the instrument stays away (-1 = for good); default 0 / -1
+    duration_s   drop/silence/reboot: how long the instrument stays away (-1 = for good); default 0 / -1 / 0
     delay_s      delay: seconds added before the reply; default 0.5
     code         spurious_error / refuse_level: the SCPI error code; default -221 / -222
     level_dbm    refuse_level: refuse only levels at or above this
     rate_c_per_s drift: how fast the chamber's reading walks away from the air, degC per clock second
     channel      stuck_route: the switch route that stays open when closed (any route if not given)
 
-Transport kinds (drop, silence, delay, garbage, spurious_error) act where messages arrive;
+Transport kinds (drop, silence, delay, garbage, spurious_error, reboot) act where messages arrive;
+reboot is a drop after which the instrument is as at power-on (its own `power_on`: a source
+recalls the settings a previous user saved, output off);
 refuse_level, overload, refuse_setpoint (the chamber refuses a setpoint, -222) and drift (its
 reading walks away from the air temperature) act inside the instrument. "No answer" from the
 chamber is `silence@chamber`.
@@ -40,6 +42,7 @@ KINDS = (
     "refuse_setpoint",
     "drift",
     "stuck_route",
+    "reboot",
 )
 INSTRUMENTS = ("source", "meter", "adc", "chamber", "switch", "sensor")
 
@@ -74,7 +77,7 @@ class Fault:
         if fault.instrument not in INSTRUMENTS:
             raise ValueError(f"unknown fault instrument '{fault.instrument}' (one of {', '.join(INSTRUMENTS)})")
         if fault.duration_s is None:
-            fault.duration_s = 0.0 if fault.kind == "drop" else -1.0
+            fault.duration_s = 0.0 if fault.kind in ("drop", "reboot") else -1.0
         if fault.code is None:
             fault.code = -222 if fault.kind in ("refuse_level", "refuse_setpoint") else -221
         fault.rng = random.Random(seed)
@@ -130,13 +133,13 @@ class FaultInjector:
         """Call once per arriving message; returns the transport faults that fire on it."""
         with self.lock:
             self.messages[instrument] += 1
-            fired = self._fire(instrument, ("drop", "silence", "delay", "garbage", "spurious_error"))
+            fired = self._fire(instrument, ("drop", "silence", "delay", "garbage", "spurious_error", "reboot"))
             for fault in fired:
-                if fault.kind in ("drop", "silence"):
+                if fault.kind in ("drop", "silence", "reboot"):
                     away_s = -1.0 if fault.duration_s is None else fault.duration_s  # set by from_dict
                     until = float("inf") if away_s < 0 else self.clock() + away_s
                     self.away_until[instrument] = max(self.away_until[instrument], until)
-                    self.away_kind[instrument] = fault.kind
+                    self.away_kind[instrument] = "drop" if fault.kind == "reboot" else fault.kind
             return fired
 
     def away(self, instrument: str) -> str:

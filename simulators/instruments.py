@@ -135,6 +135,15 @@ class SimSource(ScpiInstrument):
         self.modulation = dict.fromkeys(self.modulation, False)
         self._write_log("*RST")
 
+    def power_on(self) -> None:
+        """As after a power cycle (the `reboot` fault): output off, and the modulation and level
+        offset a previous user saved recalled, as many generators do at power-on."""
+        self.model.set_source(self.clock(), output_on=False)
+        self.offset_db = self._limits.user_offset_db
+        self.modulation = dict.fromkeys(self.modulation, False)
+        self.modulation["AM"] = self._limits.user_modulation
+        self._write_log("power-on")
+
     def _set_offset(self, args: list[str]) -> None:
         """A level offset (dB, as an external gain or loss would be entered): the displayed and
         queried level is the delivered level plus the offset; the output itself does not change."""

@@ -156,8 +156,11 @@ class _Client:
             return  # silent: read and ignored, as a hung instrument would
         fired = self.faults.on_message(self.name)
         kinds = {f.kind for f in fired}
-        self._hang_up_if("drop" in kinds)
-        if kinds & {"drop", "silence"}:
+        if "reboot" in kinds and hasattr(self.instrument, "power_on"):
+            with self.lock:
+                self.instrument.power_on()
+        self._hang_up_if(bool(kinds & {"drop", "reboot"}))
+        if kinds & {"drop", "silence", "reboot"}:
             return
         try:
             message = raw.decode("ascii").rstrip("\r")

@@ -46,6 +46,7 @@ user_autorange = true
 user_autozero = false
 """
 LEVELS = [-60.0, -50.0, -40.0, -30.0]
+REBOOT_AFTER = 8  # the source's 8th message: the second point of the first pass (the start sends 4)
 PAST, FUTURE = "2001-01-01", "2999-12-31"
 
 
@@ -65,7 +66,10 @@ def night(tmp_path_factory):
     tmp = tmp_path_factory.mktemp("record")
     (tmp / "sim.toml").write_text(PREVIOUS_USER)
     log = tmp / "source-log.jsonl"
-    with SimProcess("--config", str(tmp / "sim.toml"), "--log", str(log)) as sim:
+    # mid-night the source reboots and recalls the previous user's offset (simulators/faults.py
+    # `reboot`): the reconnect must put it back in the known state, or the rest reads 3 dB low
+    reboot = f"reboot@source:after={REBOOT_AFTER}"
+    with SimProcess("--config", str(tmp / "sim.toml"), "--log", str(log), "--fault", reboot) as sim:
         plan = plan_dict(
             sim.resources,
             sweep={"frequency_hz": [100e6], "power_dbm": LEVELS},
@@ -85,6 +89,7 @@ def night(tmp_path_factory):
     conn = sqlite3.connect(db)
     conn.row_factory = sqlite3.Row
     yield {
+        "log": log,
         "db": db,
         "conn": conn,
         "report": json.loads(report.stdout),
@@ -105,6 +110,19 @@ def test_one_night_on_a_bench_left_in_a_previous_users_state(night):
     check_calibration_dates_are_stored_and_an_allowed_overdue_instrument_is_noted(night)
     check_with_the_record_the_night_measures_the_planned_levels(night)
     check_report_json_and_summary_carry_the_record(night)
+    check_a_reboot_mid_night_is_put_back_in_the_known_state(night)
+
+
+def check_a_reboot_mid_night_is_put_back_in_the_known_state(night):
+    """The source rebooted inside the first pass (its own log says power-on, recalling the 3 dB
+    offset) and points were measured after the reconnect: those too match the truth (checked above)."""
+    log = [json.loads(line) for line in night["log"].read_text().splitlines()]
+    power_on = [i for i, e in enumerate(log) if e.get("event") == "power-on"]
+    assert len(power_on) == 1, "the reboot fault did not fire"
+    after = [e for e in log[power_on[0] :] if e.get("event") == "level"]
+    assert after, "no level was set after the reboot: the fault came too late to test anything"
+    kinds = [r["kind"] for r in night["conn"].execute("SELECT kind FROM events WHERE run_id=1 ORDER BY id")]
+    assert "reconnect" in kinds
 
 
 def check_the_record_reads_back_modulation_off_offset_zero_and_the_plans_nplc(night):

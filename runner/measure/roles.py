@@ -140,13 +140,17 @@ class Bench:
         return None
 
     def reconnect(self, name: str, should_stop: Callable[[], bool], attempts: int = 3) -> None:
-        """A NEW link to one instrument, then its known state again (the source: RF off first).
-        A link that comes back out of step (a late reply) is reopened again."""
+        """A NEW link to one instrument, then its known state again (the source: RF off first, then
+        modulation and level offset off, as at the start: measure/record.py). A link that comes
+        back out of step (a late reply) is reopened again."""
         role = self.role(name)
         for attempt in range(1, attempts + 1):
             try:
                 role.reconnect(should_stop)
                 role.configure()
+                known = getattr(role, "record_state", None)
+                if known is not None:  # a rebooted instrument may have recalled a previous user's
+                    known(preset=False)  # settings (a level offset): put it back in the run's known state
                 return
             except ConnectionLost:
                 raise
