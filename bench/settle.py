@@ -1,6 +1,6 @@
 """Benchmark: settle detection on the simulated bench, against the physical minimum and a fixed dwell.
 
-    python bench/settle.py [--cells N] [--tries N] [--out FILE]
+    python bench/settle.py [--cells N] [--only I ...] [--tail-share S] [--tries N] [--out FILE]
 
 For a grid of rise/fall time constants and noise levels, plus coarse-step (5 dB) cells and cells
 whose output has a slow tail (a 1 % part with a 0.2 s time constant behind the fast main part),
