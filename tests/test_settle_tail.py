@@ -335,3 +335,19 @@ def test_a_new_temperature_forgets_what_was_proven_about_the_tail():
     assert not det.proofs and not det.tail_evidence and det.proof_reach() == 0.0
     caps = det._tail_caps(2.5)
     assert np.all(caps == det.tail_share), "back to the plan's share until new evidence comes"
+
+
+def test_a_resume_replays_far_enough_back_to_find_an_old_proof():
+    # the proof is made at the start (the 1 V step); the interruption comes 100 points later.
+    # With the last 64 points replayed (before), the proof was not among them and the resumed
+    # run would probe again; REPLAY_POINTS now reaches it.
+    from nightbench.measure.replay import REPLAY_POINTS, replay
+
+    live, _, stored = run_levels(COVERED_LEVELS, SIGMA_V / 10)
+    assert live.proofs and len(stored) > 64
+    warm = SettleDetector(TOL, samples=SAMPLES, max_tau_s=MAX_TAU_S)
+    replay(warm, stored[-REPLAY_POINTS:])
+    assert len(warm.proofs) == len(live.proofs)
+    old = SettleDetector(TOL, samples=SAMPLES, max_tau_s=MAX_TAU_S)
+    replay(old, stored[-64:])
+    assert not old.proofs, "the last 64 points alone hold no proof: the test needs the longer replay"

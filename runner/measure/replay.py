@@ -17,7 +17,10 @@ from typing import Any
 from nightbench.measure.settle import LEARN_KEEP, NOISE_KEEP, Direction, SettleDetector
 from nightbench.measure.tailguard import TAIL_KEEP
 
-REPLAY_POINTS = max(LEARN_KEEP * 4, NOISE_KEEP, TAIL_KEEP)  # enough for every kind of memory to fill
+# enough for every kind of memory to fill, and for a proof about the tail made long before the
+# interruption to come back (tailguard.py: proofs last the run); a few hundred points replay in
+# well under a second
+REPLAY_POINTS = max(LEARN_KEEP * 4, NOISE_KEEP, TAIL_KEEP, 512)
 
 
 def replay(detector: SettleDetector, points: Iterable[Mapping[str, Any]]) -> int:
