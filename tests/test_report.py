@@ -203,7 +203,18 @@ def test_two_runs_side_by_side_give_their_differences(tmp_path):
 
 # the JSON other programs rely on (docs/design.md, "JSON other programs rely on"), spelled out here
 # on purpose: the fields are declared once in the code, and this is what that declaration must give
-REPORT_KEYS = ["run_id", "name", "state", "dut_id", "started_at", "finished_at", "groups", "analysis", "details"]
+REPORT_KEYS = [
+    "run_id",
+    "name",
+    "state",
+    "dut_id",
+    "started_at",
+    "finished_at",
+    "groups",
+    "analysis",
+    "details",
+    "instruments",
+]
 DOCUMENTED_GROUP_KEYS = [
     "frequency_hz",
     "temperature_c",
