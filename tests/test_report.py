@@ -127,8 +127,10 @@ def test_uncertainty_in_the_report_includes_the_plans_type_b_terms(measured):
     assert terms["path_loss"]["half_width"] == 0.0
     assert all(t["what"] for t in terms.values())
     for group in report["groups"]:
-        # the source's ±0.5 dB alone gives U >= 2 * 0.5/sqrt(3) = 0.577 dB (JCGM 100:2008 4.3.7, 6.2.1)
-        assert group["intercept_u_db"] >= 2 * 0.5 / np.sqrt(3) - 1e-12
+        # the source's ±0.5 dB alone gives U = 2 * 0.5/sqrt(3) = 0.577 dB (JCGM 100:2008 4.3.7, 6.2.1) at
+        # a sensitivity of 1 dB/dB, a straight line's; the part's ripple sliding through the fit range
+        # moves that sensitivity by well under 1 % (docs/uncertainty.md), seen as 0.9997 here
+        assert group["intercept_u_db"] >= 0.99 * 2 * 0.5 / np.sqrt(3)
         assert group["intercept_u_db"] < 0.7  # and the Type A part is small on this bench
 
 
