@@ -1,7 +1,7 @@
 """The plan's `calibration` section: the power sensor and the levels `nightbench calibrate` visits.
 
 Pure data like plan/model.py (which holds the one `calibration` field of Plan and imports this
-module; this one imports nothing of the plan package, so there is no cycle). The run and the
+module; this one imports nothing of the plan package but plan/base.py, so there is no cycle). The run and the
 file it writes are measure/calibrate.py and plan/calibration.py; docs/calibration.md.
 """
 
@@ -9,20 +9,9 @@ from __future__ import annotations
 
 from typing import Annotated, Literal
 
-from pydantic import AfterValidator, BaseModel, ConfigDict, Field, model_validator
+from pydantic import AfterValidator, Field, model_validator
 
-
-class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", allow_inf_nan=False, frozen=True)
-
-
-def _resource(value: str) -> str:
-    from nightbench.drivers.transport import check_resource
-
-    problem = check_resource(value)
-    if problem:
-        raise ValueError(problem)
-    return value.strip()
+from nightbench.plan.base import Resource, Strict
 
 
 def _sensor_commands(value: dict[str, str] | None) -> dict[str, str] | None:
@@ -36,11 +25,11 @@ def _sensor_commands(value: dict[str, str] | None) -> dict[str, str] | None:
 Finite = Annotated[float, Field(allow_inf_nan=False)]
 
 
-class SensorSpec(_Strict):
+class SensorSpec(Strict):
     """A SCPI power sensor (drivers/sensor.py), placed where the DUT goes."""
 
     driver: Literal["scpi-power-sensor"]
-    resource: Annotated[str, AfterValidator(_resource)]
+    resource: Resource
     timeout_s: Annotated[float, Field(gt=0, allow_inf_nan=False)] = 2.0
     visa_library: str = "@py"
     baud_rate: Annotated[int, Field(gt=0, le=10_000_000)] | None = None
@@ -48,7 +37,7 @@ class SensorSpec(_Strict):
     commands: Annotated[dict[str, str] | None, AfterValidator(_sensor_commands)] = None
 
 
-class LevelSpan(_Strict):
+class LevelSpan(Strict):
     """DUT-plane levels, start to stop in steps (endpoints inclusive)."""
 
     start: Finite
@@ -73,7 +62,7 @@ class LevelSpan(_Strict):
         return [round(self.start + i * self.step, 9) for i in range(n + 1)]
 
 
-class CalibrationSpec(_Strict):
+class CalibrationSpec(Strict):
     sensor: SensorSpec
     levels_dbm: LevelSpan
     samples: Annotated[int, Field(ge=1, le=1000)] = 4  # sensor readings averaged per level

@@ -3,7 +3,8 @@
 Every key of docs/design.md's plan format is accepted as written; unknown keys are errors, because a
 typo must not silently change a night's work. What needs more than one section or a file (the path's
 loss model, the sweep's axis order, the cross-section checks) is worked out by plan/load.py, so this
-module imports nothing of the plan package but the calibration section's model (plan/calspec.py).
+module imports nothing of the plan package but what all models share (plan/base.py) and the
+section models of calibration and units (plan/calspec.py, plan/units.py).
 """
 
 from __future__ import annotations
@@ -12,9 +13,10 @@ import math
 from datetime import date
 from typing import Annotated, Literal
 
-from pydantic import AfterValidator, BaseModel, ConfigDict, Field, field_validator, model_validator
+from pydantic import AfterValidator, Field, field_validator, model_validator
 
 from nightbench.drivers.source import DEFAULT_MAX_DBM, DEFAULT_MIN_DBM
+from nightbench.plan.base import Resource, Strict
 from nightbench.plan.calspec import CalibrationSpec
 from nightbench.plan.units import AcceptSpec, SwitchSpec, UnitSpec
 
@@ -24,29 +26,12 @@ Positive = Annotated[float, Field(gt=0, allow_inf_nan=False)]
 NonNegative = Annotated[float, Field(ge=0, allow_inf_nan=False)]
 
 
-def _valid_resource(value: str) -> str:
-    """Resource strings are checked at plan time, without opening anything."""
-    from nightbench.drivers.transport import check_resource
-
-    problem = check_resource(value)
-    if problem:
-        raise ValueError(problem)
-    return value.strip()
-
-
-Resource = Annotated[str, AfterValidator(_valid_resource)]
-
-
-class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", allow_inf_nan=False, frozen=True)
-
-
-class Dut(_Strict):
+class Dut(Strict):
     id: str | None = None
     notes: str | None = None
 
 
-class _Link(_Strict):
+class _Link(Strict):
     """How to reach an instrument: any VISA resource string, or serial:<port> for plain pyserial."""
 
     resource: Resource
@@ -121,7 +106,7 @@ class AdcSpec(_Link):
     scale: Annotated[float, Field(allow_inf_nan=False)]
     offset: Finite = 0.0
     identify: str | None = None  # a query whose reply names the board
-    setup: list[str] = []  # queries sent once after opening
+    setup: list[str] = Field(default_factory=list)  # queries sent once after opening
     overload: str | None = None  # a reply containing this is an overrange reading
 
     @field_validator("scale")
@@ -151,7 +136,7 @@ class ChamberSpec(_Link):
         return self
 
 
-class Instruments(_Strict):
+class Instruments(Strict):
     source: SourceSpec
     meter: MeterSpec
     chamber: ChamberSpec | None = None
@@ -162,7 +147,7 @@ Extrapolate = Literal["none", "hold", "linear"]
 PATH_FORMS = ("loss_db", "table", "touchstone", "coupler")
 
 
-class CouplerSpec(_Strict):
+class CouplerSpec(Strict):
     """A directional coupler in the path, by its coupling factor; the DUT is on `arm`."""
 
     coupling_db: Positive
@@ -170,7 +155,7 @@ class CouplerSpec(_Strict):
     excess_loss_db: NonNegative = 0.0
 
 
-class PathElementSpec(_Strict):
+class PathElementSpec(Strict):
     """One piece of the path, in exactly one form; plan/path.py works out its loss."""
 
     name: Annotated[str, Field(min_length=1, max_length=80)] | None = None
@@ -198,12 +183,12 @@ class PathSpec(PathElementSpec):
     calibration: Annotated[str, Field(min_length=1)] | None = None  # a `calibrate` file (plan/calibration.py)
 
 
-class Limits(_Strict):
+class Limits(Strict):
     dut_max_dbm: Finite
     accept: AcceptSpec | None = None  # acceptance limits and decision rule (analysis/accept.py)
 
 
-class Span(_Strict):
+class Span(Strict):
     start: Finite
     stop: Finite
     step: Finite | None = None
@@ -242,7 +227,7 @@ Axis = list[Finite] | Span
 AXES = ("frequency_hz", "power_dbm")
 
 
-class Sweep(_Strict):
+class Sweep(Strict):
     """The axes. Their nesting order is the order of the keys in the file (outermost first): the
     loader reads it from the document (LoadedPlan.order), as a model field could be set by a key."""
 
@@ -273,7 +258,7 @@ class Sweep(_Strict):
         return axis.values() if isinstance(axis, Span) else list(axis)
 
 
-class Settle(_Strict):
+class Settle(Strict):
     """How a point is judged settled (measure/settle.py; docs/settling.md)."""
 
     tolerance_v: Positive
@@ -292,7 +277,7 @@ class Settle(_Strict):
         return self.max_tau_s if self.max_tau_s is not None else self.timeout_s / math.log(100.0)
 
 
-class Soak(_Strict):
+class Soak(Strict):
     """When a temperature counts as reached (measure/soak.py, docs/temperature.md)."""
 
     tolerance_c: Positive  # the chamber's reading within this of the setpoint,
@@ -307,12 +292,12 @@ class Soak(_Strict):
         return self
 
 
-class Measure(_Strict):
+class Measure(Strict):
     samples: Annotated[int, Field(ge=1, le=10_000)] = 4
     repeats: Annotated[int, Field(ge=1, le=100)] = 1  # level passes per group, alternately up and down
 
 
-class Mismatch(_Strict):
+class Mismatch(Strict):
     """Stated reflections of the source side and of the DUT input, each as |Gamma| or a return loss
     (dB): the budget's U-shaped mismatch term (analysis/gum.py, docs/uncertainty.md)."""
 
@@ -330,7 +315,7 @@ class Mismatch(_Strict):
         return self
 
 
-class Analysis(_Strict):
+class Analysis(Strict):
     fit_dbm: tuple[Finite, Finite]
     error_limit_db: Positive = 1.0
     # the temperature whose fit line is the reference for error over temperature (Plan.reference_c)
@@ -355,7 +340,7 @@ class Analysis(_Strict):
         return value
 
 
-class Plan(_Strict):
+class Plan(Strict):
     name: Annotated[str, Field(min_length=1, max_length=80, pattern=r"^[A-Za-z0-9][A-Za-z0-9_.-]*$")]
     description: str | None = None
     dut: Dut = Dut()

@@ -2,7 +2,7 @@
 the checks across them.
 
 The models are pure data like plan/model.py, which imports them; this module imports nothing of
-the plan package at module level (model.py would be a cycle), so a unit's `path` is typed by the
+the plan package at module level but plan/base.py (model.py would be a cycle), so a unit's `path` is typed by the
 caller: model.py uses `UnitSpec[PathSpec]`, every path form of the plan's own `path` then works
 for a unit too (a calibration file included), built by the same code (plan/path.py).
 """
@@ -12,27 +12,15 @@ from __future__ import annotations
 from collections.abc import Callable
 from typing import Annotated, Any, Generic, Literal, TypeVar
 
-from pydantic import AfterValidator, BaseModel, ConfigDict, Field, model_validator
+from pydantic import AfterValidator, Field, model_validator
 
 from nightbench.drivers.errors import InputError
+from nightbench.plan.base import Resource, Strict
 
 P = TypeVar("P")
 Finite = Annotated[float, Field(allow_inf_nan=False)]
 Bound = Annotated[list[Finite | None], Field(min_length=2, max_length=2)]
 QUANTITIES = ("slope_mv_per_db", "intercept_dbm", "dynamic_range_db")  # what limits.accept may bound
-
-
-class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", allow_inf_nan=False, frozen=True)
-
-
-def _valid_resource(value: str) -> str:
-    from nightbench.drivers.transport import check_resource
-
-    problem = check_resource(value)
-    if problem:
-        raise ValueError(problem)
-    return value.strip()
 
 
 def _switch_commands(value: dict[str, str] | None) -> dict[str, str] | None:
@@ -42,19 +30,19 @@ def _switch_commands(value: dict[str, str] | None) -> dict[str, str] | None:
     return value
 
 
-class SwitchSpec(_Strict):
+class SwitchSpec(Strict):
     """An RF switch (drivers/switch.py): SCPI-1999 ROUTe by default; `commands` replace any of
     close, query_closed, open_all, error_query (the field is `{channel}`)."""
 
     driver: Literal["scpi-switch"]
-    resource: Annotated[str, AfterValidator(_valid_resource)]
+    resource: Resource
     timeout_s: Annotated[float, Field(gt=0, allow_inf_nan=False)] = 2.0
     visa_library: str = "@py"
     baud_rate: Annotated[int, Field(gt=0, le=10_000_000)] | None = None
     commands: Annotated[dict[str, str] | None, AfterValidator(_switch_commands)] = None
 
 
-class UnitSpec(_Strict, Generic[P]):
+class UnitSpec(Strict, Generic[P]):
     """One unit: its id in the report, its switch route and, where its cabling differs, its path."""
 
     id: Annotated[str, Field(min_length=1, max_length=40, pattern=r"^[A-Za-z0-9][A-Za-z0-9_.-]*$")]
@@ -73,7 +61,7 @@ def _bound(value: list[float | None] | None) -> list[float | None] | None:
     return value
 
 
-class AcceptSpec(_Strict):
+class AcceptSpec(Strict):
     """Acceptance limits per quantity, at every frequency and temperature, and the decision rule
     (analysis/accept.py; JCGM 106:2012: `simple`, or `guarded` with the zone shrunk by U)."""
 
