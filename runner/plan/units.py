@@ -2,9 +2,10 @@
 the checks across them.
 
 The models are pure data like plan/model.py, which imports them; this module imports nothing of
-the plan package at module level but plan/base.py (model.py would be a cycle), so a unit's `path` is typed by the
-caller: model.py uses `UnitSpec[PathSpec]`, every path form of the plan's own `path` then works
-for a unit too (a calibration file included), built by the same code (plan/path.py).
+the plan package at module level but plan/base.py (model.py would be a cycle), so a unit's
+`path` is typed by the caller: model.py uses `UnitSpec[PathSpec]`, every path form of the
+plan's own `path` then works for a unit too (a calibration file included), built by the same
+code (plan/path.py).
 """
 
 from __future__ import annotations
