@@ -22,6 +22,15 @@ def source_log(path: Path) -> list[dict[str, Any]]:
     return [json.loads(line) for line in path.read_text().splitlines() if line.strip()]
 
 
+def sim_toml(config: dict[str, dict[str, Any]]) -> str:
+    """A simulator config file's text from {section: {key: value}} (values as JSON, which TOML reads)."""
+    out = []
+    for section, values in config.items():
+        out.append(f"[{section}]")
+        out += [f"{k} = {json.dumps(v)}" for k, v in values.items()]
+    return "\n".join(out) + "\n"
+
+
 def wait_until(condition: Callable[[], Any], what: str, timeout_s: float = 10.0, poll_s: float = 0.01) -> Any:
     """Poll `condition` until it is truthy and return its value; fail naming `what` after
     `timeout_s`. For tests that wait for an event, not for an amount of time."""

@@ -23,7 +23,7 @@ import nightbench
 from nightbench.plan.calibration import parse_calibration
 from nightbench.simproc import SimProcess
 from nightbench.simulators.physics import BenchConfig, BenchModel
-from tests.conftest import cli, plan_dict, source_log
+from tests.conftest import cli, plan_dict, sim_toml, source_log
 
 FREQS = [100e6, 900e6]
 LEVELS = {"start": -50, "stop": -20, "step": 10}
@@ -36,14 +36,6 @@ SIM = {
     "detector": {"ripple_db": 0.0, "output_noise_v": 2e-7, "floor_noise_v": 2e-7},
     "meter": {"noise_v": 1e-8},
 }
-
-
-def _toml(config: dict) -> str:
-    out = []
-    for section, values in config.items():
-        out.append(f"[{section}]")
-        out += [f"{k} = {json.dumps(v)}" for k, v in values.items()]
-    return "\n".join(out) + "\n"
 
 
 def _truth_intercept(model: BenchModel, f: float, delivered=lambda p: p) -> float:
@@ -73,7 +65,7 @@ def _run_in_process(plan, db) -> str:
 def night(tmp_path_factory):
     """calibrate, then a calibrated run and a nominal run; the simulator's log split per step."""
     tmp = tmp_path_factory.mktemp("calibration")
-    (tmp / "sim.toml").write_text(_toml(SIM))
+    (tmp / "sim.toml").write_text(sim_toml(SIM))
     log = tmp / "source-log.jsonl"
     model = BenchModel(BenchConfig.from_dict(SIM))
     nominal = {"table": [[f, model.config.path.loss(f)] for f in FREQS]}  # right but for the hidden error

@@ -20,7 +20,7 @@ import pytest
 
 from nightbench.simproc import SimProcess
 from nightbench.simulators.physics import BenchConfig, BenchModel
-from tests.conftest import cli, plan_dict
+from tests.conftest import cli, plan_dict, sim_toml
 
 OHM = 50.0  # common practice: RF levels in dBm refer to 50 ohm
 FREQ = 100e6
@@ -95,14 +95,6 @@ def _truth(law: str) -> tuple[BenchModel, dict]:
     return BenchModel(BenchConfig.from_dict(config)), config
 
 
-def _toml(config: dict) -> str:
-    out = []
-    for section, values in config.items():
-        out.append(f"[{section}]")
-        out += [f"{k} = {json.dumps(v)}" for k, v in values.items()]
-    return "\n".join(out) + "\n"
-
-
 @pytest.fixture(scope="module", params=sorted(DETECTORS))
 def measured(request, tmp_path_factory):
     """One small sweep of one simulated detector, then `report --law` on it (JSON)."""
@@ -110,7 +102,7 @@ def measured(request, tmp_path_factory):
     tmp = tmp_path_factory.mktemp(f"law-{law}")
     truth, config = _truth(law)
     sim_cfg = tmp / "sim.toml"
-    sim_cfg.write_text(_toml(config))
+    sim_cfg.write_text(sim_toml(config))
     with SimProcess("--config", str(sim_cfg)) as sim:
         plan = plan_dict(
             sim.resources,
