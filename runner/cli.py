@@ -196,12 +196,13 @@ def sim(ctx: click.Context) -> None:
 @click.option(
     "--temperature", is_flag=True, help="the over-temperature variant: a simulated chamber, three temperatures"
 )
+@click.option("--units", is_flag=True, help="a pilot lot of eight boards behind a simulated switch, judged by limits")
 @friendly
-def demo(db: str | None, temperature: bool) -> None:
+def demo(db: str | None, temperature: bool, units: bool) -> None:
     """Start the simulated bench, run the demo plan on it, print the report."""
     from nightbench.demo import run_demo
 
-    sys.exit(run_demo(_db(db), temperature=temperature))
+    sys.exit(run_demo(_db(db), temperature=temperature, units=units))
 
 
 # -- the overnight service (docs/service.md) -------------------------------------------------
