@@ -21,12 +21,9 @@ from dataclasses import dataclass
 
 from nightbench.drivers.errors import InstrumentError, NightbenchError, SafetyError
 from nightbench.drivers.roles import SensorRole, SourceRole
-from nightbench.drivers.sensor import SENSOR_COMMANDS, ScpiPowerSensor
-from nightbench.drivers.transport import Link
-from nightbench.measure.roles import open_source
+from nightbench.measure.roles import open_sensor, open_source
 from nightbench.measure.signals import StopFlag
 from nightbench.measure.sweep import source_level
-from nightbench.plan.calspec import SensorSpec
 from nightbench.plan.load import LoadedPlan
 from nightbench.plan.path import dut_for, source_for
 
@@ -47,27 +44,6 @@ class CalibrationResult:
     rows: list[Row]
     sensor_identity: str
     source_identity: str
-
-
-def open_sensor(spec: SensorSpec) -> SensorRole:
-    """Open, prove and configure the sensor; the link closed if a step fails, the error saying which."""
-    from nightbench.drivers.dialect import merged
-
-    commands = merged(SENSOR_COMMANDS, spec.commands)
-    link = Link(spec.resource, timeout_s=spec.timeout_s, visa_library=spec.visa_library, baud_rate=spec.baud_rate)
-    try:
-        sensor = ScpiPowerSensor.open(link, commands=commands)
-    except NightbenchError as exc:
-        exc.add_context("the sensor cannot be opened", resource=spec.resource)
-        raise
-    for failed, step in (("did not identify itself", sensor.prove), ("could not be configured", sensor.configure)):
-        try:
-            step()
-        except NightbenchError as exc:
-            sensor.close()
-            exc.add_context(f"the sensor {failed}", resource=spec.resource)
-            raise
-    return sensor
 
 
 class Calibrator:

@@ -14,17 +14,19 @@ from nightbench.drivers.chamber import ScpiChamber
 from nightbench.drivers.dialect import CHAMBER_COMMANDS, METER_COMMANDS, SOURCE_COMMANDS, merged
 from nightbench.drivers.errors import ConnectionLost, InstrumentError, NightbenchError
 from nightbench.drivers.meter import ScpiDmm, SerialAdc
-from nightbench.drivers.roles import ChamberRole, MeterRole, Role, SourceRole, SwitchRole
+from nightbench.drivers.roles import ChamberRole, MeterRole, Role, SensorRole, SourceRole, SwitchRole
+from nightbench.drivers.sensor import SENSOR_COMMANDS, ScpiPowerSensor
 from nightbench.drivers.source import RfSource
 from nightbench.drivers.switch import ScpiSwitch, switch_commands
 from nightbench.drivers.transport import Link
+from nightbench.plan.calspec import SensorSpec
 from nightbench.plan.model import AdcSpec, ChamberSpec, DmmSpec, Plan, SourceSpec
 from nightbench.plan.units import SwitchSpec
 
 R = TypeVar("R", bound=Role)
 
 
-Spec = SourceSpec | DmmSpec | AdcSpec | ChamberSpec | SwitchSpec
+Spec = SourceSpec | DmmSpec | AdcSpec | ChamberSpec | SwitchSpec | SensorSpec
 
 
 def _link(spec: Spec) -> Link:
@@ -95,6 +97,12 @@ def open_switch(spec: SwitchSpec) -> SwitchRole:
     """Open the switch: proven and its error queue emptied, its routes left as they are."""
     commands = switch_commands(spec.commands)
     return _open("switch", spec, lambda link: ScpiSwitch.open(link, commands=commands))
+
+
+def open_sensor(spec: SensorSpec) -> SensorRole:
+    """Open the power sensor (`calibrate`): proven, then configured, like every role."""
+    commands = merged(SENSOR_COMMANDS, spec.commands)
+    return _open("sensor", spec, lambda link: ScpiPowerSensor.open(link, commands=commands))
 
 
 @dataclass

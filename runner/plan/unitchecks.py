@@ -11,7 +11,7 @@ from nightbench.drivers.errors import InputError
 from nightbench.plan.files import PlanFiles, PlanProblem
 from nightbench.plan.messages import at_key, from_problem
 from nightbench.plan.model import MAX_POINTS, Plan
-from nightbench.plan.path import PathModel, build_path
+from nightbench.plan.path import PathModel, build_path, source_for
 from nightbench.plan.units import check_units
 from nightbench.plan.yamlfile import KeyPath
 
@@ -42,8 +42,7 @@ def check_unit_plan(
         try:
             model = build_path(unit.path, refs)
             for f in freqs:
-                loss = model.loss(f)
-                lo, hi = min(levels) + loss, max(levels) + loss
+                lo, hi = source_for(model, f, min(levels)), source_for(model, f, max(levels))
                 if lo < src.min_dbm or hi > src.max_dbm:
                     raise fail(
                         f"unit {unit.id!r} at {f:g} Hz would need {lo:.2f} to {hi:.2f} dBm from the source, outside "
