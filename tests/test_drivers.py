@@ -138,6 +138,52 @@ def test_meter_overload_is_stored_flagged_not_as_a_value(tmp_path):
     assert_points_are_real(rows)
 
 
+@pytest.mark.parametrize(
+    "meter, samples, fault",
+    [
+        ("meter", 4, None),
+        ("meter", 1, None),  # one sample: every request asks the error queue too
+        ("meter", 4, "overload@meter:after=20,count=3"),  # a point ended by overload, mid-settle
+        ("adc_serial", 2, None),  # the line protocol over a pty
+    ],
+)
+def test_every_reading_taken_is_collected_and_stored(tmp_path, inproc_bench, meter, samples, fault):
+    """The engine asks for the next reading before it judges the last one (engine.measure), so one
+    reading is always in flight. Whatever ends a point (settled, timed out, overloaded), that
+    reading is collected: as the first sample, or stored with the overloaded point. So the
+    conversions the simulated meter made equal the readings stored, and no late reply lands on
+    a later point (its value would then be another level's: assert_points_are_real)."""
+    from nightbench.simulators.faults import parse_fault_flag
+
+    bench = inproc_bench(BenchConfig(faults=[parse_fault_flag(fault)] if fault else []))
+    taken = {"meter": 0, "adc_serial": 0}
+    instrument = bench.meter if meter == "meter" else bench.adc
+    real_sleep = instrument.sleep
+
+    def counting_sleep(seconds: float) -> None:  # each conversion sleeps once for its window
+        taken[meter] += 1
+        real_sleep(seconds)
+
+    instrument.sleep = counting_sleep
+    resources = bench.resources()
+    instruments = plan_dict(resources)["instruments"]
+    if meter == "adc_serial":
+        instruments["meter"] = adc_meter(resources["adc_serial"], identify="V")  # proven by its identity, not a reading
+    state, error, rows, events = run_plan(tmp_path, resources, instruments=instruments, measure={"samples": samples})
+    assert state == "completed", error
+    with sqlite3.connect(tmp_path / "faults.db") as conn:
+        stored = conn.execute("SELECT count(*) FROM readings").fetchone()[0]
+    assert taken[meter] == stored > len(rows) * (samples + 1), events
+    assert bool(fault) == any(r["overload"] for r in rows)
+    # each value is of its own level: 5 dB apart, the levels' outputs differ by about 100 mV, so a
+    # reply one reading late would be off by far more than the tolerance and 5 single-reading sigmas
+    window = TRUTH.integration_s(0.1)
+    sigma = TRUTH.config.detector.output_noise_v * (0.02 / window) ** 0.5  # at a 20 ms window (physics.py)
+    for r in rows:
+        if not r["overload"]:
+            assert abs(r["value_v"] - TRUTH.truth_v(r["power_dbm"], r["frequency_hz"])) < 0.0005 + 5 * sigma, r
+
+
 def test_serial_adc_board_plan_completes(tmp_path):
     adc = TRUTH.config.adc
     with sim_with(tmp_path) as sim:
