@@ -17,8 +17,8 @@ from typing import Any
 from nightbench.measure.settle import LEARN_KEEP, NOISE_KEEP, Direction, SettleDetector
 from nightbench.measure.tailguard import TAIL_KEEP
 
-# enough for every kind of memory to fill, and for a proof about the tail made long before the
-# interruption to come back (tailguard.py: proofs last the run); a few hundred points replay in
+# enough for every kind of memory to fill, and for a long look at the tail made well before the
+# interruption to count again (tail.py: the share evidence lasts the run); a few hundred points replay in
 # well under a second
 REPLAY_POINTS = max(LEARN_KEEP * 4, NOISE_KEEP, TAIL_KEEP, 512)
 

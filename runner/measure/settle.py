@@ -26,8 +26,8 @@ from typing import Literal
 
 import numpy as np
 
-from nightbench.measure.tail import tail_grid
-from nightbench.measure.tailguard import HISTORY_KEEP, PROBE_TAUS, PROOF_KEEP, TAIL_KEEP, TAIL_SHARE, TailGuard
+from nightbench.measure.tail import ShareEvidence, tail_grid
+from nightbench.measure.tailguard import HISTORY_KEEP, PROBE_TAUS, TAIL_KEEP, TAIL_SHARE, TailGuard
 
 Direction = Literal["rise", "fall"]
 DIRECTIONS: tuple[Direction, Direction] = ("rise", "fall")
@@ -143,8 +143,7 @@ class SettleDetector(TailGuard):
         self.since_probe = TAIL_KEEP  # points since this run's last probe (tailguard.py)
         self.probing = False
         self.tail_taus = tail_grid(max_tau_s)
-        self.tail_evidence: deque[tuple[np.ndarray, np.ndarray]] = deque(maxlen=TAIL_KEEP)
-        self.proofs: deque[tuple[np.ndarray, np.ndarray, float]] = deque(maxlen=PROOF_KEEP)
+        self.tail_evidence = ShareEvidence(self.tail_taus, tail_share)  # for the run (tail.py)
         self.settled_v: float | None = None  # the previous point's value: where this step started
         # every recent step (time of the change, signed size): a slow tail sums over all of them
         self.history: deque[tuple[float, float]] = deque(maxlen=HISTORY_KEEP)
@@ -160,7 +159,7 @@ class SettleDetector(TailGuard):
             cadence = (self.t_last - self.t_first) / (self.n - 1) if self.n > 1 else 0.0
             at = self.t_change + self.t_last + cadence
         self.t_change = at
-        self._exposure_cache: tuple[np.ndarray, np.ndarray] | None = None
+        self._exposure_cache: np.ndarray | None = None
         self.probed = False
         if from_off:
             self.settled_v = None
