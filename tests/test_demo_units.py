@@ -88,6 +88,10 @@ def test_demo_units_runs_on_its_own(tmp_path: Path):
     assert res.returncode == 0, res.stderr
     assert "switch TCPIP::127.0.0.1::" in res.stderr
     lines = res.stdout.splitlines()
+    # the results table says which board each row is (one group per board and frequency)
+    head = next(i for i, line in enumerate(lines) if line.split()[:3] == ["unit", "freq", "MHz"])
+    table = [line.split() for line in lines[head + 1 : head + 1 + 24]]
+    assert {r[0] for r in table} == set(EXPECTED) and len({(r[0], r[1]) for r in table}) == 24
     start = next(i for i, line in enumerate(lines) if line.startswith("units, worst first"))
     rows = [line.split() for line in lines[start + 2 : start + 10]]
     assert {r[0]: r[1] for r in rows} == EXPECTED

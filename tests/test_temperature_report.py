@@ -178,3 +178,23 @@ def test_report_of_two_runs_with_temperatures_and_the_plots(over_temperature_run
     assert result.returncode == 0, result.stderr
     names = {p.name for p in out.iterdir()}
     assert {"run1-error-vs-reference-100MHz.png", "run1-drift-vs-temperature.png"} <= names, names
+
+
+def test_every_table_says_which_temperature_a_row_is(over_temperature_run):
+    # one group per (frequency, temperature): labelled by frequency alone, the rows of the table,
+    # the budget and a comparison would be three alike-looking lines at 100 MHz
+    db, tmp = over_temperature_run
+    text = cli("report", "1", "--db", str(db)).stdout.splitlines()
+    head = next(i for i, line in enumerate(text) if line.split()[:4] == ["temp", "C", "freq", "MHz"])
+    rows = [line.split() for line in text[head + 1 : head + 1 + len(TEMPS)]]
+    assert sorted((float(r[0]), r[1]) for r in rows) == [(t, "100.000") for t in sorted(TEMPS)]
+    for t in TEMPS:  # slope and intercept budget rows, and the lack of fit
+        assert sum(line.strip().startswith(f"100.000 MHz {t:.1f} C") for line in text) == 3, t
+    cmp = cli("report", "1", "1", "--db", str(db)).stdout.splitlines()
+    head = next(i for i, line in enumerate(cmp) if line.split()[:3] == ["temp", "C", "freq"])
+    assert sorted(float(line.split()[0]) for line in cmp[head + 1 : head + 1 + len(TEMPS)]) == sorted(TEMPS)
+    out = tmp / "tables"
+    assert cli("report", "1", "--db", str(db), "--out", str(out)).returncode == 0
+    summary = (out / "summary.md").read_text().splitlines()
+    i = next(i for i, line in enumerate(summary) if line.startswith("| temp C | freq (MHz) |"))
+    assert sorted(float(line.split("|")[1]) for line in summary[i + 2 : i + 2 + len(TEMPS)]) == sorted(TEMPS)

@@ -13,14 +13,11 @@ from typing import Any
 
 from nightbench.analysis.report import Report
 from nightbench.analysis.uncertainty import AFFECTS, TERMS
+from nightbench.output.table import group_label, key_fields
 
 
 def _num(value: float | None, fmt: str) -> str:
     return "-" if value is None else format(value, fmt)
-
-
-def _mhz(g: Any) -> str:
-    return f"{g.frequency_hz / 1e6:.3f}"
 
 
 def _cell(term: dict[str, Any] | None, key: str, fmt: str, affects: bool) -> str:
@@ -49,6 +46,9 @@ def render_budget_tables(report: Report) -> list[str]:
         return []
     budgets = [g.budget.as_dict() for g in groups if g.budget is not None]
     keys = _shown_keys(budgets)
+    group_keys = key_fields(report)
+    labels = [group_label(g, group_keys) for g in groups]
+    lw = max(10, *(len(label) for label in labels))
     out = []
     for quantity, unit, fmt, uk in (
         ("slope", "mV/dB", ".4f", "slope_u_mv_per_db"),
@@ -58,33 +58,33 @@ def render_budget_tables(report: Report) -> list[str]:
         out.append(f"{quantity} budget: standard uncertainties in {unit} (* = combined, c = common to all frequencies)")
         widths = [max(len(k), 8) + 1 for k in keys]
         out.append(
-            f"{'freq MHz':>10} "
+            f"{'group' if group_keys else 'freq':>{lw}} "
             + " ".join(f"{k:>{w}}" for k, w in zip(keys, widths))
             + f" {'u_c':>8} {'nu_eff':>7} {'k':>5} {'U':>8} {'u_c f-f':>8}"
         )
-        for g, u in zip(groups, budgets):
+        for label, u in zip(labels, budgets):
             terms = {t["key"]: t for t in u["terms"]}
             cells = [f"{_cell(terms.get(k), uk, fmt, quantity in AFFECTS[k]):>{w}}" for k, w in zip(keys, widths)]
             nu = u[f"{quantity}_nu_eff"]
             out.append(
-                f"{_mhz(g):>10} " + " ".join(cells) + f" {u[f'{quantity}_uc_{suffix}']:8{fmt}} {_dof(nu):>7}"
+                f"{label:>{lw}} " + " ".join(cells) + f" {u[f'{quantity}_uc_{suffix}']:8{fmt}} {_dof(nu):>7}"
                 f" {u[f'{quantity}_k']:5.2f} {u[f'{quantity}_U_{suffix}']:8{fmt}}"
                 f" {u[f'{quantity}_uc_between_frequencies_{suffix}']:8{fmt}}"
             )
     out.append(
         "u_c f-f: the combined standard uncertainty without the common terms, for comparing two frequencies of this run"
     )
-    out += _lack_of_fit(groups, budgets)
+    out += _lack_of_fit(budgets, labels)
     return out
 
 
-def _lack_of_fit(groups: list[Any], budgets: list[dict[str, Any]]) -> list[str]:
+def _lack_of_fit(budgets: list[dict[str, Any]], labels: list[str]) -> list[str]:
     out = ["lack of fit over the fit range (the part's own ripple: reported, not an uncertainty):"]
-    for g, u in zip(groups, budgets):
+    for label, u in zip(labels, budgets):
         lof = u.get("lack_of_fit") or {}
         ratio = lof.get("residual_to_noise")
         out.append(
-            f"  {_mhz(g)} MHz: rms {_num(lof.get('rms_db'), '.3f')} dB, max {_num(lof.get('max_abs_db'), '.3f')} dB, "
+            f"  {label}: rms {_num(lof.get('rms_db'), '.3f')} dB, max {_num(lof.get('max_abs_db'), '.3f')} dB, "
             f"lag-1 autocorrelation {_num(lof.get('lag1_autocorrelation'), '.2f')}, "
             f"residuals / noise {_num(ratio, '.1f')}"
         )
@@ -92,7 +92,7 @@ def _lack_of_fit(groups: list[Any], budgets: list[dict[str, Any]]) -> list[str]:
         if rep:
             hyst = rep.get("hysteresis") or {}
             out.append(
-                f"  {_mhz(g)} MHz: {rep['repeats']} sweeps, pooled sd between them "
+                f"  {label}: {rep['repeats']} sweeps, pooled sd between them "
                 f"{_num(None if rep['pooled_sd_v'] is None else rep['pooled_sd_v'] * 1e3, '.3f')} mV "
                 f"({rep['dof']} dof); hysteresis up - down: mean {_num(hyst.get('mean_db'), '+.3f')} dB, "
                 f"max {_num(hyst.get('max_abs_db'), '.3f')} dB"

@@ -8,7 +8,16 @@ from __future__ import annotations
 
 from nightbench.analysis.report import Report
 from nightbench.output.record import setup_lines
-from nightbench.output.table import cell, extra_ranges, render_budget, render_excluded, settings_line
+from nightbench.output.table import (
+    KEY_HEADERS,
+    cell,
+    extra_ranges,
+    key_fields,
+    render_budget,
+    render_excluded,
+    settings_line,
+    shown,
+)
 from nightbench.output.units import markdown_units
 from nightbench.store.fields import Field, table_fields
 
@@ -23,8 +32,13 @@ def _header(f: Field) -> str:
 
 def _results(report: Report) -> list[str]:
     fields = table_fields(report.settings.law)
-    out = ["| " + " | ".join(_md(_header(f)) for f in fields) + " |", "|" + " ---: |" * len(fields)]
-    out += ["| " + " | ".join(_md(cell(f, g)) for f in fields) + " |" for g in report.groups]
+    keys = key_fields(report)
+    heads = [KEY_HEADERS[f.name] for f in keys] + [_header(f) for f in fields]
+    out = ["| " + " | ".join(_md(h) for h in heads) + " |", "|" + " ---: |" * len(heads)]
+    out += [
+        "| " + " | ".join(_md(c) for c in [shown(f, g) for f in keys] + [cell(f, g) for f in fields]) + " |"
+        for g in report.groups
+    ]
     return out
 
 

@@ -15,6 +15,31 @@ from nightbench.analysis.report import Report
 from nightbench.store.fields import BY_NAME, TABLE_FIELDS, Field, table_fields
 
 FREQUENCY = BY_NAME["frequency_hz"]
+# The group keys beside the frequency: a run with units or chamber temperatures has one group per
+# (unit, frequency, temperature), and a row or a budget line labelled by frequency alone would not
+# say which. Shown only where some group has a value, so a plain run's tables are unchanged.
+KEY_HEADERS = {"unit_id": "unit", "temperature_c": "temp C"}
+
+
+def key_fields(report: Report) -> list[Field]:
+    """The group keys (unit, temperature) that some group of this report has."""
+    return [BY_NAME[n] for n in KEY_HEADERS if any(g.value(n) is not None for g in report.groups)]
+
+
+def key_cells(keys: Sequence[Field], g: GroupResult) -> list[str]:
+    return [shown(f, g) for f in keys]
+
+
+def group_label(g: GroupResult, keys: Sequence[Field] = ()) -> str:
+    """'U-3 100 MHz 85.0 C': which group a line is about (the frequency alone in a plain run)."""
+    parts = [f"{shown(FREQUENCY, g)} MHz"]
+    for f in keys:
+        value = shown(f, g)
+        if f.name == "unit_id":
+            parts.insert(0, value)
+        else:
+            parts.append(f"{value} C")
+    return " ".join(parts)
 
 
 def num(value: float | None, fmt: str) -> str:
@@ -80,19 +105,22 @@ def extra_ranges(report: Report) -> list[str]:
     if len(report.settings.limits) < 2:
         return []
     out = ["ranges at each error limit (dBm, dB):"]
+    keys = key_fields(report)
     for g in report.groups:
         parts = [
             f"±{r['error_limit_db']:g} dB: {num(r['range_low_dbm'], '.1f')} .. {num(r['range_high_dbm'], '.1f')}"
             f" ({num(r['dynamic_range_db'], '.1f')} dB)"
             for r in g.ranges
         ]
-        out.append(f"  {shown(FREQUENCY, g)} MHz  " + "; ".join(parts or ["not fitted"]))
+        out.append(f"  {group_label(g, keys)}  " + "; ".join(parts or ["not fitted"]))
     return out
 
 
 def render_table(report: Report) -> str:
     fields = table_fields(report.settings.law)
-    rows = [[header(f) for f in fields]] + [[cell(f, g) for f in fields] for g in report.groups]
+    keys = key_fields(report)
+    rows = [[KEY_HEADERS[f.name] for f in keys] + [header(f) for f in fields]]
+    rows += [key_cells(keys, g) + [cell(f, g) for f in fields] for g in report.groups]
     table = align(rows)
     width = max(len(r[0]) for r in rows)
     lines = [title(report), table[0]]
@@ -118,6 +146,7 @@ def render_budget(report: Report) -> list[str]:
 def render_law_budget(report: Report) -> list[str]:
     """The square and linear laws' budgets: one line per group, standard uncertainties per term."""
     out = []
+    keys = key_fields(report)
     for g in report.groups:
         nat = g.law_budget
         if nat is None:
@@ -126,7 +155,7 @@ def render_law_budget(report: Report) -> list[str]:
             f"{t['key']}{'*' if t['included'] else ''} {t['param_u']:.3g} / {t['offset_u'] * 1e3:.3g} mV"
             for t in nat["terms"]
         ]
-        out.append(f"{shown(FREQUENCY, g)} MHz {nat['parameter']} / offset: " + ", ".join(parts))
+        out.append(f"{group_label(g, keys)} {nat['parameter']} / offset: " + ", ".join(parts))
     if out:
         out.insert(0, "law budget: standard uncertainties of the law's parameter / of its offset (* = combined)")
         out.append("  input_level: the source level and path loss accuracies, as a scale on the parameter")
@@ -136,6 +165,7 @@ def render_law_budget(report: Report) -> list[str]:
 def render_excluded(report: Report, shown_levels: int = 12) -> list[str]:
     """Points left out of the analysis and why, per group."""
     out = ["points left out of the fit and the range:"]
+    keys = key_fields(report)
     for g in report.groups:
         by_reason: dict[str, list[float]] = {}
         for e in g.excluded:
@@ -144,7 +174,7 @@ def render_excluded(report: Report, shown_levels: int = 12) -> list[str]:
             listed = ", ".join(f"{p:g}" for p in levels[:shown_levels])
             if len(levels) > shown_levels:
                 listed += f" and {len(levels) - shown_levels} more"
-            out.append(f"  {shown(FREQUENCY, g)} MHz: {len(levels)} {reason} at {listed} dBm")
+            out.append(f"  {group_label(g, keys)}: {len(levels)} {reason} at {listed} dBm")
     if len(out) == 1:
         out[0] += " none"
     return out
@@ -169,7 +199,8 @@ def render_comparison(cmp: Comparison) -> str:
     """Per matching group: A, B and B - A ± its Type A uncertainty for a field with one; both
     ranges; B - A for the other compared fields."""
     fields = [f for f in TABLE_FIELDS if f.diff]
-    head = [header(FREQUENCY)]
+    keys = [f for f in key_fields(cmp.a) if f in key_fields(cmp.b)]  # the pairs match on these too
+    head = [KEY_HEADERS[f.name] for f in keys] + [header(FREQUENCY)]
     for f in fields:
         if f.with_u:
             head += [f"{f.header} A", f"{f.header} B", f"B-A {_diff_unit(f)}"]
@@ -179,7 +210,7 @@ def render_comparison(cmp: Comparison) -> str:
             head.append(f"{f.header} B-A")
     rows = [head]
     for d in cmp.differences:
-        row = [shown(FREQUENCY, d.a)]
+        row = key_cells(keys, d.a) + [shown(FREQUENCY, d.a)]
         for f in fields:
             assert f.diff is not None
             if f.with_u:
