@@ -184,14 +184,3 @@ class ShareEvidence:
         marginal = np.abs(beta) + k * np.sqrt(np.diagonal(cov, axis1=1, axis2=2))
         per_direction = (np.minimum(marginal, self.share) * np.abs(x)).sum(axis=1)
         return np.minimum(joint, per_direction)
-
-    def compatible(self, k: float, scale: float) -> np.ndarray:
-        """Per tau_s, whether the pooled points still allow it: its chi^2 within scale k^2 of the
-        best tau_s's (deviance differences, as the main fit's interval), in units of the best
-        one's Birge ratio. A tail the run has shown at 0.2 s is then not also allowed for at 1.4 s."""
-        _, _, chi2 = self._solve()
-        if not (self.points > 2).any():
-            return np.ones(self.m, dtype=bool)
-        best = int(np.argmin(np.where(self.points > 2, chi2, np.inf)))
-        birge = max(1.0, float(chi2[best]) / max(float(self.points[best]) - 2.0, 1.0))
-        return (chi2 - chi2[best]) / birge <= scale * k * k
