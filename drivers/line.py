@@ -58,6 +58,13 @@ class LineSession:
     def query(self, command: str) -> str:
         return self.transport.query(command)
 
+    def send(self, command: str) -> None:
+        """The first half of a query: the reply is taken later with `receive`."""
+        self.transport.write(command)
+
+    def receive(self) -> str:
+        return self.transport.read()
+
     def flush(self) -> None:
         """Throw away anything already received (a late reply after a timeout)."""
         self.transport.flush_input()

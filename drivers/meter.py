@@ -94,6 +94,15 @@ class ScpiDmm(SessionRole):
         reply = self.session.query_checked(command) if checked else self.session.query(command)
         return _volts(reply, self.resource, command)
 
+    def request(self, *, checked: bool = False) -> None:
+        command = self.commands["read"]
+        self.session.send(self.session.checked_program(command) if checked else command)
+
+    def collect(self, *, checked: bool = False) -> float:
+        command = self.commands["read"]
+        reply = self.session.receive()
+        return _volts(self.session.checked_reply(reply, command) if checked else reply, self.resource, command)
+
 
 DMM_STATE = ("function", "range", "autorange", "nplc", "autozero")
 
@@ -200,7 +209,15 @@ class SerialAdc(SessionRole):
         self.session.reconnect(should_stop, proof=self.read)
 
     def read(self, *, checked: bool = False) -> float:
-        reply = self.session.query(self.query_text)
+        return self._counts_to_volts(self.session.query(self.query_text))
+
+    def request(self, *, checked: bool = False) -> None:
+        self.session.send(self.query_text)
+
+    def collect(self, *, checked: bool = False) -> float:
+        return self._counts_to_volts(self.session.receive())
+
+    def _counts_to_volts(self, reply: str) -> float:
         if self.overload and self.overload in reply:
             return math.inf
         match = self.pattern.search(reply)

@@ -71,6 +71,13 @@ class MeterRole(Role, Protocol):
     def read(self, *, checked: bool = False) -> float:
         """One reading; `checked` also asks for the instrument's own error report, if it has one."""
 
+    def request(self, *, checked: bool = False) -> None:
+        """Start one reading without waiting for it (the engine judges the last reading while the
+        meter takes the next); `collect` with the same `checked` takes it."""
+
+    def collect(self, *, checked: bool = False) -> float:
+        """The reading `request` started."""
+
 
 class ChamberRole(Role, Protocol):
     """A temperature chamber. `configure` never changes its setpoint (after a crash the source is

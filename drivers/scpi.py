@@ -101,7 +101,14 @@ class ScpiSession(LineSession):
 
     def query_checked(self, command: str) -> str:
         """A query and the error queue in one round trip: the reply only counts if no error came."""
-        reply = self.transport.query(f"{join_program([command])};{self.error_query}")
+        return self.checked_reply(self.transport.query(self.checked_program(command)), command)
+
+    def checked_program(self, command: str) -> str:
+        """`command` with the error query behind it: one message, one reply (query_checked)."""
+        return f"{join_program([command])};{self.error_query}"
+
+    def checked_reply(self, reply: str, command: str) -> str:
+        """The reply to `checked_program(command)` without its error entry; ScpiError if there was one."""
         units = split_response(reply)
         if len(units) != 2:
             raise InstrumentError(f"unexpected reply {reply!r}", resource=self.resource, command=command)

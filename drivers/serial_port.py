@@ -46,9 +46,15 @@ class SerialTransport:
             raise ConnectionLost(f"link error ({exc})", resource=self.resource, command=message) from exc
 
     def query(self, message: str) -> str:
+        self.write(message)
+        return self._read_line(message)
+
+    def read(self) -> str:
+        return self._read_line(None)
+
+    def _read_line(self, message: str | None) -> str:
         import serial
 
-        self.write(message)
         try:
             raw = self._port.read_until(b"\n")
         except (serial.SerialException, OSError) as exc:

@@ -20,6 +20,11 @@ class Transport(Protocol):
 
     def query(self, message: str) -> str: ...
 
+    def read(self) -> str:
+        """The next line received: the reply to an earlier `write` (a query split in two, so the
+        caller can work while the instrument does)."""
+        ...
+
     def flush_input(self) -> None:
         """Throw away anything already received (a late reply after a timeout)."""
 

@@ -83,6 +83,15 @@ class VisaTransport:
             raise ConnectionLost(_describe(exc), resource=self.resource, command=message) from exc
         return reply.strip()
 
+    def read(self) -> str:
+        try:
+            reply = self._inst.read()
+        except UnicodeDecodeError as exc:
+            raise InstrumentError("garbled reply (not text)", resource=self.resource) from exc
+        except self._errors as exc:
+            raise ConnectionLost(_describe(exc), resource=self.resource) from exc
+        return reply.strip()
+
     def flush_input(self) -> None:
         """Discard bytes already received (a late reply). pyvisa's clear() can block for good on a
         socket whose peer has gone, so with pyvisa-py the session's own buffers are emptied."""

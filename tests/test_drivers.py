@@ -148,10 +148,11 @@ def test_meter_overload_is_stored_flagged_not_as_a_value(tmp_path):
     ],
 )
 def test_every_reading_taken_is_collected_and_stored(tmp_path, inproc_bench, meter, samples, fault):
-    """Every reading is stored: whatever ends a point (settled, timed out, overloaded), the
-    conversions the simulated meter made equal the readings stored, and no late reply lands on a
-    later point (its value would then be another level's). Written for a reading kept in flight
-    while the last was judged (tried this round, and reverted: no gain measured)."""
+    """The engine asks for the next reading before it judges the last one (engine.measure), so one
+    reading is always in flight. Whatever ends a point (settled, timed out, overloaded), that
+    reading is collected: as the first sample, or stored with the overloaded point. So the
+    conversions the simulated meter made equal the readings stored, and no late reply lands on
+    a later point (its value would then be another level's: assert_points_are_real)."""
     from nightbench.simulators.faults import parse_fault_flag
 
     bench = inproc_bench(BenchConfig(faults=[parse_fault_flag(fault)] if fault else []))

@@ -120,17 +120,27 @@ class Engine:
         detector.begin(self.step_direction(point), at=time.monotonic(), from_off=self.last_dbm is None)
         self.last_dbm = point.power_dbm
         readings: list[tuple[float, float | None, str]] = []
+        n_samples = self.plan.measure.samples
+        # One reading is always in flight: the next is asked for as soon as one arrives, and the
+        # detector judges it while the meter integrates (its CPU costs no bench time). When the
+        # point settles, the reading in flight is the first sample: the detector's bound is on the
+        # readings that come next. With one sample, every request asks the error queue too.
+        checked = n_samples == 1
         t0 = time.monotonic()
         settled, overloads = False, 0
+        meter.request(checked=checked)
         while True:
-            value = meter.read()
+            value = meter.collect(checked=checked)
             t = time.monotonic() - t0
             if self.stop.is_set():
                 raise Interrupted(self.stop.reason)
+            meter.request(checked=checked)
             if math.isinf(value):
                 readings.append((t, None, "settle"))
                 overloads += 1
-                if overloads >= OVERLOAD_READINGS:
+                if overloads >= OVERLOAD_READINGS:  # take the one in flight: nothing may be left on the link
+                    late = meter.collect(checked=checked)
+                    readings.append((time.monotonic() - t0, None if math.isinf(late) else late, "settle"))
                     return PointResult(None, None, 0, t, len(readings), False, True, readings)
             else:
                 overloads = 0
@@ -142,8 +152,9 @@ class Engine:
                 break
         settle_s, settle_count = readings[-1][0], len(readings)
         samples = []
-        for i in range(self.plan.measure.samples):
-            value = meter.read(checked=i == self.plan.measure.samples - 1)
+        for i in range(n_samples):
+            last = i == n_samples - 1
+            value = meter.collect(checked=checked) if i == 0 else meter.read(checked=last)
             if self.stop.is_set():
                 raise Interrupted(self.stop.reason)
             t = time.monotonic() - t0
