@@ -147,9 +147,10 @@ class ShareEvidence:
         self.ssq += w * a * a
         self.points += ok
 
-    def _solve(self, extra: tuple[np.ndarray, np.ndarray] | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """Per tau_s: the shares beta (m, 2), their covariance (m, 2, 2) with the Birge ratio, and
-        the fit's chi^2 (m,). `extra` (x, se) adds one more point's precision, not its value."""
+    def _solve(self, extra: tuple[np.ndarray, np.ndarray] | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """Per tau_s: the shares beta (m, 2) and their covariance (m, 2, 2), widened by the Birge
+        ratio (the fit's chi^2 over its degrees of freedom). `extra` (x, se) adds one more point's
+        precision, not its value."""
         ridge = (self.RIDGE_SHARES * max(self.share, 1e-6)) ** -2
         info = self.info + ridge * np.eye(2)[None, :, :]
         if extra is not None:
@@ -162,7 +163,7 @@ class ShareEvidence:
         chi2 = np.maximum(self.ssq - np.einsum("mi,mi->m", beta, self.vec), 0.0)
         dof = self.points - 2
         birge = np.where(dof > 0, np.maximum(1.0, chi2 / np.maximum(dof, 1.0)), 1.0)
-        return beta, cov * birge[:, None, None], chi2
+        return beta, cov * birge[:, None, None]
 
     def predict(
         self, x: np.ndarray, extra: tuple[np.ndarray, np.ndarray] | None = None
@@ -170,7 +171,7 @@ class ShareEvidence:
         """Per tau_s, the slow amplitude the evidence predicts at exposure x (m, 2), x.beta (signed,
         as C_s), and its standard error (Birge ratio included). `extra` (x, se) adds one more
         point's precision, not its value: how far its readings would narrow it (a probe)."""
-        beta, cov, _ = self._solve(extra)
+        beta, cov = self._solve(extra)
         return np.einsum("mi,mi->m", x, beta), np.sqrt(np.einsum("mi,mij,mj->m", x, cov, x))
 
     def bound(self, x: np.ndarray, k: float) -> np.ndarray:
@@ -179,7 +180,7 @@ class ShareEvidence:
         (|beta_i| + k se_i, but at most the plan's share) times its exposure. The second keeps a
         well-proven direction tight when the other has not been seen (its share then unknown
         within the plan's cap, not within the ridge's ten times that)."""
-        beta, cov, _ = self._solve()
+        beta, cov = self._solve()
         joint = np.abs(np.einsum("mi,mi->m", x, beta)) + k * np.sqrt(np.einsum("mi,mij,mj->m", x, cov, x))
         marginal = np.abs(beta) + k * np.sqrt(np.diagonal(cov, axis1=1, axis2=2))
         per_direction = (np.minimum(marginal, self.share) * np.abs(x)).sum(axis=1)
