@@ -90,9 +90,8 @@ class ScpiDmm(SessionRole):
     def read(self, *, checked: bool = False) -> float:
         """One reading in volts; +/-inf for an overrange reading. `checked` asks the error queue
         in the same round trip (ScpiError if the meter reported anything)."""
-        command = self.commands["read"]
-        reply = self.session.query_checked(command) if checked else self.session.query(command)
-        return _volts(reply, self.resource, command)
+        self.request(checked=checked)
+        return self.collect(checked=checked)
 
     def request(self, *, checked: bool = False) -> None:
         command = self.commands["read"]
@@ -209,7 +208,8 @@ class SerialAdc(SessionRole):
         self.session.reconnect(should_stop, proof=self.read)
 
     def read(self, *, checked: bool = False) -> float:
-        return self._counts_to_volts(self.session.query(self.query_text))
+        self.request()
+        return self.collect()
 
     def request(self, *, checked: bool = False) -> None:
         self.session.send(self.query_text)

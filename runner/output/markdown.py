@@ -12,11 +12,11 @@ from nightbench.output.table import (
     KEY_HEADERS,
     cell,
     extra_ranges,
+    key_cells,
     key_fields,
     render_budget,
     render_excluded,
     settings_line,
-    shown,
 )
 from nightbench.output.units import markdown_units
 from nightbench.store.fields import Field, table_fields
@@ -36,7 +36,7 @@ def _results(report: Report) -> list[str]:
     heads = [KEY_HEADERS[f.name] for f in keys] + [_header(f) for f in fields]
     out = ["| " + " | ".join(_md(h) for h in heads) + " |", "|" + " ---: |" * len(heads)]
     out += [
-        "| " + " | ".join(_md(c) for c in [shown(f, g) for f in keys] + [cell(f, g) for f in fields]) + " |"
+        "| " + " | ".join(_md(c) for c in key_cells(keys, g) + [cell(f, g) for f in fields]) + " |"
         for g in report.groups
     ]
     return out
