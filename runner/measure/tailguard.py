@@ -11,7 +11,6 @@ import numpy as np
 
 from nightbench.measure.tail import ShareEvidence, exposure, slow_amplitudes, tail_bound
 
-COMPAT_SCALE = 2.0  # as the main fit's interval (settle.py)
 TAIL_SHARE = 0.02  # default: a slow tail may be up to 2 % of a step until the run shows less
 TAIL_KEEP = 64  # a probe that fell short holds off the next for this many points (unless steps double)
 TAIL_READINGS = 640  # at most this many readings enter a tail fit
@@ -104,16 +103,6 @@ class TailGuard:
             return 0.0  # the largest tail allowed for is negligible: no fit needed
         t, y = self._tail_readings()
         amp, se = slow_amplitudes(t, y, fast_tau_s, self.tail_taus, s2)
-        # Only the tail time constants the readings still allow: each one's column lowers the
-        # residual sum of squares by (C_s/se)^2 s^2; those within 2 k^2 s^2 of the best (the main
-        # fit's profile-likelihood interval). A tail shown at 0.2 s is then not also allowed for at
-        # 1.4 s, where it would stay for the whole point; with no tail shown, every one is still
-        # allowed. (Also narrowing them by the run's pooled points made the bench's tail sweeps
-        # faster, 1.8 instead of 6 x their minimum, but let 26 of 1,000 large steps after eight
-        # small ones through 0.5 to 3.8 mV out: it ruled out the true time constant. Not kept.)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            z2 = np.where(np.isfinite(se) & (se > 0), (amp / se) ** 2, 0.0)
-        remaining = np.where(z2 >= z2.max() - COMPAT_SCALE * k * k, remaining, 0.0)
         self.probing = self._probe(amp, se, k, remaining > 0, x)
         self.probed |= self.probing
         return tail_bound(amp, se, k, caps, remaining)
